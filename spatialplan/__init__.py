@@ -1,0 +1,7 @@
+"""spatialplan: spatially feasible multi-period clear-cut harvest scheduling."""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+__all__ = ["__version__"]

@@ -1,0 +1,66 @@
+"""The ``spatialplan`` command. It only parses arguments and calls the library.
+
+Each subcommand lives in its own module of this package and is imported only when used,
+so ``spatialplan --help`` stays fast.
+"""
+
+from __future__ import annotations
+
+import importlib
+import logging
+import sys
+from typing import Any
+
+import click
+
+from spatialplan import __version__
+
+__all__ = ["main"]
+
+# subcommand name -> module under spatialplan.cli that defines ``command``
+_COMMANDS = {
+    "check": "check",
+    "plan": "plan",
+    "verify": "verify",
+    "rotation": "rotation",
+    "map": "map",
+    "compare": "compare",
+    "demo": "demo",
+}
+
+
+class _LazyGroup(click.Group):
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return [n for n in _COMMANDS if importlib.util.find_spec(f"spatialplan.cli.{_COMMANDS[n]}")]
+
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        mod = _COMMANDS.get(cmd_name)
+        if mod is None or importlib.util.find_spec(f"spatialplan.cli.{mod}") is None:
+            return None
+        return importlib.import_module(f"spatialplan.cli.{mod}").command
+
+
+@click.group(cls=_LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="spatialplan")
+@click.option("-v", "--verbose", count=True, help="More messages (repeat for debug logging).")
+@click.option("-q", "--quiet", is_flag=True, help="Only warnings and errors.")
+@click.option("--debug", is_flag=True, help="Show Python tracebacks for errors.")
+@click.pass_context
+def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
+    """Plan spatially feasible clear-cut harvests that maximise net present value."""
+    level = logging.WARNING if quiet else (logging.DEBUG if verbose > 1 else logging.INFO)
+    logging.basicConfig(level=level, format="%(levelname)s: %(message)s", force=True)
+    for noisy in ("pyogrio", "fiona", "rasterio", "matplotlib", "distributed", "PIL", "numexpr"):
+        logging.getLogger(noisy).setLevel(max(level, logging.WARNING))
+    ctx.obj = {"debug": debug, "quiet": quiet, "verbose": verbose}
+
+
+def main(argv: list[str] | None = None) -> Any:
+    """Entry point of the console script; maps errors to messages and exit codes."""
+    from spatialplan.cli._common import run_cli
+
+    return run_cli(cli, argv)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

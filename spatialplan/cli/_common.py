@@ -1,0 +1,184 @@
+"""Shared CLI pieces: settings flags, error handling, console output."""
+
+from __future__ import annotations
+
+import functools
+import logging
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import click
+
+from spatialplan.errors import SpatialPlanError
+from spatialplan.settings import Settings, load_settings
+
+__all__ = [
+    "SETTINGS_FLAGS",
+    "console",
+    "ensure_output_path",
+    "run_cli",
+    "settings_from_flags",
+    "settings_options",
+]
+
+log = logging.getLogger("spatialplan")
+
+
+def _csv(value: str | None) -> tuple[str, ...] | None:
+    if value is None:
+        return None
+    return tuple(v.strip() for v in value.split(",") if v.strip())
+
+
+# flag name -> (dotted settings key, click type, help). Flags win over the TOML file.
+SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
+    "layer": ("fields.layer", str, "Layer name inside a multi-layer file (GeoPackage)."),
+    "id-field": ("fields.id_field", str, "Attribute holding the stand id."),
+    "age-field": ("fields.age_field", str, "Attribute holding stand age (years) at the start."),
+    "yield-keys": ("fields.yield_keys", str, "Comma-separated attributes that select the yield table."),
+    "reserve-field": ("fields.reserve_field", str, "Attribute flagging reserve stands (never harvested)."),
+    "cost-class-field": ("fields.cost_class_field", str, "Attribute holding the harvest-cost class."),
+    "crs": ("fields.crs", str, "CRS to assume when the layer has none, e.g. EPSG:32610."),
+    "periods": ("horizon.periods", int, "Number of planning periods."),
+    "period-length": ("horizon.period_length_yr", float, "Length of one period in years."),
+    "max-opening": ("rules.max_opening_ha", float, "Maximum opening (clearcut) size in ha."),
+    "green-up": ("rules.green_up_periods", int, "Green-up delay in periods."),
+    "min-age": ("rules.min_age_yr", float, "Minimum age at harvest (years, at mid-period)."),
+    "flow-tolerance": ("rules.flow_tolerance", float, "Allowed change of volume between periods (fraction)."),
+    "discount-rate": ("economics.discount_rate", float, "Annual discount rate (fraction)."),
+    "price": ("economics.price_per_m3", float, "Single stumpage price per m3."),
+    "gap-tolerance": ("adjacency.gap_tolerance_m", float, "Stands closer than this (m) count as touching."),
+    "min-shared-edge": ("adjacency.min_shared_edge_m", float, "Shared boundary (m) that makes stands adjacent."),
+    "time-limit": ("solver.time_limit_s", float, "Solver time limit in seconds."),
+    "workers": ("solver.workers", int, "CP-SAT search workers."),
+    "seed": ("solver.seed", int, "Random seed of the solver."),
+    "gap": ("solver.gap", float, "Stop when the relative gap to the bound is below this."),
+    "dem": ("terrain.dem", str, "Digital elevation model (GeoTIFF) for slope and operability."),
+    "streams": ("terrain.streams", str, "Stream line layer; a buffer along it is netted out."),
+    "stream-buffer": ("terrain.stream_buffer_m", float, "Stream buffer width in metres."),
+}
+
+_BOOL_FLAGS: dict[str, tuple[str, str]] = {
+    "skip-unmatched": ("fields.skip_unmatched", "Exclude stands whose yield keys have no table."),
+    "corner-adjacency": ("adjacency.corner_adjacency", "Stands touching only at a corner are adjacent."),
+    "unit-restriction": ("rules.unit_restriction", "No two adjacent stands open in the same period."),
+    "non-declining": ("rules.non_declining", "Harvest volume may not fall from one period to the next."),
+}
+
+
+def settings_options(names: list[str]) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    """Decorator adding ``--settings`` and the named settings flags to a command."""
+
+    def deco(f: Callable[..., Any]) -> Callable[..., Any]:
+        for name in reversed(names):
+            if name in SETTINGS_FLAGS:
+                key, tp, hlp = SETTINGS_FLAGS[name]
+                f = click.option(f"--{name}", type=tp, default=None, help=f"{hlp} [{key}]")(f)
+            elif name in _BOOL_FLAGS:
+                key, hlp = _BOOL_FLAGS[name]
+                f = click.option(f"--{name}", is_flag=True, default=None, help=f"{hlp} [{key}]")(f)
+            else:  # pragma: no cover - programming error
+                raise KeyError(name)
+        return click.option(
+            "--settings",
+            "settings_path",
+            type=click.Path(dir_okay=False),
+            default=None,
+            help="TOML settings file; flags override its values.",
+        )(f)
+
+    return deco
+
+
+def settings_from_flags(settings_path: str | None, kwargs: dict[str, Any]) -> Settings:
+    """Load settings from ``--settings`` and apply the flags found in ``kwargs``.
+
+    Consumed keys are removed from ``kwargs``.
+    """
+    overrides: dict[str, Any] = {}
+    for name, (key, _tp, _h) in SETTINGS_FLAGS.items():
+        py = name.replace("-", "_")
+        if py in kwargs:
+            val = kwargs.pop(py)
+            if name == "yield-keys":
+                val = _csv(val)
+            overrides[key] = val
+    for name, (key, _h) in _BOOL_FLAGS.items():
+        py = name.replace("-", "_")
+        if py in kwargs:
+            val = kwargs.pop(py)
+            overrides[key] = True if val else None
+    return load_settings(settings_path, overrides)
+
+
+class _Console:
+    """Thin wrapper over rich so commands print tables and progress consistently."""
+
+    def __init__(self) -> None:
+        from rich.console import Console
+
+        self.out = Console(highlight=False, soft_wrap=True)
+        self.err = Console(stderr=True, highlight=False, soft_wrap=True)
+
+
+@functools.cache
+def console() -> _Console:
+    """The process-wide console."""
+    return _Console()
+
+
+def run_cli(group: click.Group, argv: list[str] | None = None) -> Any:
+    """Run ``group``; user errors print one message and exit with their code, no traceback."""
+    debug = "--debug" in (argv if argv is not None else sys.argv[1:])
+    try:
+        return group.main(args=argv, prog_name="spatialplan", standalone_mode=False)
+    except click.exceptions.Exit as exc:
+        sys.exit(exc.exit_code)
+    except click.ClickException as exc:
+        exc.show()
+        sys.exit(exc.exit_code)
+    except click.Abort:
+        click.echo("Aborted.", err=True)
+        sys.exit(130)
+    except SpatialPlanError as exc:
+        if debug:
+            raise
+        click.echo(f"Error: {exc}", err=True)
+        sys.exit(exc.exit_code)
+    except KeyboardInterrupt:
+        click.echo("Interrupted; nothing further written.", err=True)
+        sys.exit(130)
+    except Exception as exc:  # a bug, not a user mistake: say so plainly
+        if debug:
+            raise
+        click.echo(
+            f"Internal error: {type(exc).__name__}: {exc}\n"
+            "This is a bug in spatialplan; run again with --debug for the traceback.",
+            err=True,
+        )
+        sys.exit(70)
+
+
+def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool) -> None:
+    """Refuse to overwrite an input or an existing output without ``--overwrite``."""
+    from spatialplan.errors import OutputError
+
+    out_r = out.resolve()
+    for p in inputs:
+        if p is not None and Path(p).exists() and Path(p).resolve() == out_r:
+            msg = f"output {out} is the same file as input {p}; choose another --out"
+            raise OutputError(msg)
+    if out.exists() and not overwrite:
+        msg = f"output {out} exists; pass --overwrite to replace it"
+        raise OutputError(msg)
+    parent = out_r.parent
+    if not parent.is_dir():
+        msg = f"output folder {parent} does not exist; create it first"
+        raise OutputError(msg)
+    import os
+
+    if not os.access(parent, os.W_OK):
+        msg = f"output folder {parent} is not writable"
+        raise OutputError(msg)

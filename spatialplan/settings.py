@@ -1,0 +1,525 @@
+"""Run settings: one frozen dataclass tree, loaded from TOML and overridden by CLI flags.
+
+The tree mirrors the TOML sections::
+
+    [fields]      which stand attributes hold id, age, yield keys, reserve flag ...
+    [yields]      column names of the yield-table CSV
+    [horizon]     number and length of planning periods
+    [rules]       opening size, green-up, minimum age, flow, ending inventory ...
+    [adjacency]   how stands are judged to touch
+    [economics]   discount rate, prices, costs
+    [growth]      optional parametric curves and diameter/height by age per stratum
+    [terrain]     DEM, stream layer, slope classes
+    [solver]      time limit, workers, seed, gap
+    [output]      map and raster options
+
+Every value is validated once, at load, with a message naming the TOML key (and its line
+in the file when it came from one) and the allowed range. Dotted keys such as
+``rules.max_opening_ha`` address a value for overrides (CLI flags, scenario files).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import json
+import re
+import tomllib
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from spatialplan.errors import SettingsError
+
+__all__ = [
+    "AdjacencySettings",
+    "ChapmanRichards",
+    "Economics",
+    "FieldMap",
+    "GrowthSettings",
+    "Horizon",
+    "OutputSettings",
+    "PriceClass",
+    "Rules",
+    "Settings",
+    "SolverSettings",
+    "SlopeClass",
+    "StratumCurve",
+    "TerrainSettings",
+    "YieldColumns",
+    "load_settings",
+    "settings_from_dict",
+]
+
+
+def _rng(lo: float | None = None, hi: float | None = None, *, lo_open: bool = False) -> dict:
+    return {"min": lo, "max": hi, "lo_open": lo_open}
+
+
+@dataclass(frozen=True)
+class FieldMap:
+    """Which attributes of the stand layer hold what."""
+
+    id_field: str = "stand_id"
+    age_field: str = "age"
+    yield_keys: tuple[str, ...] = ("stratum",)
+    reserve_field: str | None = None
+    cost_class_field: str | None = None
+    unit_field: str | None = None
+    layer: str | None = None
+    crs: str | None = None  # assigned when the layer has none, e.g. "EPSG:26910"
+    skip_unmatched: bool = False
+
+
+@dataclass(frozen=True)
+class YieldColumns:
+    """Column names of the long-format yield-table CSV (key columns match ``yield_keys``)."""
+
+    age_column: str = "age"
+    volume_column: str = "volume"
+    diameter_column: str = "diameter"  # optional in the file; used when present
+
+
+@dataclass(frozen=True)
+class Horizon:
+    """Planning periods: ``periods`` periods of ``period_length_yr`` years each."""
+
+    periods: int = field(default=10, metadata=_rng(1, 200))
+    period_length_yr: float = field(default=5.0, metadata=_rng(0, 100, lo_open=True))
+
+
+@dataclass(frozen=True)
+class Rules:
+    """Harvest rules. ``None`` switches an optional rule off."""
+
+    max_opening_ha: float | None = field(default=40.0, metadata=_rng(0, None, lo_open=True))
+    green_up_periods: int = field(default=2, metadata=_rng(0, 100))
+    green_up_years: float | None = field(default=None, metadata=_rng(0, None))
+    green_up_height_m: float | None = field(default=None, metadata=_rng(0, None, lo_open=True))
+    unit_restriction: bool = False
+    min_age_yr: float = field(default=0.0, metadata=_rng(0, 1000))
+    flow_tolerance: float | None = field(default=0.10, metadata=_rng(0, 1))
+    non_declining: bool = False
+    period_volume_min_m3: float | None = field(default=None, metadata=_rng(0, None))
+    period_volume_max_m3: float | None = field(default=None, metadata=_rng(0, None))
+    period_area_min_ha: float | None = field(default=None, metadata=_rng(0, None))
+    period_area_max_ha: float | None = field(default=None, metadata=_rng(0, None))
+    ending_volume_fraction: float | None = field(default=None, metadata=_rng(0, 10))
+    ending_mean_age_yr: float | None = field(default=None, metadata=_rng(0, 1000))
+    reharvest: bool = False
+
+
+@dataclass(frozen=True)
+class AdjacencySettings:
+    """When two stands count as neighbours."""
+
+    min_shared_edge_m: float = field(default=1.0, metadata=_rng(0, None))
+    gap_tolerance_m: float = field(default=0.5, metadata=_rng(0, 1000))
+    corner_adjacency: bool = False
+
+
+@dataclass(frozen=True)
+class PriceClass:
+    """One product class of a stumpage price schedule keyed on mean diameter."""
+
+    product: str = "sawlog"
+    min_diameter_cm: float = field(default=0.0, metadata=_rng(0, 500))
+    price_per_m3: float = 0.0
+
+
+@dataclass(frozen=True)
+class Economics:
+    """Prices, costs and the discount rate. All costs default to 0."""
+
+    discount_rate: float = field(default=0.04, metadata=_rng(0, 1))
+    price_per_m3: float | None = None
+    price_schedule: tuple[PriceClass, ...] = ()
+    harvest_cost_per_m3: float = field(default=0.0, metadata=_rng(0, None))
+    harvest_cost_by_class: dict[str, float] = field(default_factory=dict)
+    regeneration_cost_per_ha: float = field(default=0.0, metadata=_rng(0, None))
+    annual_cost_per_ha: float = field(default=0.0, metadata=_rng(0, None))
+    include_land_value: bool = False
+    include_ending_value: bool = False
+
+
+@dataclass(frozen=True)
+class ChapmanRichards:
+    """Chapman-Richards curve ``y(t) = A (1 - exp(-k t))**c``."""
+
+    A: float = field(default=0.0, metadata=_rng(0, None, lo_open=True))
+    k: float = field(default=0.0, metadata=_rng(0, None, lo_open=True))
+    c: float = field(default=1.0, metadata=_rng(0, None, lo_open=True))
+
+
+@dataclass(frozen=True)
+class StratumCurve:
+    """A tabulated curve of some quantity against age (diameter in cm, height in m)."""
+
+    ages: tuple[float, ...] = ()
+    values: tuple[float, ...] = ()
+
+
+@dataclass(frozen=True)
+class GrowthSettings:
+    """Optional per-stratum curves; strata are named by their yield-key values joined by '/'."""
+
+    chapman_richards: dict[str, ChapmanRichards] = field(default_factory=dict)
+    diameter_by_age: dict[str, StratumCurve] = field(default_factory=dict)
+    height_by_age: dict[str, StratumCurve] = field(default_factory=dict)
+    height_chapman_richards: dict[str, ChapmanRichards] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class SlopeClass:
+    """A harvest system used up to ``max_slope_pct`` with its own harvest cost."""
+
+    system: str = "ground"
+    max_slope_pct: float = field(default=35.0, metadata=_rng(0, 10000))
+    harvest_cost_per_m3: float = field(default=0.0, metadata=_rng(0, None))
+
+
+@dataclass(frozen=True)
+class TerrainSettings:
+    """Terrain and net-area inputs (all optional)."""
+
+    dem: str | None = None
+    streams: str | None = None
+    streams_layer: str | None = None
+    stream_buffer_m: float = field(default=15.0, metadata=_rng(0, 10000))
+    stream_buffer_field: str | None = None
+    stream_buffer_by_class: dict[str, float] = field(default_factory=dict)
+    # Common practice, local rules differ: ground-based to ~35 %, cable to ~80 %.
+    slope_classes: tuple[SlopeClass, ...] = (
+        SlopeClass("ground", 35.0, 0.0),
+        SlopeClass("cable", 80.0, 0.0),
+    )
+    steep_threshold_pct: float = field(default=35.0, metadata=_rng(0, 10000))
+    max_inoperable_share: float = field(default=0.5, metadata=_rng(0, 1))
+
+
+@dataclass(frozen=True)
+class SolverSettings:
+    """CP-SAT controls."""
+
+    time_limit_s: float = field(default=60.0, metadata=_rng(0, None, lo_open=True))
+    workers: int = field(default=8, metadata=_rng(1, 256))
+    seed: int = field(default=0, metadata=_rng(0, 2**31 - 1))
+    gap: float = field(default=0.001, metadata=_rng(0, 1))
+
+
+@dataclass(frozen=True)
+class OutputSettings:
+    """Extra outputs."""
+
+    no_map: bool = False
+    basemap: str | None = None
+    raster_out: str | None = None
+    raster_cell_m: float = field(default=10.0, metadata=_rng(0, None, lo_open=True))
+    write_back: bool = False
+
+
+@dataclass(frozen=True)
+class Settings:
+    """All settings of one run."""
+
+    fields: FieldMap = field(default_factory=FieldMap)
+    yields: YieldColumns = field(default_factory=YieldColumns)
+    horizon: Horizon = field(default_factory=Horizon)
+    rules: Rules = field(default_factory=Rules)
+    adjacency: AdjacencySettings = field(default_factory=AdjacencySettings)
+    economics: Economics = field(default_factory=Economics)
+    growth: GrowthSettings = field(default_factory=GrowthSettings)
+    terrain: TerrainSettings = field(default_factory=TerrainSettings)
+    solver: SolverSettings = field(default_factory=SolverSettings)
+    output: OutputSettings = field(default_factory=OutputSettings)
+
+    # ---- derived values used by several stages -------------------------------------
+    @property
+    def green_up_periods_effective(self) -> int:
+        """Green-up delay in whole periods (years are rounded up to whole periods)."""
+        gy = self.rules.green_up_years
+        if gy is not None:
+            return int(-(-gy // self.horizon.period_length_yr))
+        return self.rules.green_up_periods
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain nested dict (JSON/TOML friendly) of every setting."""
+        return _to_plain(self)
+
+    def to_json(self) -> str:
+        """Settings as a JSON string, as recorded in the output GeoPackage."""
+        return json.dumps(self.to_dict(), sort_keys=True)
+
+    def with_overrides(self, overrides: dict[str, Any]) -> Settings:
+        """Return a copy with dotted keys (``"rules.max_opening_ha"``) replaced.
+
+        Values are validated like values read from a file. ``None`` values are skipped
+        so CLI flags that were not given leave the setting alone.
+        """
+        data = self.to_dict()
+        for key, value in overrides.items():
+            if value is None:
+                continue
+            parts = key.split(".")
+            node = data
+            for p in parts[:-1]:
+                if p not in node or not isinstance(node[p], dict):
+                    _unknown_key(key, _all_keys())
+                node = node[p]
+            if parts[-1] not in node and not _is_dict_field(parts):
+                _unknown_key(key, _all_keys())
+            node[parts[-1]] = value
+        return settings_from_dict(data)
+
+
+def _is_dict_field(parts: list[str]) -> bool:
+    """True when ``parts[:-1]`` names a ``dict[str, X]`` setting (free keys)."""
+    cls: Any = Settings
+    for p in parts[:-1]:
+        hints = typing.get_type_hints(cls)
+        if p not in hints:
+            return False
+        tp = hints[p]
+        if dataclasses.is_dataclass(tp):
+            cls = tp
+        else:
+            return typing.get_origin(tp) is dict
+    return False
+
+
+def _to_plain(obj: Any) -> Any:
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: _to_plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    if isinstance(obj, tuple | list):
+        return [_to_plain(v) for v in obj]
+    if isinstance(obj, dict):
+        return {k: _to_plain(v) for k, v in obj.items()}
+    return obj
+
+
+def _all_keys(cls: Any = None, prefix: str = "") -> list[str]:
+    cls = cls or Settings
+    keys = []
+    for name, tp in typing.get_type_hints(cls).items():
+        full = f"{prefix}{name}"
+        if dataclasses.is_dataclass(tp):
+            keys.extend(_all_keys(tp, full + "."))
+        else:
+            keys.append(full)
+    return keys
+
+
+def _unknown_key(key: str, valid: list[str], where: str = "") -> typing.NoReturn:
+    short = key.split(".")[-1]
+    pool = {k.split(".")[-1]: k for k in valid}
+    near = difflib.get_close_matches(key, valid, n=1, cutoff=0.6) or [
+        pool[m] for m in difflib.get_close_matches(short, list(pool), n=1, cutoff=0.6)
+    ]
+    hint = f"; did you mean '{near[0]}'?" if near else ""
+    msg = f"unknown setting '{key}'{where}{hint}"
+    raise SettingsError(msg)
+
+
+class _Ctx:
+    """Where a value came from, to put the TOML line into messages."""
+
+    def __init__(self, text: str | None, path: str | None) -> None:
+        self.text = text
+        self.path = path
+
+    def where(self, key: str) -> str:
+        if self.text is None:
+            return ""
+        line = _find_line(self.text, key)
+        loc = f"{self.path}" if self.path else "settings"
+        return f" ({loc}, line {line})" if line else f" ({loc})"
+
+
+def _find_line(text: str, dotted: str) -> int | None:
+    """Best-effort line number of ``dotted`` key in TOML ``text``."""
+    parts = dotted.split(".")
+    leaf = parts[-1]
+    section = ".".join(parts[:-1])
+    current = ""
+    pat_sec = re.compile(r"^\s*\[\[?\s*([^\]]+?)\s*\]\]?\s*$")
+    pat_key = re.compile(r"^\s*(\"?[\w\-/ .]+\"?)\s*=")
+    fallback = None
+    for i, line in enumerate(text.splitlines(), start=1):
+        m = pat_sec.match(line)
+        if m:
+            current = m.group(1).replace('"', "")
+            continue
+        m = pat_key.match(line)
+        if m:
+            k = m.group(1).strip().strip('"')
+            full = f"{current}.{k}" if current else k
+            if full == dotted or (current == section and k == leaf):
+                return i
+            if k == leaf and fallback is None:
+                fallback = i
+    return fallback
+
+
+def _convert(tp: Any, value: Any, key: str, ctx: _Ctx, meta: dict | None = None) -> Any:
+    origin = typing.get_origin(tp)
+    args = typing.get_args(tp)
+    if origin in (types.UnionType, typing.Union):
+        if value is None:
+            return None
+        inner = [a for a in args if a is not type(None)]
+        return _convert(inner[0], value, key, ctx, meta)
+    if dataclasses.is_dataclass(tp):
+        if not isinstance(value, dict):
+            _type_error(key, value, "a table", ctx)
+        return _build(tp, value, key + ".", ctx)
+    if origin is tuple:
+        if isinstance(value, str) and args and args[0] is str:
+            value = [v.strip() for v in value.split(",") if v.strip()]
+        if not isinstance(value, list | tuple):
+            _type_error(key, value, "a list", ctx)
+        return tuple(_convert(args[0], v, f"{key}[{i}]", ctx) for i, v in enumerate(value))
+    if origin is dict:
+        if not isinstance(value, dict):
+            _type_error(key, value, "a table", ctx)
+        return {str(k): _convert(args[1], v, f"{key}.{k}", ctx) for k, v in value.items()}
+    if tp is bool:
+        if not isinstance(value, bool):
+            _type_error(key, value, "true or false", ctx)
+        return value
+    if tp is int:
+        if isinstance(value, bool) or not (
+            isinstance(value, int) or (isinstance(value, float) and value.is_integer())
+        ):
+            _type_error(key, value, "a whole number", ctx)
+        value = int(value)
+    elif tp is float:
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            _type_error(key, value, "a number", ctx)
+        value = float(value)
+        if value != value:  # NaN
+            _type_error(key, value, "a number", ctx)
+    elif tp is str:
+        if not isinstance(value, str):
+            _type_error(key, value, "a text string", ctx)
+        return value
+    if meta and isinstance(value, int | float):
+        lo, hi, lo_open = meta.get("min"), meta.get("max"), meta.get("lo_open", False)
+        bad = (lo is not None and (value < lo or (lo_open and value == lo))) or (
+            hi is not None and value > hi
+        )
+        if bad:
+            lo_s = "-inf" if lo is None else f"{lo:g}"
+            hi_s = "inf" if hi is None else f"{hi:g}"
+            bracket = "(" if lo_open else "["
+            msg = (
+                f"setting '{key}' = {value!r} is out of range{ctx.where(key)}; "
+                f"allowed {bracket}{lo_s}, {hi_s}]"
+            )
+            raise SettingsError(msg)
+    return value
+
+
+def _type_error(key: str, value: Any, expected: str, ctx: _Ctx) -> typing.NoReturn:
+    msg = f"setting '{key}' must be {expected}, got {value!r}{ctx.where(key)}"
+    raise SettingsError(msg)
+
+
+def _build(cls: Any, data: dict, prefix: str, ctx: _Ctx) -> Any:
+    hints = typing.get_type_hints(cls)
+    flds = {f.name: f for f in dataclasses.fields(cls)}
+    kwargs = {}
+    for key, value in data.items():
+        if key not in hints:
+            valid = [prefix + k for k in hints]
+            _unknown_key(prefix + key, valid + _all_keys(), ctx.where(prefix + key))
+        kwargs[key] = _convert(hints[key], value, prefix + key, ctx, dict(flds[key].metadata))
+    return cls(**kwargs)
+
+
+def settings_from_dict(
+    data: dict[str, Any], *, text: str | None = None, path: str | None = None
+) -> Settings:
+    """Build and validate :class:`Settings` from a nested dict (as parsed from TOML).
+
+    Parameters
+    ----------
+    data
+        Nested mapping of sections to keys.
+    text, path
+        The TOML source and its file name, used only to name lines in messages.
+
+    Returns
+    -------
+    Settings
+        The validated settings.
+    """
+    ctx = _Ctx(text, path)
+    s = _build(Settings, data, "", ctx)
+    _check_consistency(s, ctx)
+    return s
+
+
+def _check_consistency(s: Settings, ctx: _Ctx) -> None:
+    r = s.rules
+    problems = []
+    pairs = [
+        ("period_volume_min_m3", "period_volume_max_m3"),
+        ("period_area_min_ha", "period_area_max_ha"),
+    ]
+    for lo, hi in pairs:
+        a, b = getattr(r, lo), getattr(r, hi)
+        if a is not None and b is not None and a > b:
+            problems.append(
+                f"contradictory rules: rules.{lo} = {a:g} is above rules.{hi} = {b:g}"
+                f"{ctx.where('rules.' + lo)}"
+            )
+    if r.green_up_years is not None and r.green_up_height_m is not None:
+        problems.append(
+            "contradictory rules: give either rules.green_up_years or rules.green_up_height_m"
+        )
+    ms = [c.max_slope_pct for c in s.terrain.slope_classes]
+    if ms != sorted(ms):
+        problems.append("terrain.slope_classes must be ordered by increasing max_slope_pct")
+    if problems:
+        raise SettingsError("\n".join(problems))
+
+
+def load_settings(path: str | Path | None = None, overrides: dict[str, Any] | None = None) -> Settings:
+    """Read settings from a TOML file (or defaults) and apply dotted-key overrides.
+
+    Parameters
+    ----------
+    path
+        A TOML settings file, or ``None`` for the defaults.
+    overrides
+        Dotted keys to values; ``None`` values are ignored (flags that were not given).
+
+    Returns
+    -------
+    Settings
+
+    Raises
+    ------
+    SettingsError
+        Unknown key (with the nearest valid key), wrong type or out-of-range value,
+        naming the key and its line in the file.
+    """
+    if path is None:
+        s = Settings()
+    else:
+        p = Path(path)
+        if not p.is_file():
+            msg = f"settings file not found: {p}"
+            raise SettingsError(msg)
+        text = p.read_text(encoding="utf-8")
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            msg = f"settings file {p} is not valid TOML: {exc}"
+            raise SettingsError(msg) from None
+        s = settings_from_dict(data, text=text, path=str(p))
+    if overrides:
+        s = s.with_overrides(overrides)
+    return s
