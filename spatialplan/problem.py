@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["PlanProblem", "FlowRules"]
+__all__ = ["FlowRules", "PlanProblem"]
 
 
 @dataclass(frozen=True)
@@ -79,6 +79,13 @@ class PlanProblem:
         stand is not harvested, column ``p`` when harvested in period ``p``.
     ending_age_yr
         (n, P + 1) age at the end of the horizon, same layout.
+    eligible_no_min_age
+        Optional (n, P) bool: ``eligible`` without the minimum-age rule (reserves and
+        operability still applied). Lets the scheduler's diagnosis test a lower minimum
+        age.
+    min_age_yr
+        Optional minimum harvest age (at mid-period) that went into ``eligible``; used
+        with ``eligible_no_min_age`` by the diagnosis.
     """
 
     stand_ids: np.ndarray
@@ -98,11 +105,13 @@ class PlanProblem:
     flow: FlowRules = field(default_factory=FlowRules)
     ending_volume_m3_ha: np.ndarray | None = None
     ending_age_yr: np.ndarray | None = None
+    eligible_no_min_age: np.ndarray | None = None
+    min_age_yr: float | None = None
 
     @property
     def n_stands(self) -> int:
         """Number of stands."""
-        return int(len(self.stand_ids))
+        return len(self.stand_ids)
 
     def validate(self) -> None:
         """Check array shapes; raises ``ValueError`` on a programming error."""

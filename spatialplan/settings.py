@@ -44,8 +44,8 @@ __all__ = [
     "PriceClass",
     "Rules",
     "Settings",
-    "SolverSettings",
     "SlopeClass",
+    "SolverSettings",
     "StratumCurve",
     "TerrainSettings",
     "YieldColumns",
@@ -88,6 +88,8 @@ class Horizon:
 
     periods: int = field(default=10, metadata=_rng(1, 200))
     period_length_yr: float = field(default=5.0, metadata=_rng(0, 100, lo_open=True))
+    # Calendar year of the plan start; 0 reports harvest years as years from the start.
+    start_year: int = field(default=0, metadata=_rng(0, 3000))
 
 
 @dataclass(frozen=True)
@@ -197,6 +199,11 @@ class TerrainSettings:
     )
     steep_threshold_pct: float = field(default=35.0, metadata=_rng(0, 10000))
     max_inoperable_share: float = field(default=0.5, metadata=_rng(0, 1))
+    # The harvest system is the lowest class covering at least this share of the stand's area
+    # (design choice of spatialplan, adjustable).
+    system_cover_share: float = field(default=0.8, metadata=_rng(0, 1, lo_open=True))
+    # Metres per DEM elevation unit (0.3048 when elevations are in feet).
+    elevation_unit_m: float = field(default=1.0, metadata=_rng(0, None, lo_open=True))
 
 
 @dataclass(frozen=True)
@@ -486,6 +493,20 @@ def _check_consistency(s: Settings, ctx: _Ctx) -> None:
         raise SettingsError("\n".join(problems))
 
 
+_PATH_KEYS = (("terrain", "dem"), ("terrain", "streams"))
+
+
+def _resolve_paths(s: Settings, base: Path) -> Settings:
+    """Make file paths given in a settings file relative to that file's folder."""
+    for section, key in _PATH_KEYS:
+        sub = getattr(s, section)
+        value = getattr(sub, key)
+        if value and not Path(value).is_absolute():
+            sub = dataclasses.replace(sub, **{key: str((base / value).resolve())})
+            s = dataclasses.replace(s, **{section: sub})
+    return s
+
+
 def load_settings(path: str | Path | None = None, overrides: dict[str, Any] | None = None) -> Settings:
     """Read settings from a TOML file (or defaults) and apply dotted-key overrides.
 
@@ -520,6 +541,7 @@ def load_settings(path: str | Path | None = None, overrides: dict[str, Any] | No
             msg = f"settings file {p} is not valid TOML: {exc}"
             raise SettingsError(msg) from None
         s = settings_from_dict(data, text=text, path=str(p))
+        s = _resolve_paths(s, p.parent)
     if overrides:
         s = s.with_overrides(overrides)
     return s

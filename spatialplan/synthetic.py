@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import shapely
 
-__all__ = ["smooth_field", "voronoi_forest", "synthetic_yield_table"]
+__all__ = ["smooth_field", "synthetic_yield_table", "voronoi_forest"]
 
 
 def smooth_field(xy: np.ndarray, rng: np.random.Generator, scale_m: float, n_bumps: int = 40) -> np.ndarray:
@@ -108,7 +108,7 @@ def voronoi_forest(
         # A wavy band across the extent, like a stream corridor.
         yb = y0 + side * (0.5 + 0.15 * np.sin((xy[:, 0] - x0) / side * 2 * np.pi))
         dist = np.abs(xy[:, 1] - yb)
-        k = max(1, int(round(reserve_share * n)))
+        k = max(1, round(reserve_share * n))
         reserve[np.argsort(dist)[:k]] = 1
     width = len(str(n))
     gdf = gpd.GeoDataFrame(

@@ -1,0 +1,1 @@
+"""Bundled demo forest (Brennick Hollow Forest, an invented forest); see make_demo.py."""

@@ -1,0 +1,149 @@
+"""``spatialplan plan``: build, solve, verify and write a harvest schedule."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import click
+
+from spatialplan.cli._common import (
+    console,
+    ensure_output_path,
+    settings_from_flags,
+    settings_options,
+)
+
+PLAN_FLAGS = [
+    "layer", "id-field", "age-field", "yield-keys", "reserve-field", "cost-class-field", "crs",
+    "skip-unmatched", "periods", "period-length", "max-opening", "green-up", "min-age",
+    "flow-tolerance", "non-declining", "unit-restriction", "discount-rate", "price",
+    "gap-tolerance", "min-shared-edge", "corner-adjacency", "time-limit", "workers", "seed", "gap",
+    "dem", "streams", "stream-buffer",
+]
+
+
+def output_options(f: Any) -> Any:
+    """Options shared by ``plan`` and ``demo`` for the extra outputs."""
+    f = click.option("--write-back", is_flag=True, default=None,
+                     help="Also add the result layers (prefixed plan_) to the input GeoPackage.")(f)
+    f = click.option("--raster-out", type=click.Path(dir_okay=False), default=None,
+                     help="Also write a GeoTIFF of harvest period.")(f)
+    f = click.option("--raster-cell", type=float, default=None, help="Cell size (m) of --raster-out.")(f)
+    f = click.option("--basemap", default=None,
+                     help="Tile URL template for a map background (off by default: maps work offline).")(f)
+    f = click.option("--no-map", is_flag=True, default=None, help="Skip the HTML map, report and charts.")(f)
+    return f
+
+
+def output_overrides(kwargs: dict[str, Any]) -> dict[str, Any]:
+    """Dotted settings keys for the output flags (consumed from ``kwargs``)."""
+    return {
+        "output.no_map": kwargs.pop("no_map") or None,
+        "output.basemap": kwargs.pop("basemap"),
+        "output.raster_out": kwargs.pop("raster_out"),
+        "output.raster_cell_m": kwargs.pop("raster_cell"),
+        "output.write_back": kwargs.pop("write_back") or None,
+    }
+
+
+@click.command("plan")
+@click.argument("stands", type=click.Path(dir_okay=False))
+@click.option("--yields", "yields_path", type=click.Path(dir_okay=False), default=None,
+              help="Yield-table CSV (long format: key columns, age, volume).")
+@click.option("--out", "out", type=click.Path(dir_okay=False), required=True,
+              help="Output GeoPackage (map, report and charts are written beside it).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing output.")
+@output_options
+@settings_options(PLAN_FLAGS)
+def command(stands: str, yields_path: str | None, out: str, overwrite: bool,
+            settings_path: str | None, **kwargs: Any) -> None:
+    """Plan which stands to clear-cut in each period to maximise NPV under the rules.
+
+    Exit codes: 0 verified plan written; 1 bad input or a plan that failed verification;
+    2 the rules are infeasible (with a diagnosis); 3 no plan found within the time limit.
+    """
+    outs = output_overrides(kwargs)
+    settings = settings_from_flags(settings_path, kwargs)
+    settings = settings.with_overrides(outs)
+    code = run_and_report(stands, yields_path, Path(out), overwrite, settings)
+    if code:
+        raise SystemExit(code)
+
+
+def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path, overwrite: bool,
+                   settings: Any) -> int:
+    """Run the plan pipeline with a live progress display; print the summary."""
+    from rich.live import Live
+    from rich.markup import escape
+    from rich.table import Table
+
+    from spatialplan.pipeline import load_inputs, run_plan
+
+    con = console()
+    inputs_list = [Path(stands)] + ([Path(yields_path)] if yields_path else [])
+    for k in ("dem", "streams"):
+        v = getattr(settings.terrain, k)
+        if v:
+            inputs_list.append(Path(v))
+    ensure_output_path(out, inputs_list, overwrite)
+    inputs = load_inputs(stands, yields_path, settings)
+    for p in inputs.inventory.warnings:
+        con.err.print(f"{p.severity}: {escape(p.text())}")
+
+    state: dict[str, Any] = {"stage": "reading", "p": None}
+
+    def render() -> str:
+        p = state["p"]
+        if p is None:
+            return f"[bold]{state['stage']}[/bold]"
+        best = "-" if p.best_npv is None else f"{p.best_npv:,.0f}"
+        bound = "-" if p.bound is None else f"{p.bound:,.0f}"
+        gap = "-" if p.gap is None else f"{100 * p.gap:.2f} %"
+        return (f"[bold]{state['stage']}[/bold]  elapsed {p.elapsed_s:6.1f} s  best NPV {best}  "
+                f"bound {bound}  gap {gap}")
+
+    live = Live(render(), console=con.err, refresh_per_second=4, transient=True)
+
+    def on_stage(name: str) -> None:
+        state["stage"] = name
+        live.update(render())
+
+    def on_progress(p: Any) -> None:
+        state["p"] = p
+        live.update(render())
+
+    with live:
+        outcome = run_plan(inputs, out, on_progress=on_progress, on_stage=on_stage)
+    r = outcome.result
+    for m in outcome.messages:
+        con.err.print(f"note: {escape(m)}")
+    t = Table(title=f"Plan written to {out}")
+    t.add_column("item")
+    t.add_column("value", justify="right")
+    t.add_row("solver status", r.status + (" (best plan so far)" if r.status in ("interrupted", "time_limit") else ""))
+    t.add_row("NPV", f"{r.npv:,.0f}")
+    t.add_row("LP upper bound (no spatial rules)", f"{r.lp_bound:,.0f}")
+    if r.cpsat_bound is not None:
+        t.add_row("CP-SAT bound", f"{r.cpsat_bound:,.0f}")
+    t.add_row("gap to best bound", f"{100 * r.gap:.2f} %")
+    t.add_row("stands harvested", f"{int((outcome.schedule['period'].fillna(0) > 0).sum())}")
+    t.add_row("solve time", f"{r.solve_time_s:.1f} s")
+    t.add_row("verify", outcome.verify.verdict)
+    con.out.print(t)
+    pt = Table(title="Harvest by period")
+    for c in ("period", "area (ha)", "volume (m3)", "discounted value", "largest opening (ha)"):
+        pt.add_column(c, justify="right")
+    pdf = outcome.periods
+    for _, row in pdf.iterrows():
+        pt.add_row(f"{int(row['period'])}", f"{row['area_ha']:,.1f}", f"{row['volume_m3']:,.0f}",
+                   f"{row['discounted_value']:,.0f}", f"{row['largest_opening_ha']:,.1f}")
+    con.out.print(pt)
+    for f in outcome.extra_files:
+        con.out.print(f"wrote {f}", markup=False)
+    if not outcome.verify.ok:
+        for v in outcome.verify.violations[:50]:
+            con.err.print(f"violation: {escape(str(v.message))}")
+        con.err.print("[bold red]The plan failed independent verification; do not use it.[/bold red]")
+        return 1
+    return 0

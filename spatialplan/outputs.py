@@ -1,0 +1,824 @@
+"""Plan outputs for GIS staff: openings, summary tables, the plan GeoPackage, a period raster.
+
+The functions here take plain data (the schedule GeoDataFrame with an integer ``period``
+column, numpy arrays from the planning problem, settings) and return frames or write
+files. Every file is written through :func:`spatialplan._io.atomic_path`, so a failure
+part-way never leaves a half-written output and an earlier file stays intact.
+
+Openness follows ``docs/architecture.md``: a stand harvested in period ``q`` is open in
+periods ``q .. q + G - 1``; a stand young at the start is open where ``initially_open``
+says so. An *opening* is a connected group (over the adjacency edges) of stands open
+in the same period.
+"""
+
+from __future__ import annotations
+
+import logging
+import shutil
+import sqlite3
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+from xml.sax.saxutils import escape as xml_escape
+from xml.sax.saxutils import quoteattr
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import shapely
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+
+from spatialplan._io import atomic_path
+from spatialplan.errors import OutputError
+
+__all__ = [
+    "NOT_HARVESTED_COLOUR",
+    "OPENING_COLOUR",
+    "RESERVE_COLOUR",
+    "opening_table",
+    "period_colours",
+    "period_table",
+    "read_run_table",
+    "run_table",
+    "strata_table",
+    "write_back",
+    "write_period_raster",
+    "write_plan_geopackage",
+]
+
+log = logging.getLogger(__name__)
+
+# Light warm grey for stands the plan leaves standing; light enough to sit behind the
+# palette's lightest period colour, neutral so it does not read as a period.
+NOT_HARVESTED_COLOUR = "#e9e7e2"
+RESERVE_COLOUR = "#202020"  # dashed outline of reserves; the pattern, not the hue, tells them apart
+OPENING_COLOUR = "#d1495b"  # outline of openings (drawn without fill)
+STAND_EDGE_COLOUR = "#6b6b6b"
+
+_GPKG_APP_IDS = {0x47504B47, 0x47503130, 0x47503131}  # "GPKG", "GP10", "GP11"
+_MARKER = "spatialplan plan output"
+
+
+# ---------------------------------------------------------------------------------------
+# palette
+# ---------------------------------------------------------------------------------------
+def period_colours(periods: int) -> list[str]:
+    """Fill colour of each harvest period ``1 .. periods`` as ``#rrggbb``.
+
+    Samples matplotlib's *viridis* map evenly between 0 and 0.9. Viridis is perceptually
+    uniform and its lightness rises monotonically (van der Walt & Smith, "A better default
+    colormap for Matplotlib", SciPy 2015), so early periods are dark and late ones light,
+    which reads in order in colour, in greyscale and for the common colour-vision
+    deficiencies. The top 10 % (bright yellow) is left out so the latest period stays
+    clearly apart from the light neutral used for unharvested stands.
+
+    Parameters
+    ----------
+    periods
+        Number of planning periods (>= 1).
+
+    Returns
+    -------
+    list of str
+        ``periods`` hex colours, early to late.
+    """
+    from matplotlib import colormaps
+    from matplotlib.colors import to_hex
+
+    cmap = colormaps["viridis"]
+    if periods <= 1:
+        return [to_hex(cmap(0.45))]
+    return [to_hex(cmap(x)) for x in np.linspace(0.0, 0.9, periods)]
+
+
+# ---------------------------------------------------------------------------------------
+# openings
+# ---------------------------------------------------------------------------------------
+def _period_array(values: Any) -> np.ndarray:
+    """Integer harvest period per stand, 0 where not harvested (null/NaN/0)."""
+    s = pd.to_numeric(pd.Series(values), errors="coerce").fillna(0)
+    return s.to_numpy(dtype=np.int64)
+
+
+def open_matrix(
+    period: np.ndarray, periods: int, green_up_periods: np.ndarray, initially_open: np.ndarray
+) -> np.ndarray:
+    """(n, P) bool: stand open in period ``p`` (column ``p - 1``).
+
+    Harvested in ``q`` -> open in ``q .. q + G - 1``; or open because young at the start.
+    """
+    per = np.asarray(period, dtype=np.int64)
+    n = len(per)
+    g = np.broadcast_to(np.asarray(green_up_periods, dtype=np.int64), (n,))
+    p = np.arange(1, periods + 1)[None, :]
+    harvested = (per[:, None] > 0) & (p >= per[:, None]) & (p <= per[:, None] + g[:, None] - 1)
+    init = np.zeros((n, periods), dtype=bool) if initially_open is None else initially_open
+    return harvested | np.asarray(init, dtype=bool).reshape(n, periods)
+
+
+def opening_table(
+    schedule: gpd.GeoDataFrame,
+    edges: np.ndarray,
+    periods: int,
+    green_up_periods: np.ndarray,
+    initially_open: np.ndarray,
+    max_opening_ha: float | None,
+    opening_area_ha: np.ndarray,
+    id_col: str = "stand_id",
+) -> tuple[gpd.GeoDataFrame, np.ndarray]:
+    """Openings of every period, dissolved, and the opening of each harvested stand.
+
+    Parameters
+    ----------
+    schedule
+        Stands by position ``0 .. n-1`` with an integer ``period`` column (0 or null =
+        not harvested), ``id_col`` and geometry.
+    edges
+        (m, 2) adjacent stand positions.
+    periods
+        Number of planning periods ``P``.
+    green_up_periods
+        (n,) or scalar green-up delay in periods.
+    initially_open
+        (n, P) bool: open because young at the start.
+    max_opening_ha
+        The area limit recorded beside each opening (``None`` = no limit, stored as NaN).
+    opening_area_ha
+        (n,) area each stand counts toward opening size.
+    id_col
+        Stand id column.
+
+    Returns
+    -------
+    openings : geopandas.GeoDataFrame
+        One row per opening per period: ``opening_id`` (``"P03-0007"``), ``period``,
+        ``area_ha``, ``stand_count``, ``new_harvest_ha`` (area harvested in that very
+        period), ``max_opening_ha``, ``stand_ids`` (comma-separated), geometry (in the
+        schedule's CRS).
+    stand_opening : numpy.ndarray
+        (n,) text: the opening a stand belongs to in its harvest period, ``""`` when not
+        harvested (or not open in its harvest period, e.g. green-up 0).
+    """
+    n = len(schedule)
+    per = _period_array(schedule["period"])
+    area = np.asarray(opening_area_ha, dtype=float).reshape(n)
+    is_open = open_matrix(per, periods, green_up_periods, initially_open)
+    e = np.asarray(edges, dtype=np.int64).reshape(-1, 2)
+    ids = schedule[id_col].astype(str).to_numpy()
+    geoms = np.asarray(schedule.geometry.values)
+    width = max(2, len(str(periods)))
+    limit = np.nan if max_opening_ha is None else float(max_opening_ha)
+
+    rows: list[dict[str, Any]] = []
+    out_geoms: list[Any] = []
+    stand_opening = np.full(n, "", dtype=object)
+    for p in range(1, periods + 1):
+        op = is_open[:, p - 1]
+        if not op.any():
+            continue
+        keep = op[e[:, 0]] & op[e[:, 1]] if len(e) else np.zeros(0, dtype=bool)
+        sub = e[keep]
+        graph = coo_matrix((np.ones(len(sub)), (sub[:, 0], sub[:, 1])), shape=(n, n))
+        _, lab = connected_components(graph, directed=False)
+        members = np.flatnonzero(op)
+        labs = lab[members]
+        # Number openings by their first stand position so ids are stable across runs.
+        uniq, first = np.unique(labs, return_index=True)
+        order = np.argsort(members[first])
+        seq = np.empty(len(uniq), dtype=np.int64)
+        seq[order] = np.arange(1, len(uniq) + 1)
+        seq_of = seq[np.searchsorted(uniq, labs)]
+        swidth = max(4, len(str(len(uniq))))
+        for k in range(1, len(uniq) + 1):
+            idx = members[seq_of == k]
+            oid = f"P{p:0{width}d}-{k:0{swidth}d}"
+            newly = idx[per[idx] == p]
+            stand_opening[newly] = oid
+            rows.append(
+                {
+                    "opening_id": oid,
+                    "period": p,
+                    "area_ha": float(area[idx].sum()),
+                    "stand_count": len(idx),
+                    "new_harvest_ha": float(area[newly].sum()),
+                    "max_opening_ha": limit,
+                    "stand_ids": ",".join(ids[idx]),
+                }
+            )
+            out_geoms.append(shapely.union_all(geoms[idx]))
+    cols = ["opening_id", "period", "area_ha", "stand_count", "new_harvest_ha",
+            "max_opening_ha", "stand_ids"]  # fmt: skip
+    frame = pd.DataFrame(rows, columns=cols)
+    frame["period"] = frame["period"].astype(np.int64)
+    frame["stand_count"] = frame["stand_count"].astype(np.int64)
+    g = np.asarray(out_geoms, dtype=object)
+    # One geometry type per layer: polygons become multipolygons where any group is split.
+    if len(g) and (shapely.get_type_id(g) == 6).any():
+        single = shapely.get_type_id(g) == 3
+        g[single] = shapely.multipolygons([[x] for x in g[single]]) if single.any() else g[single]
+    openings = gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(g, crs=schedule.crs), crs=schedule.crs)
+    return openings, stand_opening.astype(str)
+
+
+# ---------------------------------------------------------------------------------------
+# tables
+# ---------------------------------------------------------------------------------------
+def _get(settings: Any, dotted: str, default: Any = None) -> Any:
+    """Read ``horizon.periods`` style keys from a Settings tree or a nested mapping."""
+    node = settings
+    for part in dotted.split("."):
+        if node is None:
+            return default
+        node = node.get(part) if isinstance(node, Mapping) else getattr(node, part, None)
+    return default if node is None else node
+
+
+def _area_column(frame: pd.DataFrame, area_col: str | None) -> str:
+    if area_col is not None:
+        return area_col
+    return "net_area_ha" if "net_area_ha" in frame.columns else "area_ha"
+
+
+def _col(frame: pd.DataFrame, name: str) -> np.ndarray:
+    if name not in frame.columns:
+        return np.full(len(frame), np.nan)
+    return pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=float)
+
+
+def period_table(
+    schedule: pd.DataFrame,
+    settings: Any,
+    openings: pd.DataFrame | None = None,
+    *,
+    area_col: str | None = None,
+) -> pd.DataFrame:
+    """Per-period summary of a plan.
+
+    Parameters
+    ----------
+    schedule
+        Stand frame with ``period`` (0/null = not harvested), ``area_ha`` or
+        ``net_area_ha``, ``volume_m3`` (stand total), ``value`` (discounted), and optionally
+        ``gross_value`` (undiscounted net value) and ``age_at_harvest``.
+    settings
+        :class:`spatialplan.settings.Settings` (or the same tree as nested dicts): reads
+        ``horizon.periods``, ``horizon.period_length_yr`` and the flow rules.
+    openings
+        Frame from :func:`opening_table` (for the largest opening per period).
+    area_col
+        Harvested-area column (default ``net_area_ha`` when present, else ``area_ha``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per period ``1 .. P``: ``period``, ``start_yr``, ``mid_yr``, ``end_yr``
+        (years from the plan start), ``harvest_area_ha``, ``harvest_volume_m3``,
+        ``gross_value``, ``discounted_value``, ``mean_age_at_harvest_yr`` (area weighted),
+        ``stands_harvested``, ``opening_count``, ``largest_opening_ha``,
+        ``flow_lower_m3``, ``flow_upper_m3`` (volume bounds that applied to this period
+        given the previous period's harvest, the tolerance, non-declining flow and the
+        per-period targets; NaN = unbounded), ``flow_ok``, ``area_lower_ha``,
+        ``area_upper_ha``.
+    """
+    P = int(_get(settings, "horizon.periods", 10))
+    L = float(_get(settings, "horizon.period_length_yr", 5.0))
+    tol = _get(settings, "rules.flow_tolerance")
+    non_declining = bool(_get(settings, "rules.non_declining", False))
+    vmin = _get(settings, "rules.period_volume_min_m3")
+    vmax = _get(settings, "rules.period_volume_max_m3")
+    amin = _get(settings, "rules.period_area_min_ha")
+    amax = _get(settings, "rules.period_area_max_ha")
+
+    per = _period_array(schedule["period"])
+    area = np.nan_to_num(_col(schedule, _area_column(schedule, area_col)))
+    vol = np.nan_to_num(_col(schedule, "volume_m3"))
+    val = np.nan_to_num(_col(schedule, "value"))
+    gross = _col(schedule, "gross_value")
+    age = _col(schedule, "age_at_harvest")
+
+    idx = np.clip(per, 0, P)  # bincount slot 0 collects unharvested stands
+    def by_period(x: np.ndarray) -> np.ndarray:
+        return np.bincount(idx, weights=x, minlength=P + 1)[1:]
+
+    h_area = by_period(area)
+    h_vol = by_period(vol)
+    disc = by_period(val)
+    gross_p = by_period(np.nan_to_num(gross)) if np.isfinite(gross).any() else np.full(P, np.nan)
+    ok_age = np.isfinite(age)
+    age_w = np.bincount(idx[ok_age], weights=(age * area)[ok_age], minlength=P + 1)[1:]
+    age_a = np.bincount(idx[ok_age], weights=area[ok_age], minlength=P + 1)[1:]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_age = np.where(age_a > 0, age_w / age_a, np.nan)
+    count = np.bincount(idx, minlength=P + 1)[1:]
+
+    largest = np.zeros(P)
+    n_open = np.zeros(P, dtype=np.int64)
+    if openings is not None and len(openings):
+        op = openings["period"].to_numpy(dtype=np.int64)
+        oa = openings["area_ha"].to_numpy(dtype=float)
+        ok = (op >= 1) & (op <= P)
+        np.maximum.at(largest, op[ok] - 1, oa[ok])
+        n_open = np.bincount(op[ok] - 1, minlength=P)[:P]
+
+    lower = np.full(P, np.nan)
+    upper = np.full(P, np.nan)
+    for j in range(P):
+        lo, hi = -np.inf, np.inf
+        if j > 0:
+            prev = h_vol[j - 1]
+            if tol is not None:
+                lo, hi = (1.0 - tol) * prev, (1.0 + tol) * prev
+            if non_declining:
+                lo = max(lo, prev)
+        if vmin is not None:
+            lo = max(lo, float(vmin))
+        if vmax is not None:
+            hi = min(hi, float(vmax))
+        lower[j] = lo if np.isfinite(lo) else np.nan
+        upper[j] = hi if np.isfinite(hi) else np.nan
+    # Solvers work on scaled integers: allow a relative slack of 1e-6 when judging.
+    slack = 1e-6 * np.maximum(1.0, h_vol)
+    flow_ok = (np.isnan(lower) | (h_vol >= lower - slack)) & (np.isnan(upper) | (h_vol <= upper + slack))
+
+    start = np.arange(P) * L
+    return pd.DataFrame(
+        {
+            "period": np.arange(1, P + 1, dtype=np.int64),
+            "start_yr": start,
+            "mid_yr": start + 0.5 * L,
+            "end_yr": start + L,
+            "harvest_area_ha": h_area,
+            "harvest_volume_m3": h_vol,
+            "gross_value": gross_p,
+            "discounted_value": disc,
+            "mean_age_at_harvest_yr": mean_age,
+            "stands_harvested": count.astype(np.int64),
+            "opening_count": n_open.astype(np.int64),
+            "largest_opening_ha": largest,
+            "flow_lower_m3": lower,
+            "flow_upper_m3": upper,
+            "flow_ok": flow_ok,
+            "area_lower_ha": np.full(P, np.nan if amin is None else float(amin)),
+            "area_upper_ha": np.full(P, np.nan if amax is None else float(amax)),
+        }
+    )
+
+
+def strata_table(
+    schedule: pd.DataFrame,
+    settings: Any,
+    *,
+    area_col: str | None = None,
+    stratum_col: str = "stratum",
+) -> pd.DataFrame:
+    """Harvest by stratum and period (every combination, zeros included).
+
+    Parameters
+    ----------
+    schedule
+        Stand frame with ``period``, ``stratum_col``, an area column and ``volume_m3``.
+    settings
+        Settings tree (reads ``horizon.periods``).
+    area_col
+        Area column (default ``net_area_ha`` when present, else ``area_ha``).
+    stratum_col
+        Stratum label column.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``stratum``, ``period``, ``harvest_area_ha``, ``harvest_volume_m3``,
+        ``stratum_area_ha`` (all stands of the stratum), sorted by stratum then period.
+    """
+    P = int(_get(settings, "horizon.periods", 10))
+    per = _period_array(schedule["period"])
+    area = np.nan_to_num(_col(schedule, _area_column(schedule, area_col)))
+    vol = np.nan_to_num(_col(schedule, "volume_m3"))
+    strat = schedule[stratum_col].astype(str).to_numpy()
+    labels, code = np.unique(strat, return_inverse=True)
+    S = len(labels)
+    harvested = (per >= 1) & (per <= P)
+    slot = code * P + (per - 1)
+    h_area = np.bincount(slot[harvested], weights=area[harvested], minlength=S * P)
+    h_vol = np.bincount(slot[harvested], weights=vol[harvested], minlength=S * P)
+    total = np.bincount(code, weights=area, minlength=S)
+    return pd.DataFrame(
+        {
+            "stratum": np.repeat(labels, P),
+            "period": np.tile(np.arange(1, P + 1, dtype=np.int64), S),
+            "harvest_area_ha": h_area,
+            "harvest_volume_m3": h_vol,
+            "stratum_area_ha": np.repeat(total, P),
+        }
+    )
+
+
+def run_table(info: Mapping[str, Any]) -> pd.DataFrame:
+    """The ``run`` table: one text ``key``/``value`` row per entry (``None`` -> empty)."""
+    keys = [str(k) for k in info]
+    vals = ["" if v is None else (repr(v) if isinstance(v, float) else str(v)) for v in info.values()]
+    return pd.DataFrame({"key": keys, "value": vals})
+
+
+def read_run_table(frame: pd.DataFrame) -> dict[str, str]:
+    """Inverse of :func:`run_table`: ``{key: value}`` (values stay text)."""
+    vals = frame["value"].fillna("").astype(str)
+    return dict(zip(frame["key"].astype(str), vals, strict=True))
+
+
+# ---------------------------------------------------------------------------------------
+# GeoPackage
+# ---------------------------------------------------------------------------------------
+def _write_layers(path: Path, layers: Mapping[str, pd.DataFrame], overwrite: bool = False) -> None:
+    import pyogrio
+
+    opts = {"OVERWRITE": "YES"} if overwrite else None
+    for name, frame in layers.items():
+        if isinstance(frame, gpd.GeoDataFrame):
+            pyogrio.write_dataframe(
+                frame, path, layer=name, driver="GPKG", layer_options=opts, promote_to_multi=None
+            )
+        else:
+            df = pd.DataFrame(frame)
+            pyogrio.write_dataframe(df, path, layer=name, driver="GPKG", layer_options=opts)
+    with sqlite3.connect(path) as con:
+        q = "UPDATE gpkg_contents SET description = ? WHERE table_name = ?"
+        con.executemany(q, [(_MARKER, n) for n in layers])
+    con.close()
+
+
+def _rgba(hex_colour: str, alpha: int = 255) -> str:
+    h = hex_colour.lstrip("#")
+    return f"{int(h[0:2], 16)},{int(h[2:4], 16)},{int(h[4:6], 16)},{alpha}"
+
+
+def _fill_symbol(name: str, fill: str, outline: str, width_mm: float, *,
+                 fill_style: str = "solid", outline_style: str = "solid") -> str:  # fmt: skip
+    props = {
+        "color": _rgba(fill),
+        "outline_color": _rgba(outline),
+        "outline_style": outline_style,
+        "outline_width": f"{width_mm:g}",
+        "outline_width_unit": "MM",
+        "style": fill_style,
+        "joinstyle": "bevel",
+    }
+    opts = "".join(f'<Option type="QString" name="{k}" value="{v}"/>' for k, v in props.items())
+    old = "".join(f'<prop k="{k}" v="{v}"/>' for k, v in props.items())
+    return (
+        f'<symbol type="fill" name={quoteattr(name)} alpha="1" clip_to_extent="1" force_rhr="0">'
+        f'<layer class="SimpleFill" enabled="1" locked="0" pass="0">'
+        f'<Option type="Map">{opts}</Option>{old}</layer></symbol>'
+    )
+
+
+def _schedule_qml(periods: int) -> str:
+    cols = period_colours(periods)
+    cats, syms = [], []
+    for p, c in enumerate(cols, start=1):
+        cats.append(f'<category render="true" value="{p}" symbol="{p - 1}" label="Period {p}"/>')
+        syms.append(_fill_symbol(str(p - 1), c, STAND_EDGE_COLOUR, 0.15))
+    k = len(cols)
+    # Empty value: QGIS's catch-all class, which also takes null (not harvested).
+    cats.append(f'<category render="true" value="" symbol="{k}" label="Not harvested"/>')
+    syms.append(_fill_symbol(str(k), NOT_HARVESTED_COLOUR, STAND_EDGE_COLOUR, 0.15))
+    return (
+        '<qgis version="3.28.0" styleCategories="Symbology">'
+        '<renderer-v2 type="categorizedSymbol" attr="period" symbollevels="0" '
+        'enableorderby="0" forceraster="0">'
+        f"<categories>{''.join(cats)}</categories><symbols>{''.join(syms)}</symbols>"
+        "</renderer-v2><layerGeometryType>2</layerGeometryType></qgis>"
+    )
+
+
+def _openings_qml() -> str:
+    sym = _fill_symbol("0", "#ffffff", OPENING_COLOUR, 0.6, fill_style="no")
+    return (
+        '<qgis version="3.28.0" styleCategories="Symbology">'
+        '<renderer-v2 type="singleSymbol" symbollevels="0" enableorderby="0" forceraster="0">'
+        f"<symbols>{sym}</symbols></renderer-v2>"
+        "<layerGeometryType>2</layerGeometryType></qgis>"
+    )
+
+
+_SLD_HEAD = (
+    '<?xml version="1.0" encoding="UTF-8"?>'
+    '<StyledLayerDescriptor version="1.1.0" xmlns="http://www.opengis.net/sld" '
+    'xmlns:ogc="http://www.opengis.net/ogc" xmlns:se="http://www.opengis.net/se">'
+)
+
+
+def _sld_rule(title: str, fill: str | None, stroke: str, width: float, flt: str) -> str:
+    fill_xml = (
+        f'<se:Fill><se:SvgParameter name="fill">{fill}</se:SvgParameter></se:Fill>' if fill else ""
+    )
+    return (
+        f"<se:Rule><se:Name>{xml_escape(title)}</se:Name>{flt}<se:PolygonSymbolizer>{fill_xml}"
+        f'<se:Stroke><se:SvgParameter name="stroke">{stroke}</se:SvgParameter>'
+        f'<se:SvgParameter name="stroke-width">{width:g}</se:SvgParameter></se:Stroke>'
+        "</se:PolygonSymbolizer></se:Rule>"
+    )
+
+
+def _schedule_sld(layer: str, periods: int) -> str:
+    rules = []
+    for p, c in enumerate(period_colours(periods), start=1):
+        flt = (
+            "<ogc:Filter><ogc:PropertyIsEqualTo><ogc:PropertyName>period</ogc:PropertyName>"
+            f"<ogc:Literal>{p}</ogc:Literal></ogc:PropertyIsEqualTo></ogc:Filter>"
+        )
+        rules.append(_sld_rule(f"Period {p}", c, STAND_EDGE_COLOUR, 0.5, flt))
+    rules.append(
+        _sld_rule("Not harvested", NOT_HARVESTED_COLOUR, STAND_EDGE_COLOUR, 0.5, "<se:ElseFilter/>")
+    )
+    return (
+        f"{_SLD_HEAD}<NamedLayer><se:Name>{xml_escape(layer)}</se:Name><UserStyle>"
+        f"<se:Name>{xml_escape(layer)}</se:Name><se:FeatureTypeStyle>{''.join(rules)}"
+        "</se:FeatureTypeStyle></UserStyle></NamedLayer></StyledLayerDescriptor>"
+    )
+
+
+def _openings_sld(layer: str) -> str:
+    rule = _sld_rule("Opening", None, OPENING_COLOUR, 2.0, "")
+    return (
+        f"{_SLD_HEAD}<NamedLayer><se:Name>{xml_escape(layer)}</se:Name><UserStyle>"
+        f"<se:Name>{xml_escape(layer)}</se:Name><se:FeatureTypeStyle>{rule}"
+        "</se:FeatureTypeStyle></UserStyle></NamedLayer></StyledLayerDescriptor>"
+    )
+
+
+_LAYER_STYLES_DDL = """
+CREATE TABLE IF NOT EXISTS layer_styles (
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    f_table_catalog TEXT(256),
+    f_table_schema TEXT(256),
+    f_table_name TEXT(256),
+    f_geometry_column TEXT(256),
+    styleName TEXT(30),
+    styleQML TEXT,
+    styleSLD TEXT,
+    useAsDefault BOOLEAN,
+    description TEXT,
+    owner TEXT(30),
+    ui TEXT(30),
+    update_time DATETIME DEFAULT (strftime('%Y-%m-%dT%H:%M:%fZ', 'now'))
+)
+"""
+
+
+def _add_styles(path: Path, styled: Mapping[str, str], periods: int) -> None:
+    """Write default styles: ``styled`` maps table name -> ``"schedule"`` or ``"openings"``."""
+    con = sqlite3.connect(path)
+    try:
+        with con:
+            geom_cols = dict(
+                con.execute("SELECT table_name, column_name FROM gpkg_geometry_columns").fetchall()
+            )
+            con.execute(_LAYER_STYLES_DDL)
+            have = con.execute(
+                "SELECT 1 FROM gpkg_contents WHERE table_name = 'layer_styles'"
+            ).fetchone()
+            if not have:
+                con.execute(
+                    "INSERT INTO gpkg_contents (table_name, data_type, identifier, description, "
+                    "last_change) VALUES ('layer_styles', 'attributes', 'layer_styles', "
+                    "'default layer styles', strftime('%Y-%m-%dT%H:%M:%fZ', 'now'))"
+                )
+            rows = []
+            for table, kind in styled.items():
+                if table not in geom_cols:
+                    continue
+                if kind == "schedule":
+                    qml, sld = _schedule_qml(periods), _schedule_sld(table, periods)
+                    desc = "stands filled by harvest period (viridis, early dark to late light)"
+                else:
+                    qml, sld = _openings_qml(), _openings_sld(table)
+                    desc = "openings outlined, no fill"
+                rows.append(("", "", table, geom_cols[table], f"{table} by spatialplan", qml, sld,
+                             1, desc, "", None))  # fmt: skip
+                con.execute("DELETE FROM layer_styles WHERE f_table_name = ?", (table,))
+            con.executemany(
+                "INSERT INTO layer_styles (f_table_catalog, f_table_schema, f_table_name, "
+                "f_geometry_column, styleName, styleQML, styleSLD, useAsDefault, description, "
+                "owner, ui) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                rows,
+            )
+    finally:
+        con.close()
+
+
+def _periods_of(layers: Mapping[str, pd.DataFrame], schedule_name: str) -> int:
+    if "periods" in layers and len(layers["periods"]) and "period" in layers["periods"]:
+        return int(pd.to_numeric(layers["periods"]["period"]).max())
+    if schedule_name in layers:
+        return max(1, int(_period_array(layers[schedule_name]["period"]).max()))
+    return 1
+
+
+def write_plan_geopackage(
+    path: str | Path, layers: dict[str, gpd.GeoDataFrame | pd.DataFrame], styles: bool = True
+) -> None:
+    """Write all plan layers and tables into one GeoPackage, atomically.
+
+    Parameters
+    ----------
+    path
+        Target ``.gpkg``; replaced only when every layer has been written.
+    layers
+        Layer name -> frame. GeoDataFrames become feature layers in the CRS they carry;
+        plain DataFrames become GeoPackage attribute tables (``periods``, ``strata``,
+        ``run``).
+    styles
+        Add the ``layer_styles`` table with default styles for ``schedule`` and
+        ``openings``.
+
+    Raises
+    ------
+    OutputError
+        The folder is missing or a layer cannot be written.
+    """
+    path = Path(path)
+    if not path.parent.is_dir():
+        msg = f"output folder {path.parent} does not exist"
+        raise OutputError(msg)
+    with atomic_path(path) as tmp:
+        try:
+            _write_layers(tmp, layers)
+        except (OSError, RuntimeError, ValueError) as exc:  # GDAL/pyogrio errors
+            msg = f"cannot write GeoPackage {path}: {exc}"
+            raise OutputError(msg) from exc
+        if styles:
+            styled = {k: k for k in ("schedule", "openings") if k in layers}
+            _add_styles(tmp, styled, _periods_of(layers, "schedule"))
+
+
+def _is_geopackage(path: Path) -> bool:
+    try:
+        with open(path, "rb") as f:
+            head = f.read(100)
+    except OSError:
+        return False
+    if len(head) < 72 or not head.startswith(b"SQLite format 3\x00"):
+        return False
+    app_id = int.from_bytes(head[68:72], "big")
+    return app_id in _GPKG_APP_IDS
+
+
+def _read_layer(path: Path, layer: str) -> pd.DataFrame:
+    import pyogrio
+
+    return pyogrio.read_dataframe(path, layer=layer, fid_as_index=True)
+
+
+def _same_frame(a: pd.DataFrame, b: pd.DataFrame) -> bool:
+    if list(a.columns) != list(b.columns) or len(a) != len(b) or not a.index.equals(b.index):
+        return False
+    geo_a = isinstance(a, gpd.GeoDataFrame)
+    if geo_a != isinstance(b, gpd.GeoDataFrame):
+        return False
+    if geo_a:
+        ga, gb = a.geometry.name, b.geometry.name
+        if ga != gb or a.crs != b.crs:
+            return False
+        wa = shapely.to_wkb(np.asarray(a[ga].values), hex=True)
+        wb = shapely.to_wkb(np.asarray(b[gb].values), hex=True)
+        if not np.array_equal(wa.astype(str), wb.astype(str)):
+            return False
+        a, b = pd.DataFrame(a.drop(columns=ga)), pd.DataFrame(b.drop(columns=gb))
+    return bool(a.equals(b))
+
+
+def write_back(
+    input_gpkg: str | Path,
+    layers: Mapping[str, gpd.GeoDataFrame | pd.DataFrame],
+    prefix: str = "plan_",
+) -> list[str]:
+    """Add result layers to the input GeoPackage under prefixed names, safely.
+
+    The layers are written into a copy next to the input; every layer the input already
+    had (other than earlier ``prefix`` layers written by spatialplan) is read back from
+    the copy and compared with the original (attributes and geometry WKB). Only then does
+    the copy replace the input, atomically.
+
+    Parameters
+    ----------
+    input_gpkg
+        The stand layer's GeoPackage.
+    layers
+        Layer name -> frame, as for :func:`write_plan_geopackage`.
+    prefix
+        Prefix of the added layer names.
+
+    Returns
+    -------
+    list of str
+        Names of the layers written.
+
+    Raises
+    ------
+    OutputError
+        The input is not a GeoPackage, a prefixed name is taken by a layer spatialplan did
+        not write, or an original layer would change.
+    """
+    import pyogrio
+
+    src = Path(input_gpkg)
+    if src.suffix.lower() != ".gpkg" or not _is_geopackage(src):
+        msg = (
+            f"--write-back needs the stands in a GeoPackage (.gpkg); {src} is not one. "
+            "The plan is in the output GeoPackage; add its layers to your data by hand."
+        )
+        raise OutputError(msg)
+    new = {f"{prefix}{k}": v for k, v in layers.items()}
+    con = sqlite3.connect(f"file:{src}?mode=ro", uri=True)
+    try:
+        desc = dict(con.execute("SELECT table_name, description FROM gpkg_contents").fetchall())
+    finally:
+        con.close()
+    clash = sorted(n for n in new if n in desc and desc[n] != _MARKER)
+    if clash:
+        msg = (
+            f"cannot write back into {src}: layer(s) {', '.join(clash)} already exist and were "
+            f"not written by spatialplan; choose another prefix"
+        )
+        raise OutputError(msg)
+    original = [str(n) for n in pyogrio.list_layers(src)[:, 0]]
+    keep = [n for n in original if n not in new and n != "layer_styles"]
+    before = {n: _read_layer(src, n) for n in keep}
+    with atomic_path(src) as tmp:
+        shutil.copy2(src, tmp)
+        try:
+            _write_layers(tmp, new, overwrite=True)
+        except (OSError, RuntimeError, ValueError) as exc:
+            msg = f"cannot add plan layers to {src}: {exc}"
+            raise OutputError(msg) from exc
+        styled = {n: k for k, n in ((k, f"{prefix}{k}") for k in ("schedule", "openings"))
+                  if n in new}  # fmt: skip
+        _add_styles(tmp, styled, _periods_of(layers, "schedule"))
+        after_names = {str(n) for n in pyogrio.list_layers(tmp)[:, 0]}
+        changed = [n for n in keep if n not in after_names or not _same_frame(before[n], _read_layer(tmp, n))]
+        if changed:
+            msg = (
+                f"write-back into {src} stopped: layer(s) {', '.join(changed)} would change; "
+                "the file was left as it was"
+            )
+            raise OutputError(msg)
+    return list(new)
+
+
+# ---------------------------------------------------------------------------------------
+# raster
+# ---------------------------------------------------------------------------------------
+def write_period_raster(
+    schedule: gpd.GeoDataFrame, path: str | Path, cell_m: float, period_col: str = "period"
+) -> None:
+    """GeoTIFF of harvest period (0 = not harvested / outside, also the nodata value).
+
+    Parameters
+    ----------
+    schedule
+        Stands with ``period_col`` in a projected CRS (metres).
+    path
+        Target ``.tif`` (written atomically).
+    cell_m
+        Cell size in the CRS units (metres).
+
+    Raises
+    ------
+    OutputError
+        No projected CRS, a non-positive cell size, or a grid too large to write.
+    """
+    import rasterio
+    from rasterio.features import rasterize
+    from rasterio.transform import from_origin
+
+    path = Path(path)
+    if not cell_m or cell_m <= 0:
+        msg = f"raster cell size must be positive, got {cell_m} (output.raster_cell_m)"
+        raise OutputError(msg)
+    if schedule.crs is None or not schedule.crs.is_projected:
+        msg = f"cannot write {path}: the stand layer needs a projected CRS in metres"
+        raise OutputError(msg)
+    minx, miny, maxx, maxy = schedule.total_bounds
+    width = max(1, int(np.ceil((maxx - minx) / cell_m)))
+    height = max(1, int(np.ceil((maxy - miny) / cell_m)))
+    if width * height > 400_000_000:
+        msg = f"raster {path} would have {width} x {height} cells; use a larger output.raster_cell_m"
+        raise OutputError(msg)
+    per = _period_array(schedule[period_col])
+    dtype = "uint8" if per.max(initial=0) <= 255 else "uint16"
+    transform = from_origin(minx, maxy, cell_m, cell_m)
+    shapes = [(g, int(p)) for g, p in zip(schedule.geometry.values, per, strict=True) if p > 0]
+    grid = (
+        rasterize(shapes, out_shape=(height, width), transform=transform, fill=0, dtype=dtype)
+        if shapes
+        else np.zeros((height, width), dtype=dtype)
+    )
+    with atomic_path(path) as tmp:
+        with rasterio.open(
+            tmp, "w", driver="GTiff", width=width, height=height, count=1, dtype=dtype,
+            crs=schedule.crs.to_wkt(), transform=transform, nodata=0, compress="deflate",
+        ) as dst:  # fmt: skip
+            dst.write(grid, 1)
+            dst.set_band_description(1, "harvest period (0 = not harvested)")

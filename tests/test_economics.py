@@ -1,0 +1,326 @@
+"""Tests of spatialplan.economics: discounting, prices, harvest values, rotation rules."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import numpy_financial as npf
+import pandas as pd
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.optimize import brentq
+
+from spatialplan.economics import (
+    discount_factor,
+    faustmann_rotation,
+    fisher_rotation,
+    harvest_cost_per_stand,
+    harvest_values,
+    lev,
+    mid_period_times,
+    npv,
+    rotation_curves,
+    rotation_table,
+    stumpage_price,
+    value_mai_rotation,
+)
+from spatialplan.errors import InputError, SettingsError
+from spatialplan.growth import build_growth_model, cr_mai_culmination_age, yield_table_from_frame
+from spatialplan.settings import (
+    ChapmanRichards,
+    Economics,
+    GrowthSettings,
+    Horizon,
+    PriceClass,
+    Settings,
+)
+from spatialplan.synthetic import synthetic_yield_table
+
+CR = ChapmanRichards(A=550.0, k=0.035, c=3.2)  # an invented curve with a clear MAI peak
+
+
+def _cr_model():
+    return build_growth_model(None, GrowthSettings(chapman_richards={"X": CR}), ["stratum"])
+
+
+def _table_model():
+    tab = yield_table_from_frame(synthetic_yield_table(), ["stratum"])
+    return build_growth_model(tab, GrowthSettings(), ["stratum"])
+
+
+def _settings(**econ):
+    return Settings(economics=Economics(**econ), horizon=Horizon(periods=6, period_length_yr=5))
+
+
+# ---------------------------------------------------------------------------------------
+# discounting
+# ---------------------------------------------------------------------------------------
+def test_npv_numpy_financial_documentation_example():
+    # numpy-financial documentation: npv(0.08, [-40000, 5000, 8000, 12000, 30000])
+    # = 3065.22267 (first flow at t = 0, undiscounted).
+    flows = [-40_000, 5_000, 8_000, 12_000, 30_000]
+    assert npv(flows, 0.08) == pytest.approx(3065.22267, abs=1e-5)
+    assert npv(flows, 0.08) == pytest.approx(npf.npv(0.08, flows), rel=1e-13)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.floats(0.0, 0.3),
+    st.lists(st.floats(-1e5, 1e5, allow_nan=False), min_size=1, max_size=25),
+)
+def test_npv_equals_numpy_financial(rate, flows):
+    # Reference library: numpy_financial.npv.
+    assert npv(flows, rate) == pytest.approx(float(npf.npv(rate, flows)), rel=1e-10, abs=1e-6)
+
+
+def test_mid_period_times_and_discount():
+    # Timing convention: harvest at mid-period t = (p - 0.5) L (common practice in
+    # harvest-scheduling models, no single source); discount (1 + r)^-t (annual compounding).
+    t = mid_period_times(4, 10.0)
+    assert t.tolist() == [5.0, 15.0, 25.0, 35.0]
+    assert mid_period_times(np.array([2, 3]), 5.0).tolist() == [7.5, 12.5]
+    # (1 + r)^-t equals the present value of 1 by numpy_financial.pv (reference library)
+    for ti in (5.0, 15.0):
+        assert float(discount_factor(ti, 0.04)) == pytest.approx(-npf.pv(0.04, ti, 0, 1), rel=1e-13)
+
+
+# ---------------------------------------------------------------------------------------
+# prices and costs
+# ---------------------------------------------------------------------------------------
+SCHEDULE = (
+    PriceClass("sawlog_large", 40.0, 95.0),
+    PriceClass("pulp", 8.0, 22.0),  # deliberately unsorted
+    PriceClass("sawlog_small", 20.0, 60.0),
+)
+
+
+def test_price_schedule_by_diameter():
+    # Product classes keyed on mean diameter (common practice, no source): the highest
+    # class whose minimum diameter is not above the stand's diameter.
+    e = Economics(price_per_m3=30.0, price_schedule=SCHEDULE)
+    d = np.array([5.0, 8.0, 19.99, 20.0, 39.0, 40.0, 80.0, np.nan])
+    assert stumpage_price(d, e).tolist() == [0.0, 22.0, 22.0, 60.0, 60.0, 95.0, 95.0, 30.0]
+    assert stumpage_price(d, Economics(price_per_m3=41.0)).tolist() == [41.0] * 8
+
+
+def test_price_missing_raises_settings_error():
+    with pytest.raises(SettingsError, match=r"economics\.price_per_m3"):
+        stumpage_price(np.array([10.0]), Economics())
+    with pytest.raises(SettingsError, match=r"economics\.price_per_m3"):
+        stumpage_price(np.array([np.nan]), Economics(price_schedule=SCHEDULE))
+
+
+def test_harvest_cost_precedence_and_unknown_class():
+    e = Economics(harvest_cost_per_m3=10.0, harvest_cost_by_class={"steep": 25.0, "flat": 8.0})
+    cls = np.array(["steep", None, "flat", "", "steep"], dtype=object)
+    over = np.array([np.nan, np.nan, np.nan, np.nan, 40.0])
+    assert harvest_cost_per_stand(5, e, None, cls).tolist() == [25.0, 10.0, 8.0, 10.0, 25.0]
+    assert harvest_cost_per_stand(5, e, over, cls).tolist() == [25.0, 10.0, 8.0, 10.0, 40.0]
+    with pytest.raises(InputError, match=r"'swamp'.*valid classes: flat, steep"):
+        harvest_cost_per_stand(2, e, None, np.array(["flat", "swamp"], dtype=object))
+
+
+# ---------------------------------------------------------------------------------------
+# Faustmann LEV
+# ---------------------------------------------------------------------------------------
+@pytest.mark.parametrize(("S", "T", "r", "C", "a"), [
+    (12_000.0, 60, 0.03, 1_500.0, 0.0),
+    (30_000.0, 45, 0.05, 2_000.0, 15.0),
+    (5_000.0, 90, 0.02, 0.0, 5.0),
+])
+def test_lev_closed_form_and_truncated_series(S, T, r, C, a):
+    # Faustmann (1849): bare land worth the sum over rotations j = 0, 1, ... of
+    # (-C + S (1+r)^-T) (1+r)^-(jT), minus annual costs a paid at the end of every year.
+    # Independent check: sum the series explicitly, truncated far out (error < 1e-9).
+    rot = sum((-C + S * (1 + r) ** -T) * (1 + r) ** (-j * T) for j in range(2000))
+    ann = sum(a * (1 + r) ** -t for t in range(1, 20_000))
+    closed = (S - C * (1 + r) ** T) / ((1 + r) ** T - 1) - a / r
+    assert float(lev(S, T, r, C, a)) == pytest.approx(closed, rel=1e-12)
+    assert float(lev(S, T, r, C, a)) == pytest.approx(rot - ann, rel=1e-9, abs=1e-6)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.lists(st.floats(0, 1e5, allow_nan=False), min_size=1, max_size=12),
+    st.floats(0.005, 0.15),
+    st.floats(0, 5000),
+    st.floats(0, 50),
+)
+def test_lev_vectorised_equals_scalar(values, r, C, a):
+    # Scalar closed form of Faustmann (1849), evaluated one rotation length at a time.
+    T = np.arange(1, len(values) + 1, dtype=float) * 7.0
+    vec = lev(np.array(values), T, r, C, a)
+    for s, t, v in zip(values, T, vec, strict=True):
+        g = (1 + r) ** t
+        assert v == pytest.approx((s - C * g) / (g - 1) - a / r, rel=1e-9, abs=1e-6)
+
+
+def test_lev_needs_positive_rate():
+    with pytest.raises(SettingsError, match="discount_rate"):
+        lev(1.0, 10.0, 0.0)
+
+
+@pytest.mark.parametrize("r", [0.01, 0.02, 0.04, 0.07])
+@pytest.mark.parametrize("C", [0.0, 1500.0])
+def test_faustmann_shorter_than_fisher_when_lev_positive(r, C):
+    # Faustmann-Pressler-Ohlin: the optimal rotation with positive land value is shorter
+    # than the single-rotation (Fisher 1930) age (Samuelson 1976, Economic Inquiry 14:466-492).
+    g = _cr_model()
+    rc = rotation_curves(g, "X", _settings(discount_rate=r, price_per_m3=40.0,
+                                           regeneration_cost_per_ha=C))
+    if (r, C) == (0.07, 1500.0):
+        # a negative land value reverses the order (same condition: the threshold
+        # r (1 + LEV/S) is then below r)
+        assert rc.lev_per_ha < 0
+        assert rc.faustmann_age > rc.fisher_age
+    else:
+        assert rc.lev_per_ha > 0
+        assert rc.faustmann_age < rc.fisher_age
+
+
+def test_faustmann_first_order_condition_brentq():
+    # Independent check of the grid search: with constant price p and C = 0, dLEV/dT = 0 gives
+    # S'(T) ((1+r)^T - 1) = S(T) ln(1+r) (1+r)^T (Faustmann-Pressler-Ohlin condition under
+    # annual compounding; derivation). Solved with scipy.optimize.brentq.
+    r, p = 0.03, 40.0
+    g = _cr_model()
+    rc = rotation_curves(g, "X", _settings(discount_rate=r, price_per_m3=p))
+
+    def foc(T):
+        V = p * CR.A * (1 - math.exp(-CR.k * T)) ** CR.c
+        dV = p * CR.A * CR.c * CR.k * math.exp(-CR.k * T) * (1 - math.exp(-CR.k * T)) ** (CR.c - 1)
+        return dV * ((1 + r) ** T - 1) - V * math.log(1 + r) * (1 + r) ** T
+
+    t_star = brentq(foc, 5, 200)
+    assert abs(rc.faustmann_age - t_star) <= 1.0
+    # Fisher rule: value growth rate S'(T)/S(T) = ln(1+r) (derivation), also with brentq
+    t_fisher = brentq(
+        lambda T: CR.c * CR.k * math.exp(-CR.k * T) / (1 - math.exp(-CR.k * T)) - math.log(1 + r),
+        1,
+        300,
+    )
+    assert abs(rc.fisher_age - t_fisher) <= 1.0
+
+
+def test_faustmann_tends_to_max_mai_as_rate_to_zero():
+    # Samuelson (1976, Economic Inquiry 14:466-492): with C = 0 and constant price, the
+    # Faustmann rotation tends to the maximum-MAI rotation as r -> 0.
+    g = _cr_model()
+    exact = cr_mai_culmination_age(CR.k, CR.c)
+    ages = []
+    for r in (0.03, 0.01, 1e-3, 1e-5):
+        rc = rotation_curves(g, "X", _settings(discount_rate=r, price_per_m3=40.0))
+        ages.append(rc.faustmann_age)
+    assert ages == sorted(ages)  # lengthens as r falls
+    assert abs(ages[-1] - exact) <= 0.5 + 1e-9  # grid age next to the exact culmination
+    assert ages[-1] == rc.mai_max_age
+    # the same on a tabulated stratum (piecewise linear): equal grid ages
+    t = _table_model()
+    for s in ("S1", "S4"):
+        rc = rotation_curves(t, s, _settings(discount_rate=1e-6, price_per_m3=40.0))
+        assert rc.faustmann_age == rc.mai_max_age
+
+
+def test_rotation_rules_on_brute_force_grid():
+    # Each rule recomputed by brute force from its definition (Fisher 1930 single rotation:
+    # max S(T)(1+r)^-T; Faustmann 1849: max LEV; forest rent: max (S - C)/T; MAI: max V/T).
+    g = _table_model()
+    st_ = _settings(discount_rate=0.035, price_per_m3=50.0, harvest_cost_per_m3=12.0,
+                    regeneration_cost_per_ha=900.0, annual_cost_per_ha=8.0)
+    ages = np.arange(1, 301, dtype=float)
+    df = rotation_table(g, ["S2", "S5"], st_)
+    assert list(df.columns) == ["stratum", "mai_max_age", "mai_max_m3_ha_yr", "mai_max_age_exact",
+                                "value_mai_max_age", "fisher_age", "faustmann_age", "lev_per_ha"]
+    for row in df.itertuples(index=False):
+        vol = g.volume(np.full(300, row.stratum, dtype=object), ages)
+        S = (50.0 - 12.0) * vol
+        levs = [(S[i] - 900 * 1.035 ** t) / (1.035 ** t - 1) - 8 / 0.035 for i, t in enumerate(ages)]
+        assert row.faustmann_age == ages[int(np.argmax(levs))]
+        assert row.lev_per_ha == pytest.approx(max(levs), rel=1e-12)
+        assert row.fisher_age == ages[int(np.argmax(S * 1.035 ** -ages))]
+        assert row.value_mai_max_age == ages[int(np.argmax((S - 900) / ages))]
+        assert row.mai_max_age == ages[int(np.argmax(vol / ages))]
+        assert math.isnan(row.mai_max_age_exact)
+        # Fisher: value growth is above r before and not above r at the age (discrete rule)
+        i = int(row.fisher_age) - 1
+        assert S[i + 1] / S[i] - 1 <= 0.035 <= S[i] / S[i - 1] - 1
+
+
+def test_rules_without_positive_value_and_zero_rate():
+    ages = np.arange(1, 50, dtype=float)
+    assert math.isnan(fisher_rotation(np.zeros(49), ages, 0.03))
+    assert math.isnan(value_mai_rotation(-np.ones(49), ages))
+    age, val = faustmann_rotation(np.full(49, 100.0), ages, 0.0, 0.0)
+    assert age == 1.0  # limit rule max (S - C)/T picks the shortest age for a flat value
+    assert math.isnan(val)
+
+
+def test_key_columns_in_rotation_table(tmp_path):
+    df = pd.DataFrame({"sp": ["DF"] * 3, "site": ["2"] * 3, "age": [20, 40, 60],
+                       "volume": [100, 300, 400]})
+    tab = yield_table_from_frame(df, ["sp", "site"])
+    g = build_growth_model(tab, GrowthSettings(), ["sp", "site"])
+    out = rotation_table(g, g.strata, _settings(price_per_m3=30.0), max_age=120)
+    assert out[["sp", "site", "stratum"]].values.tolist() == [["DF", "2", "DF/2"]]
+    # MAI of the piecewise-linear table peaks at the tabulated age 40 (300/40 = 7.5)
+    assert out.loc[0, "mai_max_age"] == 40
+    assert out.loc[0, "mai_max_m3_ha_yr"] == pytest.approx(7.5)
+
+
+# ---------------------------------------------------------------------------------------
+# harvest values for the scheduler
+# ---------------------------------------------------------------------------------------
+def test_harvest_values_single_price_exact_npv():
+    # Project convention: npv = V(age0 + t) p (1+r)^-t with t = (p - 0.5) L (common practice
+    # in harvest-scheduling models); must hold exactly with one price and no costs.
+    g = _table_model()
+    st_ = _settings(discount_rate=0.04, price_per_m3=45.0)
+    strata = np.array(["S1", "S3", "S5", "S3"], dtype=object)
+    a0 = np.array([0.0, 35.0, 90.0, 140.0])
+    hv = harvest_values(strata, a0, g, st_)
+    P, L = 6, 5.0
+    assert hv.npv_per_ha.shape == (4, P)
+    for p in range(1, P + 1):
+        t = (p - 0.5) * L
+        vol = g.volume(strata, a0 + t)
+        assert np.array_equal(hv.volume_m3_ha[:, p - 1], vol)
+        assert np.array_equal(hv.npv_per_ha[:, p - 1], vol * 45.0 * (1.04) ** -((p - 0.5) * L))
+    assert np.array_equal(hv.harvest_age_yr, a0[:, None] + (np.arange(1, P + 1) - 0.5) * L)
+    # ending layout: column 0 = not harvested, column p = regrown since mid-period p
+    assert hv.ending_age_yr[:, 0].tolist() == (a0 + P * L).tolist()
+    assert hv.ending_age_yr[0, 1:].tolist() == [27.5, 22.5, 17.5, 12.5, 7.5, 2.5]
+    assert np.array_equal(hv.ending_volume_m3_ha, g.volume(strata, hv.ending_age_yr))
+    assert np.array_equal(hv.ending_value_per_ha, hv.ending_volume_m3_ha * 45.0)
+    assert hv.ending_discount == pytest.approx(1.04 ** -30)
+    assert hv.annual_cost_pv_per_ha == 0.0
+
+
+def test_harvest_values_costs_schedule_and_land_value():
+    g = _table_model()  # synthetic table has a diameter column
+    st_ = _settings(discount_rate=0.03, price_schedule=SCHEDULE, harvest_cost_per_m3=9.0,
+                    harvest_cost_by_class={"cable": 20.0}, regeneration_cost_per_ha=1200.0,
+                    annual_cost_per_ha=10.0, include_land_value=True)
+    strata = np.array(["S2", "S2", "S4"], dtype=object)
+    a0 = np.array([30.0, 30.0, 60.0])
+    hv = harvest_values(strata, a0, g, st_, cost_class=np.array([None, "cable", None], dtype=object))
+    assert hv.harvest_cost_per_m3.tolist() == [9.0, 20.0, 9.0]
+    price = stumpage_price(g.diameter(strata, hv.harvest_age_yr), st_.economics)
+    assert np.array_equal(hv.price_per_m3, price)
+    net = hv.volume_m3_ha * price - hv.harvest_cost_per_m3[:, None] * hv.volume_m3_ha - 1200.0
+    assert np.allclose(hv.net_value_per_ha, net, rtol=1e-13)
+    # land value: max over T of Faustmann LEV without annual cost, plus C (paid at harvest)
+    ages = np.arange(1, 301, dtype=float)
+    for i in range(3):
+        lab = np.full(300, strata[i], dtype=object)
+        S = (stumpage_price(g.diameter(lab, ages), st_.economics) - hv.harvest_cost_per_m3[i]) * (
+            g.volume(lab, ages)
+        )
+        best = max((S[j] - 1200 * 1.03 ** t) / (1.03 ** t - 1) for j, t in enumerate(ages))
+        assert hv.land_value_per_ha[i] == pytest.approx(best + 1200.0, rel=1e-12)
+    assert hv.land_value_per_ha[0] > hv.land_value_per_ha[1]  # costlier harvest, less land value
+    expect = (net + hv.land_value_per_ha[:, None]) * 1.03 ** -hv.times_yr
+    assert np.allclose(hv.npv_per_ha, expect, rtol=1e-12)
+    # annual costs over 30 years, end-of-year payments: numpy_financial.pv (reference library)
+    assert hv.annual_cost_pv_per_ha == pytest.approx(-npf.pv(0.03, 30, 10.0), rel=1e-12)
