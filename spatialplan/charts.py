@@ -89,7 +89,8 @@ def rotation_chart(curves: RotationCurves, path: str | Path, title: str | None =
         ax2.plot(c.ages[show], pct * c.faustmann_threshold[show], color="tab:purple", lw=1.3,
                  ls="-.", label="Faustmann threshold r (1 + LEV/S)")
     if np.isfinite(c.fisher_age):
-        ax2.axvline(c.fisher_age, color="tab:red", ls="--", lw=1.4,
+        # drawn wide and pale so a Faustmann line at the same age stays visible on top
+        ax2.axvline(c.fisher_age, color="tab:red", ls="-", lw=4.0, alpha=0.45,
                     label=f"Fisher (single rotation): {c.fisher_age:g} yr")
     if np.isfinite(c.faustmann_age):
         lev_txt = f", LEV {c.lev_per_ha:,.0f}/ha" if np.isfinite(c.lev_per_ha) else ""
@@ -186,7 +187,7 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     if lo is not None and hi is not None:
         lo_v = lo.to_numpy(float) / 1000.0
         hi_v = hi.to_numpy(float) / 1000.0
-        top = np.nanmax(np.r_[vol, hi_v[np.isfinite(hi_v)], 0.0]) * 1.15 or 1.0
+        top = np.nanmax(np.r_[vol, hi_v[np.isfinite(hi_v)], 0.0]) * 1.3 or 1.0
         band = np.isfinite(lo_v) | np.isfinite(hi_v)
         first = True
         for x, a, b in zip(p[band], lo_v[band], hi_v[band], strict=True):
@@ -199,7 +200,7 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
         ax1.set_ylim(0, top)
     ax1.set_ylabel("Volume (1000 m³)")
     ax1.grid(axis="y", alpha=0.3)
-    ax1.legend(loc="upper right", fontsize=9)
+    ax1.legend(loc="upper center", ncol=2, fontsize=9)
     ax1.set_title("Volume, with the range allowed given the previous period", fontsize=11,
                   loc="left")
     area = pdf["harvest_area_ha"].to_numpy(float)
@@ -260,7 +261,10 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     ax3.set_ylim(bottom=min(0.0, float(np.min(np.cumsum(disc))) / 1000.0))
     h1, l1 = ax.get_legend_handles_labels()
     h2, l2 = ax3.get_legend_handles_labels()
-    ax.legend(h1 + h2, l1 + l2, loc="upper left", fontsize=9)
+    ax.set_ylim(min(0.0, float(np.nanmin(disc)) / 1000.0),
+                max(1e-9, float(np.nanmax(disc))) / 1000.0 * 1.3)
+    ax3.set_ylim(top=max(1e-9, float(np.max(np.cumsum(disc)))) / 1000.0 * 1.15)
+    ax.legend(h1 + h2, l1 + l2, loc="upper center", ncol=3, fontsize=9)
     ax.set_title(f"Net present value by period (total {np.sum(disc):,.0f})", fontsize=14)
     paths.append(_save(fig, out / "npv_by_period.png"))
     return paths

@@ -59,7 +59,7 @@ def test_rotation_writes_csv_and_charts(tmp_path, yields):
     assert res3.exit_code == 0, res3.output
 
 
-def test_rotation_without_price_names_the_setting(tmp_path, yields):
+def test_rotation_without_price_names_the_setting(tmp_path, yields, capsys):
     from spatialplan.cli import main
 
     out = tmp_path / "r.csv"
@@ -67,6 +67,7 @@ def test_rotation_without_price_names_the_setting(tmp_path, yields):
         main(["rotation", "--yields", str(yields), "--yield-keys", "species,site",
               "--out", str(out)])
     assert ei.value.code == 1
+    assert "economics.price_per_m3" in capsys.readouterr().err
     assert not out.exists()
 
 

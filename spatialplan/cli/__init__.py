@@ -39,6 +39,13 @@ class _LazyGroup(click.Group):
             return None
         return importlib.import_module(f"spatialplan.cli.{mod}").command
 
+    def invoke(self, ctx: click.Context) -> Any:
+        """Run the subcommand; user errors become one message and an exit code."""
+        from spatialplan.cli._common import handle_errors
+
+        with handle_errors(ctx):
+            return super().invoke(ctx)
+
 
 @click.group(cls=_LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="spatialplan")

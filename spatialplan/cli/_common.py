@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import logging
 import sys
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -18,6 +19,7 @@ __all__ = [
     "SETTINGS_FLAGS",
     "console",
     "ensure_output_path",
+    "handle_errors",
     "run_cli",
     "settings_from_flags",
     "settings_options",
@@ -129,27 +131,22 @@ def console() -> _Console:
     return _Console()
 
 
-def run_cli(group: click.Group, argv: list[str] | None = None) -> Any:
-    """Run ``group``; user errors print one message and exit with their code, no traceback."""
-    debug = "--debug" in (argv if argv is not None else sys.argv[1:])
+@contextlib.contextmanager
+def handle_errors(ctx: click.Context) -> Iterator[None]:
+    """Turn errors into one clear message and an exit code (tracebacks only with --debug)."""
+    debug = bool((ctx.obj or {}).get("debug")) or "--debug" in sys.argv[1:]
     try:
-        return group.main(args=argv, prog_name="spatialplan", standalone_mode=False)
-    except click.exceptions.Exit as exc:
-        sys.exit(exc.exit_code)
-    except click.ClickException as exc:
-        exc.show()
-        sys.exit(exc.exit_code)
-    except click.Abort:
-        click.echo("Aborted.", err=True)
-        sys.exit(130)
+        yield
     except SpatialPlanError as exc:
         if debug:
             raise
         click.echo(f"Error: {exc}", err=True)
-        sys.exit(exc.exit_code)
+        ctx.exit(exc.exit_code)
     except KeyboardInterrupt:
         click.echo("Interrupted; nothing further written.", err=True)
-        sys.exit(130)
+        ctx.exit(130)
+    except (click.exceptions.Exit, click.ClickException, click.Abort, SystemExit):
+        raise
     except Exception as exc:  # a bug, not a user mistake: say so plainly
         if debug:
             raise
@@ -158,7 +155,12 @@ def run_cli(group: click.Group, argv: list[str] | None = None) -> Any:
             "This is a bug in spatialplan; run again with --debug for the traceback.",
             err=True,
         )
-        sys.exit(70)
+        ctx.exit(70)
+
+
+def run_cli(group: click.Group, argv: list[str] | None = None) -> Any:
+    """Run ``group`` as the console script."""
+    return group.main(args=argv, prog_name="spatialplan")
 
 
 def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool) -> None:

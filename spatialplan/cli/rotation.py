@@ -120,6 +120,9 @@ def command(
         for s, p in chart_paths.items():
             rotation_chart(rotation_curves(growth, s, settings, max_age), p)
 
+    ctx = click.get_current_context()
+    if (ctx.obj or {}).get("quiet"):
+        return
     from rich.table import Table
 
     tab = Table(title=f"Rotation ages (r = {settings.economics.discount_rate:g})")

@@ -1,0 +1,5 @@
+"""``python -m spatialplan`` runs the command line."""
+
+from spatialplan.cli import main
+
+main()
