@@ -155,9 +155,7 @@ def _line_interval(
     return t0, t1
 
 
-def _capsule_interval(
-    s: np.ndarray, e: np.ndarray, r: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
+def _capsule_interval(s: np.ndarray, e: np.ndarray, r: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Parameter interval of segment ``s`` within distance ``r`` of segment ``e``.
 
     ``s`` and ``e`` are (k, 4) arrays of segments; the points ``A + t (B - A)`` of ``s``
@@ -362,7 +360,9 @@ def build_adjacency(
     missing = shapely.is_missing(geoms) | shapely.is_empty(geoms)
     if missing.any():
         names = [_name(id_arr, int(i)) for i in np.flatnonzero(missing)[:_MAX_NAMED]]
-        warnings.append(f"{int(missing.sum())} stands have no geometry and no neighbours: {', '.join(names)}")
+        warnings.append(
+            f"{int(missing.sum())} stands have no geometry and no neighbours: {', '.join(names)}"
+        )
         geoms = geoms.copy()
         geoms[missing] = shapely.Polygon()
     invalid = ~missing & ~shapely.is_valid(geoms)
@@ -424,14 +424,12 @@ def build_adjacency(
         if len(overlaps):
             warnings.append(
                 f"{len(overlaps)} pairs of stands overlap by more than "
-                f"{OVERLAP_REPORT_M2:g} m2: " + _pair_list(id_arr, overlaps, "({overlap_m2:.1f} m2)")
+                f"{OVERLAP_REPORT_M2:g} m2: "
+                + _pair_list(id_arr, overlaps, "({overlap_m2:.1f} m2)")
             )
     # Linear extrapolation of m(r) back to the gap removes the spill-over at junctions.
     shared = np.clip(2.0 * m_a - m_b, 0.0, m_b)
-    if corner_adjacency:
-        adjacent = np.ones(len(ca), dtype=bool)
-    else:
-        adjacent = shared > min_shared_edge_m
+    adjacent = np.ones(len(ca), dtype=bool) if corner_adjacency else shared > min_shared_edge_m
 
     # ---- wider gaps: report pairs that face each other along a long edge -------------
     ga, gb, gg = pa[~close], pb[~close], dist[~close]
@@ -467,8 +465,7 @@ def build_adjacency(
     else:
         graph.add_nodes_from(range(n))
     graph.add_edges_from(
-        (int(i), int(j), {"shared_m": float(s)})
-        for (i, j), s in zip(edges, shared_m, strict=True)
+        (int(i), int(j), {"shared_m": float(s)}) for (i, j), s in zip(edges, shared_m, strict=True)
     )
     for w in warnings:
         log.warning(w)

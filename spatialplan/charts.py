@@ -69,7 +69,8 @@ def rotation_chart(curves: RotationCurves, path: str | Path, title: str | None =
     fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(8.5, 8.0), sharex=True, layout="constrained")
     fig.suptitle(title or f"Rotation ages of stratum {c.stratum}", fontsize=14)
 
-    ax1.plot(c.ages[show], c.mai[show], color="tab:blue", lw=2.2, label="MAI (mean annual increment)")
+    ax1.plot(c.ages[show], c.mai[show], color="tab:blue", lw=2.2,
+             label="MAI (mean annual increment)")
     ax1.plot(c.ages[show], c.cai[show], color="tab:orange", lw=1.6, ls="--",
              label="CAI (current annual increment)")
     ax1.axvline(c.mai_max_age, color="tab:blue", ls=":", lw=1.2)
@@ -152,8 +153,9 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     periods_df
         Frame from :func:`spatialplan.outputs.period_table`.
     schedule
-        Stand frame with ``period`` (0/null = not harvested), ``age`` (at the start) and
-        ``net_area_ha`` or ``area_ha``.
+        Stand frame with ``period`` (0/null = not harvested), the age at the start (column
+        ``fields.age_field`` of the settings, else ``age``) and ``net_area_ha`` or
+        ``area_ha``.
     settings
         :class:`spatialplan.settings.Settings` or the same tree as nested dicts
         (``horizon.periods``, ``horizon.period_length_yr``).
@@ -165,6 +167,8 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     list of pathlib.Path
         The PNGs written, in the order above.
     """
+    import pandas as pd
+
     from spatialplan.outputs import _area_column, _get, _period_array, period_colours
 
     out = Path(out_dir)
@@ -220,7 +224,9 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     per = _period_array(schedule["period"])
     a_col = _area_column(schedule, None)
     area_s = np.nan_to_num(np.asarray(schedule[a_col], dtype=float))
-    age0 = np.nan_to_num(np.asarray(schedule["age"], dtype=float))
+    age_col = _get(settings, "fields.age_field", "age")
+    age_col = age_col if age_col in schedule.columns else "age"
+    age0 = np.nan_to_num(np.asarray(pd.to_numeric(schedule[age_col], errors="coerce"), dtype=float))
     horizon = P * L
     # Harvest at mid-period, regrowth from then on (docs/architecture.md, "Timing").
     age_end = np.where(per > 0, horizon - (per - 0.5) * L, age0 + horizon)
@@ -268,3 +274,128 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     ax.set_title(f"Net present value by period (total {np.sum(disc):,.0f})", fontsize=14)
     paths.append(_save(fig, out / "npv_by_period.png"))
     return paths
+
+
+# --- scenario charts ---
+__all__ += ["comparison_chart"]
+
+
+def comparison_chart(table: Any, path: str | Path, title: str = "Scenario comparison") -> Path:
+    """Write the scenario comparison chart (one PNG, four panels).
+
+    Panels: NPV per scenario with the aspatial LP bound and the gap; the NPV cost of each
+    rule (``cost_*`` columns); harvest volume by period; area harvested and the largest
+    opening. Failed scenarios are shown as an empty slot labelled with their status.
+
+    Parameters
+    ----------
+    table
+        Frame from :func:`spatialplan.scenarios.comparison_table` (columns ``scenario``,
+        ``status``, ``npv``, ``lp_bound``, ``gap``, ``verify_ok``, ``volume_m3_p<k>``,
+        ``area_harvested_ha``, ``largest_opening_ha`` and ``cost_*``).
+    path
+        Target PNG.
+    title
+        Figure title.
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``.
+    """
+    import pandas as pd
+
+    df = table.reset_index(drop=True)
+    names = df["scenario"].astype(str).tolist()
+    n = len(names)
+    x = np.arange(n)
+    npv = pd.to_numeric(df["npv"], errors="coerce").to_numpy(float)
+    lp = pd.to_numeric(df["lp_bound"], errors="coerce").to_numpy(float)
+    gap = pd.to_numeric(df["gap"], errors="coerce").to_numpy(float)
+    ran = np.isfinite(npv)
+    verified = df["verify_ok"].astype(bool).to_numpy() & ran
+    width_in = max(10.0, 0.55 * n + 4.0)
+    fig, axes = plt.subplots(2, 2, figsize=(width_in, 9.5), layout="constrained")
+    fig.suptitle(title, fontsize=14)
+    rot = 45 if n > 4 else 0
+    ha = "right" if rot else "center"
+
+    # 1. NPV and LP bound ---------------------------------------------------------------
+    ax = axes[0, 0]
+    colour = np.where(verified, "#3a7d44", "#d08c2a")
+    ax.bar(x[ran], npv[ran] / 1000.0, color=colour[ran], edgecolor="#333333", lw=0.6,
+           label="NPV of the plan")
+    ok_lp = np.isfinite(lp)
+    ax.plot(x[ok_lp], lp[ok_lp] / 1000.0, "D", color="#222222", ms=6,
+            label="LP bound (no spatial rules)")
+    top = np.nanmax(np.r_[npv[ran], lp[ok_lp], 0.0]) / 1000.0 or 1.0
+    for i in x:
+        if ran[i]:
+            g = "" if not np.isfinite(gap[i]) else f"{100 * gap[i]:.1f}%"
+            ax.text(i, npv[i] / 1000.0, g, ha="center", va="bottom", fontsize=8)
+        else:
+            ax.text(i, 0.02 * top, str(df.loc[i, "status"]), rotation=90, ha="center",
+                    va="bottom", fontsize=9, color="#a02020")
+    if (~verified & ran).any():
+        ax.bar([], [], color="#d08c2a", label="failed verification")
+    ax.set_ylabel("Value (1000s)")
+    ax.set_title("NPV, LP bound and gap", fontsize=11, loc="left")
+    ax.legend(fontsize=8, loc="lower right")
+
+    # 2. cost of the rules --------------------------------------------------------------
+    ax = axes[0, 1]
+    cost_cols = [c for c in df.columns if str(c).startswith("cost_")]
+    if cost_cols:
+        k = len(cost_cols)
+        w = 0.8 / k
+        for j, c in enumerate(cost_cols):
+            v = pd.to_numeric(df[c], errors="coerce").to_numpy(float) / 1000.0
+            lab = "spatial rules (LP bound - NPV)" if c == "cost_spatial_rules" else c[5:]
+            ax.bar(x - 0.4 + (j + 0.5) * w, np.nan_to_num(v), width=w, label=lab,
+                   edgecolor="#333333", lw=0.4)
+        ax.axhline(0, color="#333333", lw=0.8)
+        ax.legend(fontsize=8)
+    ax.set_ylabel("NPV given up (1000s)")
+    ax.set_title("Cost of each rule, against the relaxed scenario", fontsize=11, loc="left")
+
+    # 3. volume by period --------------------------------------------------------------
+    ax = axes[1, 0]
+    vcols = sorted((c for c in df.columns if str(c).startswith("volume_m3_p")),
+                   key=lambda c: int(str(c)[11:]))
+    periods = [int(str(c)[11:]) for c in vcols]
+    cmap = plt.get_cmap("tab20" if n > 10 else "tab10")
+    for i in x:
+        if not ran[i] or not vcols:
+            continue
+        v = pd.to_numeric(df.loc[i, vcols], errors="coerce").to_numpy(float) / 1000.0
+        ax.plot(periods, v, "-o", ms=3, lw=1.3, color=cmap(i % cmap.N), label=names[i])
+    ax.set_xlabel("Period")
+    ax.set_ylabel("Volume (1000 m³)")
+    if periods:
+        ax.set_xticks(periods)
+    ax.grid(axis="y", alpha=0.3)
+    ax.set_title("Harvest volume by period", fontsize=11, loc="left")
+    if ran.any():
+        ax.legend(fontsize=7, ncol=2 if n > 6 else 1)
+
+    # 4. area harvested and largest opening ----------------------------------------------
+    ax = axes[1, 1]
+    area = pd.to_numeric(df["area_harvested_ha"], errors="coerce").to_numpy(float)
+    largest = pd.to_numeric(df["largest_opening_ha"], errors="coerce").to_numpy(float)
+    ax.bar(x, np.nan_to_num(area), color="#6a8caf", edgecolor="#333333", lw=0.6,
+           label="Area harvested (ha)")
+    ax.set_ylabel("Area harvested over the plan (ha)")
+    ax2 = ax.twinx()
+    ok_l = np.isfinite(largest) & ran
+    ax2.plot(x[ok_l], largest[ok_l], "s", color="#c06000", ms=6, label="Largest opening (ha)")
+    ax2.set_ylabel("Largest opening (ha)")
+    ax2.set_ylim(bottom=0)
+    h1, l1 = ax.get_legend_handles_labels()
+    h2, l2 = ax2.get_legend_handles_labels()
+    ax.legend(h1 + h2, l1 + l2, fontsize=8, loc="upper left")
+    ax.set_title("Area harvested and largest opening", fontsize=11, loc="left")
+
+    for a in (axes[0, 0], axes[0, 1], axes[1, 1]):
+        a.set_xticks(x, names, rotation=rot, ha=ha, fontsize=8)
+        a.grid(axis="y", alpha=0.3)
+    return _save(fig, Path(path))

@@ -83,7 +83,9 @@ def npv(cashflows: object, rate: float, times: object | None = None) -> np.ndarr
     return float(res) if np.ndim(res) == 0 else res
 
 
-def mid_period_times(periods: int | object, period_length_yr: float) -> np.ndarray:
+def mid_period_times(
+    periods: int | Sequence[int] | np.ndarray, period_length_yr: float
+) -> np.ndarray:
     """Harvest times ``t = (p - 0.5) L`` in years.
 
     Parameters
@@ -97,7 +99,7 @@ def mid_period_times(periods: int | object, period_length_yr: float) -> np.ndarr
     [2.5, 7.5, 12.5]
     """
     if np.ndim(periods) == 0:
-        p = np.arange(1, int(periods) + 1, dtype=float)  # type: ignore[call-overload]
+        p = np.arange(1, int(np.asarray(periods)) + 1).astype(float)
     else:
         p = np.asarray(periods, dtype=float)
     return (p - 0.5) * float(period_length_yr)
@@ -272,9 +274,9 @@ def faustmann_rotation(
     s = np.asarray(values, dtype=float)
     a = np.asarray(ages, dtype=float)
     if not np.nanmax(s) > 0:
-        best = math.nan
-        val = float(np.nanmax(lev(s, a, rate, regeneration_cost, annual_cost))) if rate > 0 else math.nan
-        return best, val
+        if rate <= 0:
+            return math.nan, math.nan
+        return math.nan, float(np.nanmax(lev(s, a, rate, regeneration_cost, annual_cost)))
     if rate <= 0:
         return float(a[_first_argmax((s - regeneration_cost) / a)]), math.nan
     curve = lev(s, a, rate, regeneration_cost, annual_cost)

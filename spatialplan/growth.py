@@ -118,39 +118,48 @@ def _curve_xy(ages: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndar
     return ages, values
 
 
-def _broadcast_labels(strata: object, ages: object) -> tuple[np.ndarray, np.ndarray]:
-    lab = np.asarray(strata, dtype=object)
-    a = np.asarray(ages, dtype=float)
-    if lab.ndim == 0:
-        lab = lab.reshape(1)
-        if a.ndim == 0:
-            a = a.reshape(1)
-    if a.ndim < lab.ndim:
-        a = a.reshape(a.shape + (1,) * (lab.ndim - a.ndim))
-    lab = lab.reshape(lab.shape + (1,) * (a.ndim - lab.ndim))
-    shape = np.broadcast_shapes(lab.shape, a.shape)
-    return np.broadcast_to(lab, shape), np.broadcast_to(a, shape)
-
-
 def _evaluate(
     strata: object,
     ages: object,
     tables: Mapping[str, tuple[np.ndarray, np.ndarray]],
     curves: Mapping[str, ChapmanRichards] | None = None,
 ) -> np.ndarray:
-    """Evaluate per-stratum curves; NaN where a stratum has none. Loops over strata only."""
-    lab, a = _broadcast_labels(strata, ages)
-    out = np.full(a.shape, np.nan)
+    """Evaluate per-stratum curves; NaN where a stratum has none.
+
+    Labels are factorised once to integer codes (string comparison over every (stand,
+    period) cell would dominate the run time); the loop runs over strata only. ``strata``
+    has shape (n,) (or any shape that is a prefix of the ages' shape) and broadcasts over
+    trailing age axes.
+    """
+    lab = np.asarray(strata, dtype=object)
+    a = np.asarray(ages, dtype=float)
+    if lab.ndim == 0:
+        lab = lab.reshape(1)
+    codes, uniques = pd.factorize(lab.ravel(), use_na_sentinel=False)
+    codes = codes.reshape(lab.shape)
+    if a.ndim < codes.ndim:
+        a = a.reshape(a.shape + (1,) * (codes.ndim - a.ndim))
+    lead = lab.ndim
+    shape = np.broadcast_shapes(codes.shape + (1,) * (a.ndim - lead), a.shape)
+    # One row per label position, trailing age axes flattened: gather rows per stratum.
+    row_codes = np.broadcast_to(codes, shape[:lead]).ravel()
+    a2 = np.broadcast_to(a, shape).reshape(len(row_codes), -1)
+    out = np.full(a2.shape, np.nan)
     curves = curves or {}
-    for u in pd.unique(lab.ravel()):
-        m = lab == u
+    order = np.argsort(row_codes, kind="stable")
+    bounds = np.searchsorted(row_codes[order], np.arange(len(uniques) + 1))
+    for k, u in enumerate(uniques):
+        if u not in curves and u not in tables:
+            continue
+        rows = order[bounds[k] : bounds[k + 1]]
+        x = a2[rows]
         if u in curves:
             cr = curves[u]
-            out[m] = chapman_richards(np.maximum(a[m], 0.0), cr.A, cr.k, cr.c)
-        elif u in tables:
-            x, y = tables[u]
-            out[m] = np.interp(a[m], x, y)
-    return out
+            out[rows] = chapman_richards(np.maximum(x, 0.0), cr.A, cr.k, cr.c)
+        else:
+            xs, ys = tables[u]
+            out[rows] = np.interp(x, xs, ys)
+    return out.reshape(shape)
 
 
 def _unknown(strata: object, known: set[str]) -> list[str]:
@@ -368,23 +377,23 @@ def yield_table_from_frame(
     # Order checks per key, in file order (tables are small: a plain loop is clearest).
     seen: dict[str, dict[float, int]] = {}
     last: dict[str, tuple[float, int]] = {}
-    for i, (lab, a) in enumerate(zip(labels, age, strict=True)):
+    for row, (lab, a) in enumerate(zip(labels, age.tolist(), strict=True)):
         if not np.isfinite(a):
             continue
         prev = seen.setdefault(lab, {})
         if a in prev:
             problems.append(
-                f"line {line[i]} (key {lab}): duplicate row for age {a:g} "
+                f"line {line[row]} (key {lab}): duplicate row for age {a:g} "
                 f"(also on line {prev[a]})"
             )
         elif lab in last and a < last[lab][0]:
             problems.append(
-                f"line {line[i]} (key {lab}): ages not strictly increasing "
+                f"line {line[row]} (key {lab}): ages not strictly increasing "
                 f"({a:g} after {last[lab][0]:g} on line {last[lab][1]})"
             )
-        prev.setdefault(a, int(line[i]))
+        prev.setdefault(a, int(line[row]))
         if lab not in last or a > last[lab][0]:
-            last[lab] = (a, int(line[i]))
+            last[lab] = (a, int(line[row]))
     if dia is not None:
         for lab in pd.unique(labels):
             m = labels == lab

@@ -54,7 +54,7 @@ def leaflet_assets() -> tuple[str, str]:
     js = js.replace("</script", "<\\/script")
     # Leaflet's attribution prefix holds a link to its home page inside a JS string. Writing
     # the "h" as the JS escape \x68 keeps the string identical at run time while the page
-    # source then has no src="http / href="http at all (a simple check for web resources).
+    # source then holds no web address in a src or href attribute at all.
     js = re.sub(r'\b(src|href)="http', r'\1="\\x68ttp', js)
 
     def data_uri(m: re.Match[str]) -> str:
@@ -172,6 +172,7 @@ def write_map(
     periods: int,
     title: str,
     basemap: str | None = None,
+    age_col: str = "age",
 ) -> None:
     """Write a self-contained, offline HTML map of the plan.
 
@@ -198,6 +199,8 @@ def write_map(
     basemap
         Optional tile URL template (``https://.../{z}/{x}/{y}.png``); off by default so
         the map needs no network.
+    age_col
+        Column with the age at the start (``fields.age_field``); shown when present.
 
     Raises
     ------
@@ -223,7 +226,7 @@ def write_map(
     labels = [
         ("Stand", id_col, 0),
         ("Stratum", stratum_col, 0),
-        ("Age at start (yr)", "age", 0),
+        ("Age at start (yr)", age_col, 0),
         ("Period", "_period_text", 0),
         ("Age at harvest (yr)", "age_at_harvest", 0),
         ("Volume (m³)", "volume_m3", 0),

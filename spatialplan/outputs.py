@@ -790,8 +790,8 @@ def write_period_raster(
         No projected CRS, a non-positive cell size, or a grid too large to write.
     """
     import rasterio
+    from affine import Affine
     from rasterio.features import rasterize
-    from rasterio.transform import from_origin
 
     path = Path(path)
     if not cell_m or cell_m <= 0:
@@ -808,7 +808,7 @@ def write_period_raster(
         raise OutputError(msg)
     per = _period_array(schedule[period_col])
     dtype = "uint8" if per.max(initial=0) <= 255 else "uint16"
-    transform = from_origin(minx, maxy, cell_m, cell_m)
+    transform = Affine(cell_m, 0.0, minx, 0.0, -cell_m, maxy)  # north-up, origin top-left
     shapes = [(g, int(p)) for g, p in zip(schedule.geometry.values, per, strict=True) if p > 0]
     grid = (
         rasterize(shapes, out_shape=(height, width), transform=transform, fill=0, dtype=dtype)

@@ -274,6 +274,7 @@ def write_review_files(
     stratum_col: str = "stratum",
     reserve_col: str | None = "reserve",
     title: str | None = None,
+    cautions: Sequence[str] = CAUTIONS,
 ) -> dict[str, Any]:
     """Write the map, the charts and the report that go with a plan GeoPackage.
 
@@ -291,10 +292,13 @@ def write_review_files(
     paths = review_paths(gpkg, out_html)
     P = int(_get(settings, "horizon.periods", len(periods_df)))
     name = title or f"Harvest plan: {Path(gpkg).stem}"
+    age_col = str(_get(settings, "fields.age_field", "age"))
     write_map(schedule, openings, paths["map"], id_col=id_col, stratum_col=stratum_col,
-              reserve_col=reserve_col, periods=P, title=name, basemap=basemap)  # fmt: skip
+              reserve_col=reserve_col, periods=P, title=name, basemap=basemap,
+              age_col=age_col if age_col in schedule.columns else "age")  # fmt: skip
     charts = plan_charts(periods_df, schedule, settings, paths["charts"])
     href = os.path.relpath(paths["map"].resolve(), paths["report"].resolve().parent)
     info = {"title": name, **dict(run_info)}
-    write_report(paths["report"], info, periods_df, strata_df, charts, Path(href).as_posix())
+    write_report(paths["report"], info, periods_df, strata_df, charts, Path(href).as_posix(),
+                 cautions)
     return {"map": paths["map"], "report": paths["report"], "charts": charts}

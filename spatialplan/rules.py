@@ -78,8 +78,13 @@ def green_up_periods_for_stands(
         labels = list(dict.fromkeys(str(s) for s in strata))
         k = np.arange(1, _MAX_GREEN_UP_PERIODS + 1)
         # Regenerated at mid-period q, the new stand is k L years old at mid-period q + k.
-        heights = None if model is None else model.height(
-            np.repeat(np.asarray(labels, dtype=object), len(k)), np.tile(k * length, len(labels))
+        heights = (
+            None
+            if model is None
+            else model.height(
+                np.repeat(np.asarray(labels, dtype=object), len(k)),
+                np.tile(k * length, len(labels)),
+            )
         )
         if heights is None:
             msg = (
@@ -124,7 +129,9 @@ def green_up_periods_for_stands(
                 f"of {length:g} years ({g * length:g} years)"
             )
         else:
-            msgs.append(f"green-up of {r.green_up_years:g} years is {g} period(s) of {length:g} years")
+            msgs.append(
+                f"green-up of {r.green_up_years:g} years is {g} period(s) of {length:g} years"
+            )
         return np.full(n, g, dtype=np.int64), msgs
     return np.full(n, int(r.green_up_periods), dtype=np.int64), msgs
 
@@ -211,7 +218,10 @@ def rule_summary(settings: Settings) -> list[str]:
         g = math.ceil(r.green_up_years / hz.period_length_yr - 1e-12)
         out.append(f"green-up {r.green_up_years:g} years, rounded up to {g} period(s)")
     else:
-        out.append(f"green-up {r.green_up_periods} period(s) ({r.green_up_periods * hz.period_length_yr:g} years)")
+        out.append(
+            f"green-up {r.green_up_periods} period(s) "
+            f"({r.green_up_periods * hz.period_length_yr:g} years)"
+        )
     if r.unit_restriction:
         out.append("unit restriction: no two adjacent stands open in the same period")
     out.append(f"minimum harvest age {r.min_age_yr:g} years at mid-period")
@@ -235,7 +245,9 @@ def rule_summary(settings: Settings) -> list[str]:
         if v is not None:
             out.append(f"{text} {v:g} {unit}")
     if r.ending_volume_fraction is not None:
-        out.append(f"standing volume at the end at least {r.ending_volume_fraction:.0%} of the start")
+        out.append(
+            f"standing volume at the end at least {r.ending_volume_fraction:.0%} of the start"
+        )
     if r.ending_mean_age_yr is not None:
         out.append(f"mean age at the end at least {r.ending_mean_age_yr:g} years")
     corner = "; corner contacts count" if adj.corner_adjacency else ""

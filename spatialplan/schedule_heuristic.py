@@ -120,12 +120,142 @@ class _RowState:
         return np.nonzero(self.lhs > self.rhs - self.margin)[0]
 
 
+def _assign_regret(st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray,
+                   lp_x: np.ndarray) -> int:
+    n, P = price.shape
+    order_p = np.argsort(-price, axis=1)  # best period first
+    srt = np.take_along_axis(price, order_p, axis=1)
+    best = srt[:, 0]
+    second = np.where(np.isfinite(srt[:, 1]), srt[:, 1], 0.0) if P > 1 else np.zeros(n)
+    second = np.maximum(second, 0.0)  # leaving the stand uncut is always an option
+    regret = np.where(np.isfinite(best), best - second, -np.inf)
+    cand = np.nonzero(np.isfinite(best) & (best > 0) & (lp_x.sum(axis=1) > 1e-6))[0]
+    cand = cand[np.argsort(-regret[cand], kind="stable")]
+    V = np.zeros(P)
+    skips = 0
+    for i in cand:
+        i = int(i)
+        for pc in order_p[i]:
+            pc = int(pc)
+            if not np.isfinite(price[i, pc]) or price[i, pc] <= 0:
+                break
+            if V[pc] + vol[i, pc] > target[pc] + 0.5 * vol[i, pc]:
+                continue
+            if not st.can_add(i, pc + 1):
+                skips += 1
+                continue
+            st.set(i, pc + 1)
+            V[pc] += vol[i, pc]
+            break
+    return skips
+
+
+def _loss(price: np.ndarray) -> np.ndarray:
+    """Opportunity loss of each cell against the stand's best LP period (inf if ineligible)."""
+    fin = np.isfinite(price)
+    best = np.max(np.where(fin, price, -np.inf), axis=1, initial=-np.inf)
+    best = np.where(np.isfinite(best), best, 0.0)
+    return np.where(fin, best[:, None] - np.where(fin, price, 0.0), np.inf)
+
+
+def _assign_balanced(st: SpatialState, price: np.ndarray, vol: np.ndarray,
+                     target: np.ndarray) -> int:
+    """Water-filling: always top up the period furthest below its LP volume."""
+    n, P = price.shape
+    loss = _loss(price)
+    lists = []
+    for pc in range(P):
+        ok = np.nonzero(np.isfinite(price[:, pc]) & (price[:, pc] > 0) & (vol[:, pc] > 0))[0]
+        lists.append(ok[np.lexsort((-vol[ok, pc], loss[ok, pc]))].tolist())
+    ptr = [0] * P
+    V = np.zeros(P)
+    skips = 0
+    active = [target[pc] > 0 for pc in range(P)]
+    while any(active):
+        ratio = [V[pc] / target[pc] if active[pc] else np.inf for pc in range(P)]
+        pc = int(np.argmin(ratio))
+        lst = lists[pc]
+        placed = False
+        while ptr[pc] < len(lst):
+            i = lst[ptr[pc]]
+            ptr[pc] += 1
+            if st.period[i]:
+                continue
+            if V[pc] >= target[pc] - 0.5 * vol[i, pc]:
+                break
+            if not st.can_add(i, pc + 1):
+                skips += 1
+                continue
+            st.set(i, pc + 1)
+            V[pc] += vol[i, pc]
+            placed = True
+            break
+        if not placed:
+            active[pc] = False
+    return skips
+
+
+def _assign_sequential(st: SpatialState, price: np.ndarray, vol: np.ndarray,
+                       target: np.ndarray, backward: bool = False) -> int:
+    n, P = price.shape
+    loss = _loss(price)
+    skips = 0
+    for pc in range(P - 1, -1, -1) if backward else range(P):
+        ok = np.nonzero(np.isfinite(price[:, pc]) & (price[:, pc] > 0) & (vol[:, pc] > 0))[0]
+        ok = ok[np.lexsort((-vol[ok, pc], loss[ok, pc]))]
+        v = 0.0
+        for i in ok:
+            i = int(i)
+            if st.period[i]:
+                continue
+            if v >= target[pc] - 0.5 * vol[i, pc]:
+                break
+            if not st.can_add(i, pc + 1):
+                skips += 1
+                continue
+            st.set(i, pc + 1)
+            v += vol[i, pc]
+    return skips
+
+
+def _assign_rounded(st: SpatialState, price: np.ndarray, lp_x: np.ndarray) -> int:
+    """Round the LP (each stand to its largest share), keeping openings legal.
+
+    Stands go in order of their LP share (whole shares first) and, within that, of price;
+    a stand whose LP period would break an opening tries its other periods by price.
+    """
+    n, P = price.shape
+    share = lp_x.max(axis=1)
+    first = lp_x.argmax(axis=1)
+    cand = np.nonzero(share > 0.5)[0]
+    pf = price[cand, first[cand]]
+    cand = cand[np.lexsort((-pf, -np.round(share[cand], 6)))]
+    order_p = np.argsort(-price, axis=1)
+    skips = 0
+    for i in cand:
+        i = int(i)
+        q = int(first[i])
+        if st.can_add(i, q + 1):
+            st.set(i, q + 1)
+            continue
+        skips += 1
+        for pc in order_p[i]:
+            pc = int(pc)
+            if not np.isfinite(price[i, pc]) or price[i, pc] <= 0:
+                break
+            if pc != q and st.can_add(i, pc + 1):
+                st.set(i, pc + 1)
+                break
+    return skips
+
+
 def greedy_plan(
     prep: Prep,
     lp_x: np.ndarray,
     lp_price: np.ndarray | None,
     deadline: float,
     slack: float = 0.0,
+    order: str = "sequential",
 ) -> tuple[np.ndarray, dict]:
     """Build a plan that satisfies every rule, guided by the LP solution.
 
@@ -142,6 +272,10 @@ def greedy_plan(
         ``time.perf_counter()`` value after which the heuristic stops adding stands.
     slack
         Relative room above the LP volume of each period during assignment.
+    order
+        ``"sequential"``: fill period 1, then 2, ... each up to its LP volume with the
+        stands that lose least against their best LP period; ``"regret"``: place stands
+        in order of regret, each in its best period with room.
 
     Returns
     -------
@@ -160,31 +294,17 @@ def greedy_plan(
     st = SpatialState(prep)
     rows = _RowState(prep, st.period)
 
-    # ---- 1. regret-ordered assignment ------------------------------------------------
-    order_p = np.argsort(-price, axis=1)  # best period first
-    srt = np.take_along_axis(price, order_p, axis=1)
-    best = srt[:, 0]
-    second = np.where(np.isfinite(srt[:, 1]), srt[:, 1], 0.0) if P > 1 else np.zeros(n)
-    second = np.maximum(second, 0.0)  # leaving the stand uncut is always an option
-    regret = np.where(np.isfinite(best), best - second, -np.inf)
-    cand = np.nonzero(np.isfinite(best) & (best > 0) & (lp_x.sum(axis=1) > 1e-6))[0]
-    cand = cand[np.argsort(-regret[cand], kind="stable")]
-    V = np.zeros(P)
-    n_spatial_skip = 0
-    for i in cand:
-        i = int(i)
-        for pc in order_p[i]:
-            pc = int(pc)
-            if not np.isfinite(price[i, pc]) or price[i, pc] <= 0:
-                break
-            if V[pc] + vol[i, pc] > target[pc] + 0.5 * vol[i, pc]:
-                continue
-            if not st.can_add(i, pc + 1):
-                n_spatial_skip += 1
-                continue
-            st.set(i, pc + 1)
-            V[pc] += vol[i, pc]
-            break
+    # ---- 1. assignment ------------------------------------------------------------------
+    if order == "regret":
+        n_spatial_skip = _assign_regret(st, price, vol, target, lp_x)
+    elif order == "lp_round":
+        n_spatial_skip = _assign_rounded(st, price, lp_x)
+    elif order == "backward":
+        n_spatial_skip = _assign_sequential(st, price, vol, target, backward=True)
+    elif order == "balanced":
+        n_spatial_skip = _assign_balanced(st, price, vol, target)
+    else:
+        n_spatial_skip = _assign_sequential(st, price, vol, target)
     rows = _RowState(prep, st.period)
     info["assigned"] = int((st.period > 0).sum())
     info["spatial_skips"] = n_spatial_skip

@@ -87,3 +87,29 @@ def test_rotation_price_schedule_from_settings(tmp_path, yields):
     df = pd.read_csv(out)
     assert (df["lev_per_ha"] > 0).all()
     assert (df["faustmann_age"] <= df["fisher_age"]).all()
+
+
+def test_rotation_parametric_strata_only(tmp_path):
+    # Chapman-Richards strata from settings; exact MAI culmination from e^x - 1 = c x
+    # (derivation in docs/methods.md), checked against scipy.special.lambertw.
+    import math
+
+    from scipy.special import lambertw
+
+    toml = tmp_path / "cr.toml"
+    toml.write_text(
+        "[economics]\nprice_per_m3 = 35\ndiscount_rate = 0.02\n"
+        "[growth.chapman_richards.PP]\nA = 600\nk = 0.025\nc = 2.8\n",
+        encoding="utf-8",
+    )
+    out = tmp_path / "cr.csv"
+    res = CliRunner().invoke(cli, ["rotation", "--settings", str(toml), "--out", str(out),
+                                   "--no-charts"])
+    assert res.exit_code == 0, res.output
+    df = pd.read_csv(out)
+    c = 2.8
+    x = float((-lambertw(-math.exp(-1 / c) / c, k=-1)).real - 1 / c)
+    assert df.loc[0, "stratum"] == "PP"
+    assert df.loc[0, "mai_max_age_exact"] == pytest.approx(x / 0.025, rel=1e-5)
+    assert abs(df.loc[0, "mai_max_age"] - x / 0.025) <= 1.0
+    assert not (tmp_path / "cr_charts").exists()

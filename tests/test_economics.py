@@ -236,7 +236,9 @@ def test_rotation_rules_on_brute_force_grid():
     for row in df.itertuples(index=False):
         vol = g.volume(np.full(300, row.stratum, dtype=object), ages)
         S = (50.0 - 12.0) * vol
-        levs = [(S[i] - 900 * 1.035 ** t) / (1.035 ** t - 1) - 8 / 0.035 for i, t in enumerate(ages)]
+        levs = [
+            (S[i] - 900 * 1.035**t) / (1.035**t - 1) - 8 / 0.035 for i, t in enumerate(ages)
+        ]
         assert row.faustmann_age == ages[int(np.argmax(levs))]
         assert row.lev_per_ha == pytest.approx(max(levs), rel=1e-12)
         assert row.fisher_age == ages[int(np.argmax(S * 1.035 ** -ages))]
@@ -304,7 +306,8 @@ def test_harvest_values_costs_schedule_and_land_value():
                     annual_cost_per_ha=10.0, include_land_value=True)
     strata = np.array(["S2", "S2", "S4"], dtype=object)
     a0 = np.array([30.0, 30.0, 60.0])
-    hv = harvest_values(strata, a0, g, st_, cost_class=np.array([None, "cable", None], dtype=object))
+    cls = np.array([None, "cable", None], dtype=object)
+    hv = harvest_values(strata, a0, g, st_, cost_class=cls)
     assert hv.harvest_cost_per_m3.tolist() == [9.0, 20.0, 9.0]
     price = stumpage_price(g.diameter(strata, hv.harvest_age_yr), st_.economics)
     assert np.array_equal(hv.price_per_m3, price)

@@ -157,7 +157,7 @@ def test_cr_vectorised_equal_scalar(A, k, c, ts):
     # Scalar formula V(t) = A (1 - exp(-k t))^c (Richards 1959; Pienaar & Turnbull 1973).
     vec = chapman_richards(np.array(ts), A, k, c)
     for t, v in zip(ts, vec, strict=True):
-        assert v == pytest.approx(A * (1 - math.exp(-k * t)) ** c, rel=1e-12, abs=1e-12)
+        assert v == pytest.approx(A * (-math.expm1(-k * t)) ** c, rel=1e-12, abs=1e-12)
 
 
 # ---------------------------------------------------------------------------------------
@@ -213,7 +213,7 @@ def test_missing_and_unreadable_file(tmp_path):
         load_yield_table(tmp_path / "nope.csv", ["stratum"], YieldColumns())
     bad = tmp_path / "bin.csv"
     bad.write_bytes(b"\xff\xfe\x00\x81stratum\x00,\xff")
-    with pytest.raises(InputError, match="bin.csv"):
+    with pytest.raises(InputError, match=r"bin\.csv"):
         load_yield_table(bad, ["stratum"], YieldColumns())
 
 
@@ -231,7 +231,7 @@ def test_missing_columns_lists_existing(tmp_path):
 @pytest.mark.parametrize(
     ("text", "expect"),
     [
-        ("stratum,age,volume\nA,10,5\nA,20,abc\n", r"line 3 \(key A\): volume 'abc' is not a number"),
+        ("stratum,age,volume\nA,10,5\nA,20,abc\n", r"line 3 \(key A\): volume 'abc' is not a"),
         ("stratum,age,volume\nA,10,5\nA,x,7\n", r"line 3 \(key A\): age 'x' is not a number"),
         ("stratum,age,volume\nA,10,5\nA,30,9\nA,20,7\n", r"line 4 \(key A\): ages not strictly"),
         ("stratum,age,volume\nA,10,5\nA,10,5\n", r"line 3 \(key A\): duplicate row for age 10"),
@@ -278,7 +278,10 @@ def test_synthetic_demo_table_loads_and_roundtrips(tmp_path):
 def test_growth_model_combines_table_and_settings(tmp_path):
     tab = load_yield_table(_write(tmp_path, TABLE), ["stratum", "site"], YieldColumns())
     gs = GrowthSettings(
-        chapman_richards={"HW/1": ChapmanRichards(300, 0.05, 2.0), "PP/3": ChapmanRichards(500, 0.02, 3)},
+        chapman_richards={
+            "HW/1": ChapmanRichards(300, 0.05, 2.0),
+            "PP/3": ChapmanRichards(500, 0.02, 3),
+        },
         diameter_by_age={"HW/1": StratumCurve((20.0, 60.0), (8.0, 28.0))},
         height_by_age={"DF/2": StratumCurve((10.0, 50.0), (5.0, 30.0))},
     )

@@ -7,6 +7,7 @@ so ``spatialplan --help`` stays fast.
 from __future__ import annotations
 
 import importlib
+import importlib.util
 import logging
 import sys
 from typing import Any

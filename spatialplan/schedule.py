@@ -1,0 +1,315 @@
+"""The spatial harvest scheduler: LP bound, heuristic, CP-SAT with lazy covers, spatial LNS.
+
+Public entry points:
+
+* :func:`solve` - the best plan found within the time limit, with its NPV, CP-SAT's bound,
+  the aspatial LP bound and the gap;
+* :func:`lp_bound` - Model I without spatial rules as an LP (HiGHS);
+* :func:`diagnose` - which rule family makes a problem infeasible and the smallest
+  relaxation that works.
+
+How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling model"):
+
+1. LP bound with HiGHS; its dual prices rank the periods of every stand.
+2. Regret greedy with incremental opening checks, flow repair and fill: a legal plan
+   within seconds (:mod:`spatialplan.schedule_heuristic`).
+3. Improvement with real CP-SAT (:mod:`spatialplan.schedule_cpsat`): on small and medium
+   models the full model with minimal cover clauses added lazily in rounds (each returned
+   plan is checked, its over-size openings become clauses, near-legal plans are repaired in
+   a small window); on large models spatial large neighbourhood search over windows of
+   the adjacency graph (:mod:`spatialplan.schedule_search`).
+4. The final plan is re-checked in float64 against every rule.
+
+The empty plan: when the rules allow it (with default even flow ``0 <= 0`` holds) harvesting
+nothing is a legal plan and may be returned when nothing better was found in time, but
+never silently: ``stats["empty_plan"]`` is ``True`` and ``stats["warnings"]`` says so, and its
+status is never ``"optimal"`` while the LP bound is positive.
+"""
+
+from __future__ import annotations
+
+import signal
+import threading
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from spatialplan.errors import InfeasibleError, NoSolutionError
+from spatialplan.problem import PlanProblem
+from spatialplan.schedule_cpsat import CoverPool, SubModel, make_scaling
+from spatialplan.schedule_heuristic import greedy_plan
+from spatialplan.schedule_lp import LpResult, lp_bound, solve_lp
+from spatialplan.schedule_model import check_plan, plan_npv, prepare
+from spatialplan.schedule_search import SearchCtx, lazy_rounds, lns, seed_pair_covers
+from spatialplan.settings import SolverSettings
+
+__all__ = [
+    "LpResult",
+    "PlanResult",
+    "SolveProgress",
+    "diagnose",
+    "lp_bound",
+    "solve",
+]
+
+# Full CP-SAT model up to this many harvest variables; spatial LNS above.
+FULL_MODEL_MAX_VARS = 6_000
+
+
+@dataclass(frozen=True)
+class SolveProgress:
+    """A progress report while solving (NPV and bounds in currency units)."""
+
+    elapsed_s: float
+    best_npv: float
+    bound: float
+    gap: float
+
+
+@dataclass(frozen=True)
+class PlanResult:
+    """The plan and how good it is.
+
+    Attributes
+    ----------
+    period
+        (n,) harvest period per stand, 0 = not harvested, else ``1 .. P``.
+    status
+        ``"optimal"`` (gap within ``settings.gap`` or proven), ``"feasible"``,
+        ``"time_limit"`` (best plan when time ran out), ``"interrupted"`` (best plan when
+        the user pressed Ctrl-C), ``"infeasible"`` or ``"no_solution"`` (the last two are
+        raised as errors by :func:`solve`).
+    npv
+        NPV of ``period`` recomputed in float64 from the problem arrays.
+    cpsat_bound
+        CP-SAT's upper bound on the full model in real units (``None`` when only
+        sub-models were solved).
+    lp_bound
+        Aspatial LP upper bound.
+    gap
+        ``(bound - npv) / |bound|`` with the tighter of the two bounds.
+    solve_time_s
+        Wall time of :func:`solve`.
+    stats
+        Model size, rounds, covers, scaling and rounding errors, heuristic NPV, time to
+        first plan, what each component found, warnings.
+    """
+
+    period: np.ndarray
+    status: str
+    npv: float
+    cpsat_bound: float | None
+    lp_bound: float
+    gap: float
+    solve_time_s: float
+    stats: dict = field(default_factory=dict)
+
+
+def _gap(npv: float, bound: float) -> float:
+    if not np.isfinite(bound):
+        return float("inf")
+    return max(0.0, (bound - npv) / max(abs(bound), 1e-9))
+
+
+@contextmanager
+def _sigint(registry: dict) -> Iterator[None]:
+    """During a solve, Ctrl-C stops CP-SAT and returns the best plan (main thread only)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum: int, frame: object) -> None:
+        registry["interrupted"] = True
+        s = registry.get("solver")
+        if s is not None:
+            s.stop_search()
+
+    previous = signal.signal(signal.SIGINT, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def solve(
+    problem: PlanProblem,
+    settings: SolverSettings,
+    on_progress: Callable[[SolveProgress], None] | None = None,
+    *,
+    _strategy: str = "auto",
+) -> PlanResult:
+    """Find the harvest plan with the highest NPV that keeps every rule.
+
+    Parameters
+    ----------
+    problem
+        The instance (plain arrays, see :class:`~spatialplan.problem.PlanProblem`).
+    settings
+        Time limit (whole solve, LP and heuristic included), workers, seed and the
+        relative gap at which to stop.
+    on_progress
+        Called with a :class:`SolveProgress` whenever the best plan improves.
+    _strategy
+        ``"auto"``, ``"full"`` (CP-SAT on the full model), ``"lns"`` (spatial LNS) or
+        ``"heuristic"`` (LP + greedy only); for benchmarks.
+
+    Returns
+    -------
+    PlanResult
+
+    Raises
+    ------
+    InfeasibleError
+        The rules admit no plan; ``diagnosis`` lists the rule families to relax.
+    NoSolutionError
+        Time ran out (or Ctrl-C) before any legal plan was found.
+    """
+    t0 = time.perf_counter()
+    deadline = t0 + float(settings.time_limit_s)
+    prep = prepare(problem)
+    stats: dict = {"warnings": []}
+    # 1. LP bound
+    lp = solve_lp(problem, rows=prep.rows, time_limit_s=max(deadline - time.perf_counter(), 0.05))
+    stats["lp_time_s"] = round(time.perf_counter() - t0, 3)
+    stats["lp_status"] = lp.status
+    if lp.status == "infeasible":
+        diag = diagnose(problem, settings)
+        msg = "the planning rules admit no harvest plan (even without the spatial rules)"
+        raise InfeasibleError(msg, diag)
+    lp_value = lp.value if lp.status == "optimal" else float("inf")
+    scaling = make_scaling(prep)
+    pool = CoverPool()
+    stats["pair_covers"] = seed_pair_covers(prep, pool)
+    registry: dict = {"solver": None, "interrupted": False}
+    ctx = SearchCtx(prep=prep, scaling=scaling, pool=pool, workers=int(settings.workers),
+                    seed=int(settings.seed), deadline=deadline, t0=t0, lp_value=lp_value,
+                    registry=registry, stats=stats,
+                    gap_stop=float(settings.gap))
+
+    def report(c: SearchCtx) -> None:
+        if on_progress is None:
+            return
+        b = _bound(c)
+        on_progress(SolveProgress(time.perf_counter() - t0, c.best_npv, b, _gap(c.best_npv, b)))
+
+    ctx.on_improve = report
+    with _sigint(registry):
+        # 2. heuristic
+        th = time.perf_counter()
+        if lp.status == "optimal":
+            period, hinfo = greedy_plan(prep, lp.x, lp.price, deadline, order="balanced")
+        else:
+            period, hinfo = greedy_plan(prep, np.ones((prep.n, prep.P)) / prep.P, None, deadline)
+        stats["heuristic_time_s"] = round(time.perf_counter() - th, 3)
+        stats["heuristic"] = hinfo
+        if hinfo.get("legal"):
+            ctx.offer(period, "heuristic")
+        stats["heuristic_npv"] = plan_npv(problem, period) if hinfo.get("legal") else None
+        empty = np.zeros(prep.n, dtype=np.int64)
+        if ctx.best is None and not check_plan(prep, empty):
+            ctx.offer(empty, "empty")
+        # 3. improvement
+        n_vars = int(prep.eligible.sum())
+        strategy = _strategy
+        if strategy == "auto":
+            strategy = "full" if n_vars <= FULL_MODEL_MAX_VARS else "lns"
+        stats["strategy"] = strategy
+        infeasible = False
+        if strategy != "heuristic" and not ctx.stopped() and n_vars > 0:
+            if strategy == "full" or ctx.best is None or not ctx.best.any():
+                infeasible = _full(ctx, settings, stats, until_first=strategy != "full")
+            if strategy == "lns" and not infeasible and ctx.best is not None:
+                lns(ctx)
+    # 4. result
+    elapsed = time.perf_counter() - t0
+    stats["solve_time_s"] = round(elapsed, 3)
+    stats["covers"] = len(pool)
+    stats["scale_factor"] = scaling.s_obj
+    stats["max_objective_rounding_error"] = scaling.max_coef_error
+    stats["objective_rounding_error_bound"] = scaling.total_error_bound
+    stats["history"] = ctx.history
+    stats["variables"] = stats.get("variables", n_vars)
+    if infeasible:
+        diag = diagnose(problem, settings)
+        msg = "the planning rules admit no harvest plan"
+        raise InfeasibleError(msg, diag)
+    if ctx.best is None:
+        msg = (f"no legal plan found within {settings.time_limit_s:g} s; "
+               "raise the time limit (--time-limit)")
+        raise NoSolutionError(msg)
+    final = ctx.best
+    problems = check_plan(prep, final)
+    if problems:  # never expected: every accepted plan was checked
+        msg = "internal error: the best plan breaks rules: " + "; ".join(problems[:3])
+        raise NoSolutionError(msg)
+    npv = plan_npv(problem, final)
+    bound = _bound(ctx)
+    gap = _gap(npv, bound)
+    empty_plan = not final.any()
+    stats["empty_plan"] = bool(empty_plan)
+    if empty_plan and lp_value > 0:
+        stats["warnings"].append(
+            "the best plan found harvests nothing although the LP bound is positive; "
+            "raise the time limit or check the rules")
+    if registry["interrupted"]:
+        status = "interrupted"
+    elif (ctx.proven or gap <= settings.gap) and not (empty_plan and lp_value > 0):
+        status = "optimal"
+    elif time.perf_counter() >= deadline - 0.05 or strategy == "lns":
+        status = "time_limit"
+    else:
+        status = "feasible"
+    return PlanResult(period=final.copy(), status=status, npv=npv, cpsat_bound=ctx.cpsat_bound,
+                      lp_bound=float(lp.value) if lp.status == "optimal" else float("nan"),
+                      gap=gap, solve_time_s=elapsed, stats=stats)
+
+
+def _bound(ctx: SearchCtx) -> float:
+    b = ctx.lp_value
+    if ctx.cpsat_bound is not None:
+        b = min(b, ctx.cpsat_bound)
+    if ctx.proven:
+        b = min(b, ctx.best_npv)
+    return b
+
+
+def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bool) -> bool:
+    """CP-SAT on the full model with lazy covers; returns True when proven infeasible."""
+    prep = ctx.prep
+    free = np.nonzero(prep.eligible.any(axis=1))[0]
+    base = np.zeros(prep.n, dtype=np.int64)
+    tb = time.perf_counter()
+    sub = SubModel(prep, free, base, ctx.scaling)
+    stats["model_build_s"] = round(time.perf_counter() - tb, 3)
+    while not ctx.stopped():
+        res = lazy_rounds(ctx, sub, ctx.left(), "cpsat", first_slice_s=_first_slice(prep),
+                          gap=settings.gap, repair=True, full=True)
+        if res == "infeasible":
+            return True
+        if res == "optimal" or (until_first and ctx.best is not None and ctx.best.any()):
+            break
+        if ctx.best is not None and ctx.cpsat_bound is not None and \
+                _gap(ctx.best_npv, _bound(ctx)) <= settings.gap:
+            break
+    size = sub.size()
+    stats.update({"variables": size["variables"], "constraints": size["constraints"],
+                  "area_restriction_constraints": size["cover_clauses"],
+                  "row_tightening_rel": sub.row_tightening})
+    return False
+
+
+def _first_slice(prep) -> float:
+    return float(min(5.0, 0.5 + prep.eligible.sum() / 4000.0))
+
+
+def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:
+    """Which rule family makes a problem infeasible, and the smallest relaxation that works.
+
+    See :func:`spatialplan.schedule_diagnose.diagnose`.
+    """
+    from spatialplan.schedule_diagnose import diagnose as _diagnose
+
+    return _diagnose(problem, settings)

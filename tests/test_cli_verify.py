@@ -1,0 +1,123 @@
+"""``spatialplan verify`` end to end through click's CliRunner and the console entry point."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import geopandas as gpd
+import pandas as pd
+import pyogrio
+import pytest
+import shapely
+from click.testing import CliRunner
+
+from spatialplan.cli import cli, main
+from spatialplan.settings import settings_from_dict
+from spatialplan.synthetic import synthetic_yield_table
+
+SIDE = 200.0  # 4 ha squares
+YIELDS = synthetic_yield_table()
+
+
+def write_plan(path: Path, periods: dict[tuple[int, int], int], ages: dict, rules: dict) -> None:
+    """A small plan GeoPackage: layer ``schedule`` and the ``run`` key/value table."""
+    rows = [
+        {
+            "stand_id": f"C{c}R{r}",
+            "age": ages.get((c, r), 60.0),
+            "stratum": "S1",
+            "period": periods.get((c, r)),
+            "geometry": shapely.box(c * SIDE, r * SIDE, (c + 1) * SIDE, (r + 1) * SIDE),
+        }
+        for r in range(3)
+        for c in range(6)
+    ]
+    gdf = gpd.GeoDataFrame(rows, crs="EPSG:32610")
+    gdf["period"] = gdf["period"].astype("Int64")
+    gdf.to_file(path, layer="schedule")
+    s = settings_from_dict({"horizon": {"periods": 4, "period_length_yr": 5.0}, "rules": rules})
+    run = pd.DataFrame(
+        {
+            "key": ["settings_json", "yields_csv", "solver_status"],
+            "value": [s.to_json(), YIELDS.to_csv(index=False), "FEASIBLE"],
+        }
+    )
+    pyogrio.write_dataframe(run, path, layer="run")
+
+
+RULES = {"max_opening_ha": 10.0, "green_up_periods": 2, "min_age_yr": 40.0, "flow_tolerance": None}
+# see tests/test_verify.py: 12 ha cut at once, 12 ha through green-up, one cut at 32.5 years
+THREE = {(0, 0): 1, (1, 0): 1, (2, 0): 1, (4, 0): 1, (4, 1): 1, (5, 0): 2, (0, 2): 3}
+
+
+@pytest.fixture
+def three_plan(tmp_path: Path) -> Path:
+    p = tmp_path / "out.gpkg"
+    write_plan(p, THREE, {(0, 2): 20.0}, RULES)
+    return p
+
+
+def test_three_violations_exit_1(three_plan: Path) -> None:
+    res = CliRunner().invoke(cli, ["verify", str(three_plan)])
+    assert res.exit_code == 1, res.output
+    lines = [x for x in res.output.splitlines() if x.startswith("VIOLATION")]
+    assert len(lines) == 3
+    assert any(
+        "max_opening period 1" in x and "C0R0,C1R0,C2R0" in x and "12.00 ha" in x for x in lines
+    )
+    assert any("green_up period 2" in x and "C5R0" in x for x in lines)
+    assert any("min_age period 3" in x and "C0R2" in x for x in lines)
+    assert res.output.strip().splitlines()[-1].startswith("FAIL: 3 violation(s)")
+
+
+def test_flags_override_recorded_rules(three_plan: Path) -> None:
+    runner = CliRunner()
+    res = runner.invoke(cli, ["verify", str(three_plan), "--max-opening", "13"])
+    assert res.exit_code == 1
+    assert "FAIL: 1 violation(s) (min_age 1)" in res.output
+    res = runner.invoke(cli, ["verify", str(three_plan), "--max-opening", "13", "--min-age", "30"])
+    assert res.exit_code == 0, res.output
+    assert "PASS" in res.output
+    res = runner.invoke(cli, ["verify", str(three_plan), "--green-up", "1"])
+    assert res.exit_code == 1
+    assert "green_up" not in res.output
+    assert "max_opening 1" in res.output
+
+
+def test_unit_restriction_and_settings_file(three_plan: Path, tmp_path: Path) -> None:
+    res = CliRunner().invoke(cli, ["verify", str(three_plan), "--unit-restriction"])
+    assert res.exit_code == 1
+    assert "unit_restriction" in res.output
+    toml = tmp_path / "plan.toml"
+    toml.write_text(
+        "[horizon]\nperiods = 4\n[rules]\nmax_opening_ha = 100.0\nmin_age_yr = 0.0\n"
+        "flow_tolerance = 0.5\n"
+    )
+    res = CliRunner().invoke(cli, ["verify", str(three_plan), "--settings", str(toml)])
+    # the TOML replaces the recorded rules: openings and ages pass, flow +-50% breaks
+    assert "max_opening" not in res.output
+    assert "min_age" not in res.output
+    assert "even_flow" in res.output
+    assert res.exit_code == 1
+
+
+def test_yields_override_and_legal_plan(tmp_path: Path) -> None:
+    p = tmp_path / "ok.gpkg"
+    write_plan(p, {(0, 0): 1, (3, 0): 2, (0, 2): 3, (3, 2): 4}, {}, RULES)
+    res = CliRunner().invoke(cli, ["verify", str(p)])
+    assert res.exit_code == 0, res.output
+    assert res.output.strip().splitlines()[-1].startswith("PASS")
+    other = tmp_path / "yields.csv"
+    YIELDS[YIELDS.stratum == "S2"].to_csv(other, index=False)
+    res = CliRunner().invoke(
+        cli, ["verify", str(p), "--yields", str(other), "--flow-tolerance", "0.1"]
+    )
+    assert res.exit_code == 1
+    assert "no yield curve for stratum S1" in res.output  # the override table is used
+
+
+def test_console_entry_point_errors(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as exc:
+        main(["verify", str(tmp_path / "missing.gpkg")])
+    assert exc.value.code == 1
+    assert "plan file not found" in capsys.readouterr().err
