@@ -158,7 +158,9 @@ def _check_basemap(url: str) -> None:
         raise SettingsError(msg)
 
 
-_EXTERNAL = re.compile(r"<(?:script|link|img)\b[^>]*\b(?:src|href)\s*=\s*[\"']?\s*(?:https?:)?//", re.I)
+_EXTERNAL = re.compile(
+    r"<(?:script|link|img)\b[^>]*\b(?:src|href)\s*=\s*[\"']?\s*(?:https?:)?//", re.I
+)
 
 
 def write_map(
@@ -248,14 +250,16 @@ def write_map(
     m.default_js = []
     m.default_css = []
     js, css = leaflet_assets()
-    root = m.get_root()
+    root: Any = m.get_root()  # a branca Figure (header / html sections)
     root.header.add_child(folium.Element(f"<style>{css}</style>"), name="sp_leaflet_css")
     root.header.add_child(folium.Element(f"<script>{js}</script>"), name="sp_leaflet_js")
     root.header.add_child(
         folium.Element(f"<title>{html.escape(title)}</title>"), name="sp_title"
     )
     if basemap:
-        folium.TileLayer(basemap, attr=html.escape(basemap), name="Basemap", overlay=False).add_to(m)
+        folium.TileLayer(
+            basemap, attr=html.escape(basemap), name="Basemap", overlay=False
+        ).add_to(m)
 
     def stand_style(feature: dict[str, Any]) -> dict[str, Any]:
         k = feature["properties"]["sp_kind"]
@@ -296,7 +300,8 @@ def write_map(
 
     op4326 = None
     if openings is not None and len(openings):
-        op4326 = openings.to_crs(4326) if openings.crs is not None else openings.set_crs(schedule.crs).to_crs(4326)
+        op_src = openings if openings.crs is not None else openings.set_crs(schedule.crs)
+        op4326 = op_src.to_crs(4326)
     for p in range(1, periods + 1):
         n_p = int((per == p).sum())
         grp = folium.FeatureGroup(name=f"Period {p} ({n_p} stands)", show=True)

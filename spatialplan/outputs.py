@@ -217,7 +217,8 @@ def opening_table(
     if len(g) and (shapely.get_type_id(g) == 6).any():
         single = shapely.get_type_id(g) == 3
         g[single] = shapely.multipolygons([[x] for x in g[single]]) if single.any() else g[single]
-    openings = gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(g, crs=schedule.crs), crs=schedule.crs)
+    openings = gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(g, crs=schedule.crs),
+                                crs=schedule.crs)  # fmt: skip
     return openings, stand_opening.astype(str)
 
 
@@ -339,7 +340,9 @@ def period_table(
         upper[j] = hi if np.isfinite(hi) else np.nan
     # Solvers work on scaled integers: allow a relative slack of 1e-6 when judging.
     slack = 1e-6 * np.maximum(1.0, h_vol)
-    flow_ok = (np.isnan(lower) | (h_vol >= lower - slack)) & (np.isnan(upper) | (h_vol <= upper + slack))
+    flow_ok = (np.isnan(lower) | (h_vol >= lower - slack)) & (
+        np.isnan(upper) | (h_vol <= upper + slack)
+    )
 
     start = np.arange(P) * L
     return pd.DataFrame(
@@ -417,7 +420,9 @@ def strata_table(
 def run_table(info: Mapping[str, Any]) -> pd.DataFrame:
     """The ``run`` table: one text ``key``/``value`` row per entry (``None`` -> empty)."""
     keys = [str(k) for k in info]
-    vals = ["" if v is None else (repr(v) if isinstance(v, float) else str(v)) for v in info.values()]
+    vals = [
+        "" if v is None else (repr(v) if isinstance(v, float) else str(v)) for v in info.values()
+    ]
     return pd.DataFrame({"key": keys, "value": vals})
 
 
@@ -649,7 +654,7 @@ def write_plan_geopackage(
             msg = f"cannot write GeoPackage {path}: {exc}"
             raise OutputError(msg) from exc
         if styles:
-            styled = {k: k for k in ("schedule", "openings") if k in layers}
+            styled: dict[str, str] = {k: k for k in ("schedule", "openings") if k in layers}
             _add_styles(tmp, styled, _periods_of(layers, "schedule"))
 
 
@@ -753,11 +758,15 @@ def write_back(
         except (OSError, RuntimeError, ValueError) as exc:
             msg = f"cannot add plan layers to {src}: {exc}"
             raise OutputError(msg) from exc
-        styled = {n: k for k, n in ((k, f"{prefix}{k}") for k in ("schedule", "openings"))
-                  if n in new}  # fmt: skip
+        styled: dict[str, str] = {
+            f"{prefix}{k}": k for k in ("schedule", "openings") if f"{prefix}{k}" in new
+        }
         _add_styles(tmp, styled, _periods_of(layers, "schedule"))
         after_names = {str(n) for n in pyogrio.list_layers(tmp)[:, 0]}
-        changed = [n for n in keep if n not in after_names or not _same_frame(before[n], _read_layer(tmp, n))]
+        changed = [
+            n for n in keep
+            if n not in after_names or not _same_frame(before[n], _read_layer(tmp, n))
+        ]  # fmt: skip
         if changed:
             msg = (
                 f"write-back into {src} stopped: layer(s) {', '.join(changed)} would change; "
@@ -804,7 +813,10 @@ def write_period_raster(
     width = max(1, int(np.ceil((maxx - minx) / cell_m)))
     height = max(1, int(np.ceil((maxy - miny) / cell_m)))
     if width * height > 400_000_000:
-        msg = f"raster {path} would have {width} x {height} cells; use a larger output.raster_cell_m"
+        msg = (
+            f"raster {path} would have {width} x {height} cells; "
+            "use a larger output.raster_cell_m"
+        )
         raise OutputError(msg)
     per = _period_array(schedule[period_col])
     dtype = "uint8" if per.max(initial=0) <= 255 else "uint16"
@@ -815,10 +827,9 @@ def write_period_raster(
         if shapes
         else np.zeros((height, width), dtype=dtype)
     )
-    with atomic_path(path) as tmp:
-        with rasterio.open(
-            tmp, "w", driver="GTiff", width=width, height=height, count=1, dtype=dtype,
-            crs=schedule.crs.to_wkt(), transform=transform, nodata=0, compress="deflate",
-        ) as dst:  # fmt: skip
-            dst.write(grid, 1)
-            dst.set_band_description(1, "harvest period (0 = not harvested)")
+    with atomic_path(path) as tmp, rasterio.open(
+        tmp, "w", driver="GTiff", width=width, height=height, count=1, dtype=dtype,
+        crs=schedule.crs.to_wkt(), transform=transform, nodata=0, compress="deflate",
+    ) as dst:  # fmt: skip
+        dst.write(grid, 1)
+        dst.set_band_description(1, "harvest period (0 = not harvested)")

@@ -104,7 +104,10 @@ def _table(frame: pd.DataFrame, cols: Sequence[tuple[str, str, int]], cls: str =
     for rec in frame.to_dict("records"):
         tds = "".join(f"<td>{html.escape(_num(rec[c], d))}</td>" for c, _l, d in use)
         body.append(f"<tr>{tds}</tr>")
-    return f'<table class="{cls}"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
+    return (
+        f'<table class="{cls}"><thead><tr>{head}</tr></thead>'
+        f'<tbody>{"".join(body)}</tbody></table>'
+    )
 
 
 def _strata_pivot(strata_df: pd.DataFrame) -> str:

@@ -163,34 +163,42 @@ def horn_slope_percent(
     Returns
     -------
     numpy.ndarray
-        float64 array of ``elev``'s shape. Cells on the grid's outer ring and cells with a
-        nodata cell in their 3x3 window are NaN.
+        Array of ``elev``'s shape, float64 for float64 input and float32 otherwise. Cells on
+        the grid's outer ring, nodata cells and cells with a nodata cell in their 3x3 window
+        are NaN.
     """
-    z = np.array(elev, dtype=np.float64, copy=True)
+    src = np.asarray(elev)
+    # Work in float64 for float64 input, else float32 (enough for DEM elevations; the
+    # differences below are taken first, so little precision is lost).
+    dtype: Any = np.float64 if src.dtype == np.float64 else np.float32
+    z: np.ndarray = np.array(src, dtype=dtype, copy=True)
     if z.ndim != 2:
         msg = f"elevation grid must be 2-D, got shape {z.shape}"
         raise ValueError(msg)
     if nodata is not None and not np.isnan(nodata):
-        z[z == nodata] = np.nan
-    out = np.full(z.shape, np.nan)
+        z[src == nodata] = np.nan
+    out = np.full(z.shape, np.nan, dtype=dtype)
     nr, nc = z.shape
     if nr < 3 or nc < 3:
         return out
     xr = _per_row(xres, nr)
     yr = _per_row(yres, nr)
+    # Horn's weights are separable: a [1 2 1] smoothing across a central difference.
+    # dz/dx numerator (c + 2f + i) - (a + 2d + g) = sum over rows of (right - left) * [1 2 1];
+    # dz/dy numerator (g + 2h + i) - (a + 2b + c) = sum over columns of (below - above) * [1 2 1].
     # NaN propagates through the sums, so any nodata cell in the window gives NaN.
-    a, b, c = z[:-2, :-2], z[:-2, 1:-1], z[:-2, 2:]
-    d, f = z[1:-1, :-2], z[1:-1, 2:]
-    g, h, i = z[2:, :-2], z[2:, 1:-1], z[2:, 2:]
-    dzdx = c + 2.0 * f + i
-    dzdx -= a + 2.0 * d + g
-    dzdx /= 8.0 * xr
-    dzdy = g + 2.0 * h + i
-    dzdy -= a + 2.0 * b + c
-    dzdy /= 8.0 * yr
-    np.hypot(dzdx, dzdy, out=dzdx)
-    dzdx *= 100.0
-    out[1:-1, 1:-1] = dzdx
+    dh = z[:, 2:] - z[:, :-2]
+    gx = dh[:-2] + dh[2:]
+    gx += 2.0 * dh[1:-1]
+    del dh
+    dv = z[2:] - z[:-2]
+    gy = dv[:, :-2] + dv[:, 2:]
+    gy += 2.0 * dv[:, 1:-1]
+    del dv
+    gx *= np.asarray(12.5 / xr, dtype=dtype)  # 100 % / 8
+    gy *= np.asarray(12.5 / yr, dtype=dtype)
+    np.hypot(gx, gy, out=gx)
+    out[1:-1, 1:-1] = gx
     # Horn's stencil skips the centre cell, so a nodata centre is blanked explicitly.
     out[np.isnan(z)] = np.nan
     return out
@@ -335,7 +343,7 @@ class _Dem:
             )
             if self.z_factor != 1.0:
                 slope *= self.z_factor
-            yield r0, r1, slope[r0 - rr0 : r0 - rr0 + (r1 - r0)].astype(np.float32)
+            yield r0, r1, slope[r0 - rr0 : r0 - rr0 + (r1 - r0)].astype(np.float32, copy=False)
 
     def nodata_rows(self, r0: int, r1: int) -> np.ndarray:
         elev = self.ds.read(1, window=rasterio.windows.Window(0, r0, self.ds.width, r1 - r0))
@@ -569,23 +577,30 @@ def stand_terrain(
 def _accumulate(
     dem: _Dem, geoms: np.ndarray, maxes: np.ndarray, steep_pct: float, block_rows: int
 ) -> tuple[np.ndarray, ...]:
-    """Burn stands block by block and sum cell counts, areas and slopes per stand."""
+    """Burn stands block by block and sum cell counts, areas and slopes per stand.
+
+    Returns cell counts, cell areas (m2), area-weighted slope sums, steep areas, areas per
+    slope class (n, k + 1) and the slope at each stand's interior point.
+    """
     n = len(geoms)
     k = len(maxes)
     ds = dem.ds
     t = ds.transform
     h, w = ds.height, ds.width
+    # One bincount per block over a combined code (stand, slope class, steep or not) gives all
+    # area statistics; a second one sums the slopes.
+    n_code = 2 * (k + 1)
+    codes = np.zeros((n + 1) * n_code)
     cnt = np.zeros(n + 1)
-    area = np.zeros(n + 1)
     slope_sum = np.zeros(n + 1)
-    steep = np.zeros(n + 1)
-    cls_area = np.zeros((n + 1) * (k + 1))
     pt_slope = np.full(n, np.nan)
+    const_area = bool(np.ptp(dem.cell_area_rows) == 0)
 
     ok = ~(shapely.is_missing(geoms) | shapely.is_empty(geoms))
     usable = geoms.copy()
     usable[~ok] = None
     tree = shapely.STRtree(usable)
+    shapes = _rasterio_shapes(usable)
     # One interior point per stand, located in the grid, read as the blocks pass by.
     pts = shapely.point_on_surface(usable)
     xy = shapely.get_coordinates(pts, include_z=False)
@@ -604,31 +619,72 @@ def _accumulate(
         sel = inside & (prow >= r0) & (prow < r1)
         if sel.any():
             pt_slope[sel] = slope[prow[sel] - r0, pcol[sel]]
+        cand = cand[[shapes[i] is not None for i in cand]]
         if len(cand) == 0:
             continue
         wt = Affine(t.a, 0.0, t.c, 0.0, t.e, t.f + r0 * t.e)  # the block's own origin
         burned = rasterio.features.rasterize(
-            zip(geoms[cand], (cand + 1).tolist(), strict=True),
+            [(shapes[i], i + 1) for i in cand.tolist()],
             out_shape=(r1 - r0, w),
             transform=wt,
             fill=0,
             all_touched=False,
             dtype="int32",
         )
-        valid = (burned > 0) & np.isfinite(slope)
+        valid = burned > 0
+        valid &= np.isfinite(slope)
         if not valid.any():
             continue
-        sid = burned[valid]
-        s = slope[valid].astype(np.float64)
-        wgt = np.broadcast_to(dem.cell_area_rows[r0:r1, None], burned.shape)[valid]
+        sid = burned[valid].astype(np.int64)
+        s = slope[valid]
+        code = np.searchsorted(maxes, s, side="left")  # slope <= max of class j -> j
+        code *= 2
+        code += s > steep_pct
+        code += sid * n_code
+        if const_area:
+            codes += np.bincount(code, minlength=len(codes))
+            slope_sum += np.bincount(sid, weights=s, minlength=n + 1)
+        else:
+            wgt = np.broadcast_to(dem.cell_area_rows[r0:r1, None], burned.shape)[valid]
+            codes += np.bincount(code, weights=wgt, minlength=len(codes))
+            slope_sum += np.bincount(sid, weights=wgt * s, minlength=n + 1)
         cnt += np.bincount(sid, minlength=n + 1)
-        area += np.bincount(sid, weights=wgt, minlength=n + 1)
-        slope_sum += np.bincount(sid, weights=wgt * s, minlength=n + 1)
-        steep += np.bincount(sid, weights=wgt * (s > steep_pct), minlength=n + 1)
-        cls = np.searchsorted(maxes, s, side="left")  # slope <= max of class j -> j
-        cls_area += np.bincount(sid * (k + 1) + cls, weights=wgt, minlength=(n + 1) * (k + 1))
-    cls2 = cls_area.reshape(n + 1, k + 1)[1:]
-    return cnt[1:], area[1:], slope_sum[1:], steep[1:], cls2, pt_slope
+    if const_area:
+        cell_area = float(dem.cell_area_rows[0])
+        codes *= cell_area
+        slope_sum *= cell_area
+    by_code = codes.reshape(n + 1, k + 1, 2)[1:]
+    cls_area = by_code.sum(axis=2)
+    steep = by_code[:, :, 1].sum(axis=1)
+    area = cls_area.sum(axis=1)
+    return cnt[1:], area, slope_sum[1:], steep, cls_area, pt_slope
+
+
+def _rasterio_shapes(geoms: np.ndarray) -> list[dict | None]:
+    """GeoJSON-like dicts of the polygonal parts of ``geoms``, with numpy coordinate arrays.
+
+    Built with vectorised shapely calls; much faster than ``__geo_interface__`` per stand.
+    Geometries without polygon parts give ``None``.
+    """
+    out: list[dict | None] = [None] * len(geoms)
+    parts, pidx = shapely.get_parts(geoms, return_index=True)
+    poly = shapely.get_type_id(parts) == 3  # Polygon; other parts cannot be burned
+    parts, pidx = parts[poly], pidx[poly]
+    if not len(parts):
+        return out
+    rings, ridx = shapely.get_rings(parts, return_index=True)
+    xy, cidx = shapely.get_coordinates(rings, return_index=True)
+    cb = np.searchsorted(cidx, np.arange(len(rings) + 1)).tolist()
+    rb = np.searchsorted(ridx, np.arange(len(parts) + 1)).tolist()
+    pb = np.searchsorted(pidx, np.arange(len(geoms) + 1)).tolist()
+    polys = [[xy[cb[r] : cb[r + 1]] for r in range(rb[p], rb[p + 1])] for p in range(len(parts))]
+    for i in range(len(geoms)):
+        lo, hi = pb[i], pb[i + 1]
+        if hi - lo == 1:
+            out[i] = {"type": "Polygon", "coordinates": polys[lo]}
+        elif hi > lo:
+            out[i] = {"type": "MultiPolygon", "coordinates": polys[lo:hi]}
+    return out
 
 
 # ---------------------------------------------------------------------------------------------

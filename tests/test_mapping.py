@@ -9,10 +9,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from tests.test_outputs import P, make_plan
 
 from spatialplan import mapping, outputs
 from spatialplan.errors import OutputError, SettingsError
+from tests.test_outputs import P, make_plan
 
 PAYLOAD = "<script>alert(1)</script>"
 
@@ -70,7 +70,8 @@ def test_map_is_offline_and_complete(tmp_path):
             val = attrs.get(key) or ""
             assert not re.match(r"\s*(https?:)?//", val), (tag, key, val)
     assert not re.search(r"(src|href)=\"https?:", text)
-    assert "cdn." not in text and "<link" not in text
+    assert "cdn." not in text
+    assert "<link" not in text
     # Leaflet itself is inlined (version banner of the vendored file).
     assert "Leaflet 1.9.4" in (Path(mapping.VENDOR) / "leaflet.js").read_text(encoding="utf-8")
     assert any("Leaflet 1.9.4" in s for s in parser.scripts)
@@ -96,13 +97,15 @@ def test_map_escapes_attributes(tmp_path):
     # Tooltips: the payload is there only as escaped text; parsed as HTML it makes no tag.
     tips = [f["properties"]["sp_tip"] for b in geojson_blocks(text) for f in b["features"]]
     hit = [t for t in tips if "alert(1)" in t]
-    assert len(hit) == 1 and "&lt;script&gt;alert(1)&lt;/script&gt;" in hit[0]
+    assert len(hit) == 1
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in hit[0]
     tp = _Tags()
     tp.feed(hit[0])
     assert {t for t, _a in tp.tags} <= {"table", "tr", "th", "td"}
     assert any("Ærø Nord" in t for t in tips)
     assert any("Šumava 7" in t for t in tips)
-    assert "<b>bold</b>" not in text and "Plan &lt;b&gt;bold&lt;/b&gt;" in text
+    assert "<b>bold</b>" not in text
+    assert "Plan &lt;b&gt;bold&lt;/b&gt;" in text
 
 
 def test_map_styles_by_period(tmp_path):

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import itertools
 import sqlite3
 import xml.etree.ElementTree as ET
 
@@ -161,7 +162,8 @@ def test_period_table_against_pandas():
             op.loc[op["period"] == p, "area_ha"].max() if (op["period"] == p).any() else 0.0)
     # Flow band from the rule |V[p+1] - V[p]| <= tol V[p] (spatialplan.problem.FlowRules).
     v = ref["v"].to_numpy()
-    assert np.isnan(t.loc[0, "flow_lower_m3"]) and t.loc[0, "flow_upper_m3"] == 9e9
+    assert np.isnan(t.loc[0, "flow_lower_m3"])
+    assert t.loc[0, "flow_upper_m3"] == 9e9
     np.testing.assert_allclose(t["flow_lower_m3"].iloc[1:], 0.9 * v[:-1])
     np.testing.assert_allclose(t["flow_upper_m3"].iloc[1:], 1.1 * v[:-1])
     ok = np.r_[True, (v[1:] >= 0.9 * v[:-1] - 1e-6) & (v[1:] <= 1.1 * v[:-1] + 1e-6)]
@@ -213,10 +215,12 @@ def test_geopackage_layers_tables_and_styles(tmp_path):
     listed = {str(a): b for a, b in pyogrio.list_layers(path)}
     for name in ("schedule", "openings", "periods", "strata", "run", "layer_styles"):
         assert name in listed
-    assert listed["periods"] is None and listed["run"] is None
+    assert listed["periods"] is None
+    assert listed["run"] is None
     con = sqlite3.connect(path)
     kinds = dict(con.execute("SELECT table_name, data_type FROM gpkg_contents"))
-    assert kinds["schedule"] == "features" and kinds["openings"] == "features"
+    assert kinds["schedule"] == "features"
+    assert kinds["openings"] == "features"
     for t in ("periods", "strata", "run", "layer_styles"):
         assert kinds[t] == "attributes"
     # GeoPackage standard (OGC 12-128r18, 1.1.3): application_id "GPKG".
@@ -255,7 +259,8 @@ def test_geopackage_layers_tables_and_styles(tmp_path):
         renderer = q.find("renderer-v2")
         assert renderer is not None
         if table == "schedule":
-            assert renderer.get("type") == "categorizedSymbol" and renderer.get("attr") == "period"
+            assert renderer.get("type") == "categorizedSymbol"
+            assert renderer.get("attr") == "period"
             cats = renderer.findall("categories/category")
             assert [c.get("value") for c in cats] == [str(p) for p in range(1, P + 1)] + [""]
             fills = []
@@ -268,7 +273,7 @@ def test_geopackage_layers_tables_and_styles(tmp_path):
 
 
 def test_geopackage_keeps_other_crs(tmp_path):
-    layers, g, *_ = make_layers()
+    layers, _g, *_ = make_layers()
     layers["schedule"] = layers["schedule"].to_crs("EPSG:3035")
     layers["openings"] = layers["openings"].to_crs("EPSG:3035")
     path = tmp_path / "laea.gpkg"
@@ -310,9 +315,8 @@ def _inventory(tmp_path):
     g["name"] = ["Ærø Nord", "Šumava", *[f"x{i}" for i in range(len(g) - 2)]]
     path = tmp_path / "forest.gpkg"
     g.to_file(path, layer="stands", driver="GPKG")
-    roads = gpd.GeoDataFrame({"kind": ["track"]},
-                             geometry=[shapely.LineString([(500_000, 5_200_000), (500_500, 5_200_300)])],
-                             crs=g.crs)  # fmt: skip
+    track = shapely.LineString([(500_000, 5_200_000), (500_500, 5_200_300)])
+    roads = gpd.GeoDataFrame({"kind": ["track"]}, geometry=[track], crs=g.crs)
     roads.to_file(path, layer="roads", driver="GPKG")
     pyogrio.write_dataframe(pd.DataFrame({"k": ["a"], "v": ["ø"]}), path, layer="notes")
     return path
@@ -413,6 +417,6 @@ def test_period_colours_ordered(periods):
     ref = [to_hex(colormaps["viridis"](x)) for x in np.linspace(0, 0.9, periods)]
     assert cols == ref
     light = [_lstar(c) for c in cols]
-    assert all(b > a for a, b in zip(light, light[1:], strict=False))
+    assert all(b > a for a, b in itertools.pairwise(light))
     # The neutral for unharvested stands is lighter than every period colour.
     assert _lstar(outputs.NOT_HARVESTED_COLOUR) > max(light) + 3
