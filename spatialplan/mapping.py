@@ -129,7 +129,7 @@ def _legend_html(title: str, colours: list[str], n_by_period: list[int]) -> str:
     )
     rows.append(
         f'<div class="sp-row"><span class="sp-sw" style="background:transparent;'
-        f'border:2px solid {OPENING_COLOUR}"></span>Opening (per period)</div>'
+        f'border:2px solid {OPENING_COLOUR}"></span>Opening (switch on by period)</div>'
     )
     return (
         "<style>"
@@ -175,13 +175,14 @@ def write_map(
     title: str,
     basemap: str | None = None,
     age_col: str = "age",
+    show_openings: bool = False,
 ) -> None:
     """Write a self-contained, offline HTML map of the plan.
 
     Stands are filled by harvest period (viridis, dark = early, light = late), unharvested
     stands in a light neutral, reserves with a dashed dark outline, openings outlined.
-    Each period is one layer (stands harvested in it plus its openings) that can be
-    toggled in the layer control.
+    Each period is one layer of stands harvested in it, and each period's openings
+    another (off at first), all toggled in the layer control.
 
     Parameters
     ----------
@@ -203,6 +204,8 @@ def write_map(
         the map needs no network.
     age_col
         Column with the age at the start (``fields.age_field``); shown when present.
+    show_openings
+        Show the opening outlines when the map opens (they can always be switched on).
 
     Raises
     ------
@@ -306,18 +309,25 @@ def write_map(
         n_p = int((per == p).sum())
         grp = folium.FeatureGroup(name=f"Period {p} ({n_p} stands)", show=True)
         add_stands(grp, per == p, kind)
-        if op4326 is not None:
-            sel = op4326[op4326["period"].astype(int) == p]
-            if len(sel):
-                otips = [
-                    _tooltip(r, [("Opening", "opening_id", 0), ("Period", "period", 0),
-                                 ("Area (ha)", "area_ha", 1), ("Stands", "stand_count", 0),
-                                 ("Harvested this period (ha)", "new_harvest_ha", 1)])
-                    for r in pd.DataFrame(sel.drop(columns=sel.geometry.name)).to_dict("records")
-                ]  # fmt: skip
-                data = _features(sel, otips, ["opening"] * len(sel))
-                folium.GeoJson(data, style_function=opening_style, on_each_feature=bind_tip,
-                               control=False).add_to(grp)  # fmt: skip
+        grp.add_to(m)
+    # Openings get their own layer per period: with all periods on at once the outlines
+    # would trace nearly every harvested stand; one period's openings at a time reads.
+    for p in range(1, periods + 1):
+        if op4326 is None:
+            break
+        sel = op4326[op4326["period"].astype(int) == p]
+        grp = folium.FeatureGroup(name=f"Openings in period {p} ({len(sel)})",
+                                  show=show_openings)  # fmt: skip
+        if len(sel):
+            otips = [
+                _tooltip(r, [("Opening", "opening_id", 0), ("Period", "period", 0),
+                             ("Area (ha)", "area_ha", 1), ("Stands", "stand_count", 0),
+                             ("Harvested this period (ha)", "new_harvest_ha", 1)])
+                for r in pd.DataFrame(sel.drop(columns=sel.geometry.name)).to_dict("records")
+            ]  # fmt: skip
+            data = _features(sel, otips, ["opening"] * len(sel))
+            folium.GeoJson(data, style_function=opening_style, on_each_feature=bind_tip,
+                           control=False).add_to(grp)  # fmt: skip
         grp.add_to(m)
     folium.LayerControl(collapsed=False).add_to(m)
 

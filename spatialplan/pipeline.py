@@ -299,7 +299,7 @@ def schedule_frame(inputs: PlanInputs, bundle: PlanBundle, period: np.ndarray) -
         attrs = attrs.rename(columns=renamed)
     area_net = bundle.net_area_ha
     out = pd.DataFrame(index=range(n))
-    out["period"] = pd.array(np.where(cut, period, 0), dtype="Int64").where(cut, pd.NA)
+    out["period"] = pd.Series(np.where(cut, period, 0), dtype="Int64").where(cut, pd.NA)
     out["harvest_year"] = np.where(cut, s.horizon.start_year + t, np.nan)
     out["age_at_harvest"] = np.where(cut, st["age"].to_numpy() + t, np.nan)
     out["volume_m3"] = np.where(cut, hv.volume_m3_ha[rows, col] * area_net, 0.0)

@@ -72,6 +72,7 @@ __all__ = [
     "ScenarioTask",
     "UnitSolve",
     "apply_overrides",
+    "check_outputs",
     "comparison_table",
     "cross_unit_edges",
     "dask_client",
@@ -1343,6 +1344,42 @@ def _outputs_of(scen: ScenarioSet, out_dir: Path) -> list[Path]:
         out_dir / f"{n}.gpkg" for n in scen.names]
 
 
+def check_outputs(scen: ScenarioSet, out_dir: str | Path, overwrite: bool) -> Path:
+    """Create the output folder; refuse to overwrite earlier outputs or any input.
+
+    Returns
+    -------
+    pathlib.Path
+        The folder.
+
+    Raises
+    ------
+    OutputError
+        ``out_dir`` is a file or not writable, outputs exist without ``overwrite``, or an
+        output would replace an input file.
+    """
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        msg = f"--out {out} is a file; give a folder"
+        raise OutputError(msg)
+    out.mkdir(parents=True, exist_ok=True)
+    if not os.access(out, os.W_OK):
+        msg = f"output folder {out} is not writable"
+        raise OutputError(msg)
+    existing = [p for p in _outputs_of(scen, out) if p.exists()]
+    if existing and not overwrite:
+        msg = (f"output folder {out} already holds {', '.join(p.name for p in existing[:5])}"
+               f"{' ...' if len(existing) > 5 else ''}; pass --overwrite to replace them")
+        raise OutputError(msg)
+    inputs = {p.resolve() for p in InputFiles.collect(
+        scen.stands, scen.yields, [s.settings for s in scen.scenarios]).paths.values()}
+    clash = [p for p in _outputs_of(scen, out) if p.resolve() in inputs]
+    if clash:
+        msg = f"output {clash[0]} is an input file; choose another --out"
+        raise OutputError(msg)
+    return out
+
+
 def run_comparison(
     scen: ScenarioSet,
     out_dir: str | Path,
@@ -1394,26 +1431,7 @@ def run_comparison(
     OutputError
         Earlier outputs exist without ``overwrite``, or the folder cannot be written.
     """
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        msg = f"--out {out} is a file; give a folder"
-        raise OutputError(msg)
-    out.mkdir(parents=True, exist_ok=True)
-    if not os.access(out, os.W_OK):
-        msg = f"output folder {out} is not writable"
-        raise OutputError(msg)
-    existing = [p for p in _outputs_of(scen, out) if p.exists()]
-    if existing and not overwrite:
-        msg = (f"output folder {out} already holds {', '.join(p.name for p in existing[:5])}"
-               f"{' ...' if len(existing) > 5 else ''}; pass --overwrite to replace them")
-        raise OutputError(msg)
-    inputs = {p.resolve() for p in InputFiles.collect(
-        scen.stands, scen.yields, [s.settings for s in scen.scenarios]).paths.values()}
-    clash = [p for p in _outputs_of(scen, out) if p.resolve() in inputs]
-    if clash:
-        msg = f"output {clash[0]} is an input file; choose another --out"
-        raise OutputError(msg)
-
+    out = check_outputs(scen, out_dir, overwrite)
     files = InputFiles.collect(scen.stands, scen.yields, [s.settings for s in scen.scenarios])
     if ship is None:
         if client is None:

@@ -631,23 +631,27 @@ def _accumulate(
             all_touched=False,
             dtype="int32",
         )
-        valid = burned > 0
-        valid &= np.isfinite(slope)
-        if not valid.any():
-            continue
-        sid = burned[valid].astype(np.int64)
-        s = slope[valid]
-        code = np.searchsorted(maxes, s, side="left")  # slope <= max of class j -> j
+        # Cells without a slope go to the dummy stand 0, so no compaction is needed; NaN
+        # compares False, and its sums land in row 0, which is dropped.
+        burned[~np.isfinite(slope)] = 0
+        sid = burned.ravel()
+        sl = slope.ravel()
+        if len(maxes) <= 8:
+            code = (sl > maxes[0]).astype(np.int64)  # slope <= max of class j -> j
+            for m in maxes[1:]:
+                code += sl > m
+        else:
+            code = np.searchsorted(maxes, sl, side="left").astype(np.int64)
         code *= 2
-        code += s > steep_pct
-        code += sid * n_code
+        code += sl > steep_pct
+        code += sid.astype(np.int64) * n_code
         if const_area:
             codes += np.bincount(code, minlength=len(codes))
-            slope_sum += np.bincount(sid, weights=s, minlength=n + 1)
+            slope_sum += np.bincount(sid, weights=sl, minlength=n + 1)
         else:
-            wgt = np.broadcast_to(dem.cell_area_rows[r0:r1, None], burned.shape)[valid]
+            wgt = np.broadcast_to(dem.cell_area_rows[r0:r1, None], burned.shape).ravel()
             codes += np.bincount(code, weights=wgt, minlength=len(codes))
-            slope_sum += np.bincount(sid, weights=wgt * s, minlength=n + 1)
+            slope_sum += np.bincount(sid, weights=wgt * sl, minlength=n + 1)
         cnt += np.bincount(sid, minlength=n + 1)
     if const_area:
         cell_area = float(dem.cell_area_rows[0])

@@ -211,6 +211,12 @@ def test_map_draws_offline(tmp_path, browser):
     mapping.write_map(g, op, path, periods=P, title="Browser test Ærø")
 
     browser.open(path.as_uri())
+    # Opening outlines are off at first: switch their layers on in the layer control.
+    assert browser.js("document.querySelectorAll('path.sp-opening').length") == 0
+    browser.js(
+        "document.querySelectorAll('.leaflet-control-layers-overlays label').forEach(l => {"
+        " if (l.textContent.trim().startsWith('Openings')) l.querySelector('input').click(); })"
+    )
     # Every stand is one SVG path in Leaflet's overlay pane; openings are outlines on top.
     n_stand = browser.js("document.querySelectorAll('.leaflet-overlay-pane path.sp-stand').length")
     n_open = browser.js("document.querySelectorAll('.leaflet-overlay-pane path.sp-opening').length")

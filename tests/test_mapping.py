@@ -85,6 +85,10 @@ def test_map_is_offline_and_complete(tmp_path):
         n = int((g["period"] == p).sum())
         assert f'"Period {p} ({n} stands)"' in text
     assert "L.control.layers" in text
+    # ... and one per period for its openings (off when the map opens).
+    for p in range(1, P + 1):
+        k = int((op["period"] == p).sum())
+        assert f'"Openings in period {p} ({k})"' in text
 
 
 def test_map_escapes_attributes(tmp_path):

@@ -301,6 +301,49 @@ def test_harvest_system_by_cover_share(tmp_path):
     assert inop.loc[0, "harvest_system"] == "inoperable"
 
 
+def test_stands_with_holes_and_several_parts(tmp_path):
+    # Analytic: a stand of two equal parts on the 10 % and 50 % planes has a mean of 30 %;
+    # a hole removes its cells from the count.
+    dem = three_zone_dem(tmp_path)
+    two = shapely.MultiPolygon(
+        [
+            shapely.box(X0 + 50, Y0 - 500, X0 + 250, Y0 - 300),
+            shapely.box(X0 + 350, Y0 - 500, X0 + 550, Y0 - 300),
+        ]
+    )
+    ring = shapely.box(X0 + 50, Y0 - 900, X0 + 250, Y0 - 700).difference(
+        shapely.box(X0 + 100, Y0 - 850, X0 + 200, Y0 - 750)
+    )
+    st = gpd.GeoDataFrame({"stand_id": ["M", "H"]}, geometry=[two, ring], crs=UTM)
+    st["area_ha"] = st.area / 10_000.0
+    df = stand_terrain(st, TerrainSettings(), dem).stands
+    assert df.loc[0, "slope_pct_mean"] == pytest.approx(30.0, rel=1e-5)
+    assert df.loc[0, "share_ground"] == pytest.approx(0.5)
+    assert df.loc[0, "harvest_system"] == "cable"  # ground covers only half (< 0.8)
+    assert df.loc[1, "n_cells"] == 20 * 20 - 10 * 10
+    assert df.loc[1, "dem_cover_share"] == pytest.approx(1.0)
+
+
+def test_stand_terrain_on_geographic_dem(tmp_path):
+    # Degree DEM with a 20 % northward plane (meridian distances from pyproj.Geod) under
+    # stands in UTM: the per-row cell areas weight the means; the plane gives 20 % (analytic).
+    g = Geod(ellps="WGS84")
+    d = 1.0 / 3600.0
+    n = 60
+    lon0, lat_top = -123.0, 46.0
+    lats = lat_top - (np.arange(n) + 0.5) * d
+    north_m = np.array([g.inv(lon0, lats[-1], lon0, la)[2] for la in lats])
+    z = np.repeat((0.2 * north_m)[:, None], n, axis=1)
+    dem = write_dem(tmp_path / "geo.tif", z, cell=d, crs="EPSG:4326", origin=(lon0, lat_top))
+    box = shapely.box(lon0 + 10 * d, lat_top - 50 * d, lon0 + 50 * d, lat_top - 10 * d)
+    st = gpd.GeoDataFrame({"stand_id": ["G"]}, geometry=[box], crs="EPSG:4326").to_crs(UTM)
+    st["area_ha"] = st.area / 10_000.0
+    df = stand_terrain(st, TerrainSettings(), dem).stands
+    assert df.loc[0, "slope_pct_mean"] == pytest.approx(20.0, rel=1e-4)
+    assert df.loc[0, "n_cells"] == pytest.approx(40 * 40, abs=80)  # reprojected outline
+    assert df.loc[0, "dem_cover_share"] == pytest.approx(1.0, abs=0.03)
+
+
 def test_stands_outside_dem_and_tiny_stands(tmp_path):
     dem = three_zone_dem(tmp_path)
     st = stands_frame(

@@ -51,11 +51,12 @@ def command(scenarios: str, out_dir: str, scheduler: str | None,
     Exit codes: 0 every scenario produced a verified plan; 1 any scenario failed (or a
     plan failed verification), or the scenario file has an error.
     """
-    from spatialplan.scenarios import dask_client, load_scenarios, split_threads
+    from spatialplan.scenarios import check_outputs, dask_client, load_scenarios, split_threads
 
     con = console()
     extra: dict[str, Any] = {"output.no_map": not maps}
     scen = load_scenarios(scenarios, extra)
+    check_outputs(scen, out_dir, overwrite)  # before starting any cluster
     n = len(scen.scenarios)
     if scheduler and not scheduler.startswith(("tcp://", "tls://", "ws://", "wss://",
                                                "inproc://", "ucx://")):

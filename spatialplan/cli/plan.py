@@ -136,7 +136,7 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
         pt.add_column(c, justify="right")
     pdf = outcome.periods
     for _, row in pdf.iterrows():
-        pt.add_row(f"{int(row['period'])}", f"{row['area_ha']:,.1f}", f"{row['volume_m3']:,.0f}",
+        pt.add_row(f"{int(row['period'])}", f"{row['harvest_area_ha']:,.1f}", f"{row['harvest_volume_m3']:,.0f}",
                    f"{row['discounted_value']:,.0f}", f"{row['largest_opening_ha']:,.1f}")
     con.out.print(pt)
     for f in outcome.extra_files:

@@ -1,0 +1,92 @@
+"""``spatialplan plan`` and ``spatialplan demo`` end to end."""
+
+from __future__ import annotations
+
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyogrio
+import pytest
+from click.testing import CliRunner
+
+from spatialplan.cli import cli
+from spatialplan.synthetic import voronoi_forest
+from tests.conftest import sha256
+
+
+@pytest.fixture
+def small_forest(tmp_path: Path, yields_csv: Path) -> tuple[Path, Path]:
+    g = voronoi_forest(60, seed=3, mean_area_ha=10.0)
+    p = tmp_path / "forest.gpkg"
+    g.to_file(p, layer="stands", driver="GPKG")
+    return p, yields_csv
+
+
+def _plan_args(stands: Path, yields: Path, out: Path, *extra: str) -> list[str]:
+    return ["plan", str(stands), "--yields", str(yields), "--out", str(out), "--price", "40",
+            "--periods", "4", "--min-age", "30", "--time-limit", "8", "--workers", "2",
+            "--no-map", *extra]
+
+
+def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Path, Path]) -> None:
+    stands, yields = small_forest
+    before = (sha256(stands), sha256(yields))
+    out = tmp_path / "plan.gpkg"
+    res = CliRunner().invoke(cli, _plan_args(stands, yields, out))
+    assert res.exit_code == 0, res.output
+    assert "PASS" in res.output
+    assert (sha256(stands), sha256(yields)) == before  # inputs untouched
+    sched = pyogrio.read_dataframe(out, layer="schedule")
+    assert len(sched) == 60
+    for col in ("stand_id", "age", "stratum", "period", "harvest_year", "age_at_harvest", "volume_m3", "value"):
+        assert col in sched.columns
+    cut = sched["period"].notna()
+    assert cut.any()
+    # Objective with only a single price: area x volume x price x (1 + r)^-t (issue 9);
+    # `value` is each stand's share of it.
+    t = (sched.loc[cut, "period"].astype(float) - 0.5) * 5.0
+    assert np.allclose(sched.loc[cut, "value"], sched.loc[cut, "volume_m3"] * 40.0 * 1.04 ** -t, rtol=1e-9)
+    assert (sched.loc[cut, "age_at_harvest"] >= 30 - 1e-9).all()
+    with sqlite3.connect(out) as con:
+        run = dict(con.execute("select key, value from run").fetchall())
+    assert run["verify_verdict"].startswith("PASS")
+    assert float(run["npv"]) == pytest.approx(sched["value"].sum(), rel=1e-6)
+    assert float(run["lp_bound"]) >= float(run["npv"]) - 1e-6
+    # The independent checker agrees when run on the file.
+    res = CliRunner().invoke(cli, ["verify", str(out)])
+    assert res.exit_code == 0, res.output
+
+
+def test_plan_refuses_to_overwrite(tmp_path: Path, small_forest: tuple[Path, Path]) -> None:
+    stands, yields = small_forest
+    out = tmp_path / "plan.gpkg"
+    out.write_bytes(b"earlier output")
+    res = CliRunner().invoke(cli, _plan_args(stands, yields, out))
+    assert res.exit_code == 1 and "--overwrite" in res.output
+    assert out.read_bytes() == b"earlier output"
+    res = CliRunner().invoke(cli, _plan_args(stands, yields, stands, "--overwrite"))
+    assert res.exit_code == 1 and "same file as input" in res.output
+
+
+def test_plan_infeasible_rules_exit_two(tmp_path: Path, small_forest: tuple[Path, Path]) -> None:
+    stands, yields = small_forest
+    settings = tmp_path / "s.toml"
+    settings.write_text("[rules]\nperiod_volume_min_m3 = 1e9\n")
+    res = CliRunner().invoke(cli, [*_plan_args(stands, yields, tmp_path / "o.gpkg"), "--settings", str(settings)])
+    assert res.exit_code == 2, res.output
+    assert not (tmp_path / "o.gpkg").exists()
+
+
+@pytest.mark.slow
+def test_demo_subprocess(tmp_path: Path) -> None:
+    out = tmp_path / "demo"
+    res = subprocess.run([sys.executable, "-m", "spatialplan", "demo", "--out", str(out), "--time-limit", "15"],
+                         capture_output=True, text=True, check=False, timeout=600)
+    assert res.returncode == 0, res.stderr[-3000:]
+    for name in ("brennick_plan.gpkg", "brennick_plan.map.html", "brennick_plan.report.html"):
+        assert (out / name).is_file()
+    assert any((out / "brennick_plan_charts").glob("*.png"))
+    assert "PASS" in res.stdout

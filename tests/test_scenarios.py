@@ -1,0 +1,324 @@
+"""Scenario files, scenario comparison on a real Dask LocalCluster, management units."""
+
+from __future__ import annotations
+
+import itertools
+from pathlib import Path
+
+import networkx as nx
+import numpy as np
+import pandas as pd
+import pytest
+
+from spatialplan.errors import InfeasibleError, SettingsError
+from spatialplan.pipeline import load_inputs, run_plan
+from spatialplan.scenarios import (
+    apply_overrides,
+    cross_unit_edges,
+    load_scenarios,
+    plan_by_unit,
+    run_comparison,
+    split_threads,
+)
+from spatialplan.settings import Settings, load_settings
+from spatialplan.synthetic import synthetic_yield_table, voronoi_forest
+
+# Small instances that CP-SAT proves optimal in seconds: 30 stands, 3 periods, one
+# search worker and a fixed seed (solver.gap = 0: "optimal" means proven).
+BASE = {
+    "solver.workers": 1,
+    "solver.seed": 0,
+    "solver.gap": 0.0,
+    "solver.time_limit_s": 30,
+    "horizon.periods": 3,
+    "economics.price_per_m3": 50.0,
+    "rules.min_age_yr": 30,
+    "output.no_map": True,
+}
+
+
+def _toml_value(v: object) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return f'"{v}"'
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    return repr(v)
+
+
+def _table(d: dict) -> str:
+    return "\n".join(f'"{k}" = {_toml_value(v)}' for k, v in d.items())
+
+
+def write_forest(folder: Path, n: int = 30, seed: int = 7) -> tuple[Path, Path]:
+    stands = folder / "stands.gpkg"
+    voronoi_forest(n, seed=seed, mean_area_ha=8).to_file(stands, layer="stands", driver="GPKG")
+    yields = folder / "yields.csv"
+    synthetic_yield_table().to_csv(yields, index=False)
+    return stands, yields
+
+
+def write_scenarios(folder: Path, scenarios: dict[str, dict], sweeps: list[str] = (),
+                    base: dict | None = None) -> Path:
+    parts = ['[inputs]\nstands = "stands.gpkg"\nyields = "yields.csv"\n',
+             "[base]\n" + _table({**BASE, **(base or {})}) + "\n"]
+    for name, ov in scenarios.items():
+        parts.append(f"[scenarios.{name}]\n{_table(ov)}\n")
+    parts.extend(sweeps)
+    p = folder / "scenarios.toml"
+    p.write_text("\n".join(parts), encoding="utf-8")
+    return p
+
+
+def sequential(stands: Path, yields: Path, settings: Settings, out: Path) -> tuple[float, np.ndarray]:
+    """The reference: the plain ``plan`` pipeline in this process."""
+    outcome = run_plan(load_inputs(stands, yields, settings), out)
+    return outcome.result.npv, np.asarray(outcome.result.period)
+
+
+@pytest.fixture(scope="module")
+def client():
+    """A real dask.distributed LocalCluster: 2 worker processes, 1 thread each."""
+    distributed = pytest.importorskip("distributed")
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                       dashboard_address=None, silence_logs=40)
+    c = distributed.Client(cluster)
+    try:
+        yield c
+    finally:
+        c.close()
+        cluster.close()
+
+
+# ---------------------------------------------------------------------------------------
+# scenario file
+# ---------------------------------------------------------------------------------------
+def test_sweep_cross_is_cartesian_product(tmp_path: Path) -> None:
+    write_forest(tmp_path, n=12)
+    sweep = ('[[sweep]]\nvary = { "rules.max_opening_ha" = [20, 40, 60], '
+             '"economics.discount_rate" = [0.03, 0.05] }\n'
+             'labels = { "rules.max_opening_ha" = "open", "economics.discount_rate" = "rate" }\n'
+             '[[sweep]]\nname = "flow"\nvary = { "rules.flow_tolerance" = [0.05, "off"] }\n')
+    p = write_scenarios(tmp_path, {"base": {}}, [sweep])
+    scen = load_scenarios(p)
+    # Cartesian product definition: |A x B| = |A| |B|, every pair once (itertools.product).
+    grid = list(itertools.product([20, 40, 60], [0.03, 0.05]))
+    names = [f"open{a:g}_rate{r:g}" for a, r in grid]
+    assert scen.names == ["base", *names, "flow_flow_tolerance0.05", "flow_flow_toleranceoff"]
+    by = {s.name: s.settings for s in scen.scenarios}
+    for (a, r), n in zip(grid, names, strict=True):
+        assert by[n].rules.max_opening_ha == a
+        assert by[n].economics.discount_rate == r
+        assert by[n].solver.workers == 1  # [base] reaches every scenario
+    assert by["flow_flow_tolerance0.05"].rules.flow_tolerance == 0.05
+    assert by[scen.names[-1]].rules.flow_tolerance is None  # "off" switches the rule off
+    assert by["base"].rules.max_opening_ha == Settings().rules.max_opening_ha
+
+
+def test_scenario_file_errors_name_the_key(tmp_path: Path) -> None:
+    write_forest(tmp_path, n=12)
+    p = write_scenarios(tmp_path, {"a": {"rules.max_openin_ha": 30}})
+    with pytest.raises(SettingsError, match=r"scenario 'a'.*rules\.max_openin_ha.*max_opening_ha"):
+        load_scenarios(p)
+    p = write_scenarios(tmp_path, {"a": {"rules.flow_tolerance": 3.0}})
+    with pytest.raises(SettingsError, match=r"rules\.flow_tolerance.*out of range"):
+        load_scenarios(p)
+    p = write_scenarios(tmp_path, {"a": {"rules.green_up_periods": "off"}})
+    with pytest.raises(SettingsError, match=r"rules\.green_up_periods"):
+        load_scenarios(p)
+    sweep = '[[sweep]]\nvary = { "rules.max_opening_ha" = [20, 20] }\n'
+    p = write_scenarios(tmp_path, {}, [sweep])
+    with pytest.raises(SettingsError, match="duplicate scenario name"):
+        load_scenarios(p)
+    p.write_text('[inputs]\nstands = "stands.gpkg"\n[scenario.a]\nx = 1\n', encoding="utf-8")
+    with pytest.raises(SettingsError, match=r"unknown section.*did you mean '\[scenarios\]'"):
+        load_scenarios(p)
+    p.write_text('[inputs]\nstands = "missing.gpkg"\n[scenarios.a]\n', encoding="utf-8")
+    with pytest.raises(SettingsError, match=r"inputs\.stands.*not found"):
+        load_scenarios(p)
+
+
+def test_apply_overrides_off_and_nested() -> None:
+    s = apply_overrides(Settings(), {"rules.max_opening_ha": "off", "rules.flow_tolerance": 0.2})
+    assert s.rules.max_opening_ha is None
+    assert s.rules.flow_tolerance == 0.2
+    with pytest.raises(SettingsError, match="rules.no_such_rule"):
+        apply_overrides(Settings(), {"rules.no_such_rule": "off"})
+
+
+def test_split_threads_stays_within_cores() -> None:
+    # Arithmetic of the split (common practice, no source: do not oversubscribe cores).
+    for cores in (1, 2, 3, 8, 16):
+        for n in (1, 2, 5, 8, 40):
+            w, t = split_threads(n, cores=cores)
+            assert w * t <= max(cores, t)
+            assert 1 <= w <= n
+            if n >= cores:
+                assert (w, t) == (cores, 1)
+
+
+# ---------------------------------------------------------------------------------------
+# Dask
+# ---------------------------------------------------------------------------------------
+def test_local_cluster_matches_sequential_runs(tmp_path: Path, client) -> None:
+    stands, yields = write_forest(tmp_path, n=40, seed=11)
+    scen_ov = {
+        "open8": {"rules.max_opening_ha": 8},
+        "open12_flow20": {"rules.max_opening_ha": 12, "rules.flow_tolerance": 0.2},
+        "noflow": {"rules.max_opening_ha": 10, "rules.flow_tolerance": "off"},
+    }
+    p = write_scenarios(tmp_path, scen_ov)
+    scen = load_scenarios(p)
+    res = run_comparison(scen, tmp_path / "out", client=client)
+    assert res.mode == "shared"
+    assert not res.failed, res.table[["scenario", "status", "error"]]
+    workers = {r.worker for r in res.results.values()}
+    assert all(":" in w for w in workers)
+    for s in scen.scenarios:
+        # Reference: the same settings through the plain pipeline, one after another.
+        npv, period = sequential(stands, yields, s.settings, tmp_path / f"seq_{s.name}.gpkg")
+        r = res.results[s.name]
+        assert r.status == "optimal"
+        assert r.npv == pytest.approx(npv, rel=1e-9)
+        np.testing.assert_array_equal(r.period, period)
+        assert (tmp_path / "out" / f"{s.name}.gpkg").is_file()
+        # The GeoPackage written from the worker's bytes holds the same plan.
+        sched = pd.read_csv(tmp_path / "out" / "comparison.csv").set_index("scenario")
+        assert sched.loc[s.name, "npv"] == pytest.approx(npv, rel=1e-9)
+
+
+def test_monotone_in_opening_size_and_flow_tolerance(tmp_path: Path, client) -> None:
+    write_forest(tmp_path, n=30, seed=7)
+    sweeps = [
+        '[[sweep]]\nname = "a"\nset = { "rules.flow_tolerance" = 0.2 }\n'
+        'vary = { "rules.max_opening_ha" = [8, 12, "off"] }\n'
+        'labels = { "rules.max_opening_ha" = "open" }\n',
+        '[[sweep]]\nname = "f"\nset = { "rules.max_opening_ha" = 12 }\n'
+        'vary = { "rules.flow_tolerance" = [0.05, 0.2, "off"] }\n'
+        'labels = { "rules.flow_tolerance" = "tol" }\n',
+    ]
+    scen = load_scenarios(write_scenarios(tmp_path, {}, sweeps))
+    res = run_comparison(scen, tmp_path / "out", client=client, ship=True)
+    assert res.mode == "shipped"
+    t = res.table.set_index("scenario")
+    assert (t["status"] == "optimal").all(), t[["status", "error"]]
+    # Relaxation argument: every plan feasible under the tighter rule is feasible under
+    # the looser one, so the optimal NPV cannot rise as the rule tightens.
+    eps = 1e-6 * t["npv"].abs().max()
+    assert t.loc["a_open8", "npv"] <= t.loc["a_open12", "npv"] + eps
+    assert t.loc["a_open12", "npv"] <= t.loc["a_openoff", "npv"] + eps
+    assert t.loc["f_tol0.05", "npv"] <= t.loc["f_tol0.2", "npv"] + eps
+    assert t.loc["f_tol0.2", "npv"] <= t.loc["f_toloff", "npv"] + eps
+    # The aspatial LP relaxation bounds every plan from above (LP relaxation of a MIP).
+    assert (t["cost_spatial_rules"] >= -eps).all()
+    # Cost of the rule: NPV of the loosest value at the same other settings minus NPV.
+    c = t["cost_rules.max_opening_ha"]
+    assert t.loc["a_open8", "ref_rules.max_opening_ha"] == "a_openoff"
+    assert c["a_open8"] == pytest.approx(t.loc["a_openoff", "npv"] - t.loc["a_open8", "npv"])
+    assert c["a_openoff"] == 0.0
+    assert t.loc["f_tol0.05", "ref_rules.flow_tolerance"] == "f_toloff"
+    assert (t["cost_rules.flow_tolerance"].dropna() >= -eps).all()
+    assert (tmp_path / "out" / "comparison.png").stat().st_size > 10_000
+
+
+def test_infeasible_scenario_reported_others_complete(tmp_path: Path, client) -> None:
+    stands, yields = write_forest(tmp_path, n=30, seed=7)
+    scen_ov = {
+        "ok_a": {"rules.max_opening_ha": 8},
+        "too_much": {"rules.period_volume_min_m3": 1e9},  # far above the standing volume
+        "ok_b": {"rules.max_opening_ha": 12},
+    }
+    scen = load_scenarios(write_scenarios(tmp_path, scen_ov))
+    res = run_comparison(scen, tmp_path / "out", client=client)
+    bad = res.results["too_much"]
+    assert not bad.ok
+    assert bad.status == "infeasible"
+    # The diagnosis is the one the plain pipeline raises for the same rules.
+    with pytest.raises(InfeasibleError) as ei:
+        sequential(stands, yields, scen.scenarios[1].settings, tmp_path / "seq.gpkg")
+    assert bad.diagnosis == list(ei.value.diagnosis)
+    assert bad.diagnosis, "an infeasible scenario is reported with its diagnosis"
+    assert res.failed == ["too_much"]
+    assert res.results["ok_a"].ok and res.results["ok_b"].ok
+    t = pd.read_csv(tmp_path / "out" / "comparison.csv").set_index("scenario")
+    assert t.loc["too_much", "status"] == "infeasible"
+    assert not (tmp_path / "out" / "too_much.gpkg").exists()
+    assert (tmp_path / "out" / "ok_a.gpkg").is_file()
+
+
+# ---------------------------------------------------------------------------------------
+# management units
+# ---------------------------------------------------------------------------------------
+def _two_units(folder: Path, gap_m: float) -> tuple[Path, Path]:
+    """Two small forests side by side, ``gap_m`` apart (0 = touching), as units N and S."""
+    a = voronoi_forest(14, seed=3, mean_area_ha=8)
+    b = voronoi_forest(14, seed=4, mean_area_ha=8)
+    side = float(a.total_bounds[2] - a.total_bounds[0])
+    b["geometry"] = b.geometry.translate(xoff=side + gap_m)
+    a["stand_id"] = "N" + a["stand_id"]
+    b["stand_id"] = "S" + b["stand_id"]
+    a["unit"] = "N"
+    b["unit"] = "S"
+    g = pd.concat([a, b], ignore_index=True)
+    stands = folder / "units.gpkg"
+    g.to_file(stands, layer="stands", driver="GPKG")
+    yields = folder / "yields.csv"
+    synthetic_yield_table().to_csv(yields, index=False)
+    return stands, yields
+
+
+def test_plan_by_unit_equals_whole_plan_when_separable(tmp_path: Path, client) -> None:
+    stands, yields = _two_units(tmp_path, gap_m=500.0)
+    s = load_settings(None, {**BASE, "fields.unit_field": "unit", "fields.layer": "stands",
+                             "rules.max_opening_ha": 10})
+    s = apply_overrides(s, {"rules.flow_tolerance": "off"})
+    by_unit = plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg", client=client)
+    whole = run_plan(load_inputs(stands, yields, s), tmp_path / "whole.gpkg")
+    assert whole.result.status == "optimal"
+    assert by_unit.result.status == "optimal"
+    # Separable problem (no shared constraint, no edge between units): the optimum of the
+    # sum is the sum of the optima of the blocks.
+    assert by_unit.result.npv == pytest.approx(whole.result.npv, rel=1e-9)
+    assert by_unit.verify.ok, by_unit.verify.verdict
+    assert by_unit.result.stats["cross_unit_edges"] == 0
+    assert not any("different units" in m for m in by_unit.messages)
+    assert (tmp_path / "merged.gpkg").is_file()
+
+
+def test_plan_by_unit_per_unit_flow_and_adjacency_warning(tmp_path: Path) -> None:
+    stands, yields = _two_units(tmp_path, gap_m=0.0)
+    s = load_settings(None, {**BASE, "fields.unit_field": "unit", "fields.layer": "stands",
+                             "rules.max_opening_ha": 10, "rules.flow_tolerance": 0.2})
+    out = plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")  # in-process
+    # Cross-unit pairs, checked against networkx on the whole adjacency graph.
+    from spatialplan.pipeline import build_problem
+
+    inputs = load_inputs(stands, yields, s)
+    bundle = build_problem(inputs)
+    units = inputs.inventory.stands["unit"].to_numpy(dtype=object)
+    g = nx.Graph()
+    g.add_edges_from(map(tuple, bundle.problem.edges))
+    ref = sum(1 for a, b in g.edges if units[a] != units[b])
+    assert len(cross_unit_edges(bundle.problem.edges, units)) == ref > 0
+    assert out.result.stats["cross_unit_edges"] == ref
+    assert any("different units" in m for m in out.messages)
+    # Each unit keeps its own +-20 % flow (by-unit planning), hence so does the sum:
+    # |V_u[p+1] - V_u[p]| <= 0.2 V_u[p] summed over units gives the forest-wide bound.
+    sched = out.schedule
+    for u in ("N", "S"):
+        sub = sched[sched["unit"] == u]
+        vol = sub.groupby("period")["volume_m3"].sum().reindex([1, 2, 3], fill_value=0.0)
+        v = vol.to_numpy(float)
+        assert np.all(np.abs(np.diff(v)) <= 0.2 * v[:-1] + 1e-6 * max(v.max(), 1.0))
+
+
+def test_plan_by_unit_refuses_forest_wide_targets(tmp_path: Path) -> None:
+    stands, yields = _two_units(tmp_path, gap_m=500.0)
+    s = load_settings(None, {**BASE, "fields.unit_field": "unit", "fields.layer": "stands",
+                             "rules.period_volume_min_m3": 100.0})
+    with pytest.raises(SettingsError, match=r"rules\.period_volume_min_m3.*per unit"):
+        plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")
+    s = load_settings(None, {**BASE, "fields.layer": "stands"})
+    with pytest.raises(SettingsError, match=r"fields\.unit_field"):
+        plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")
