@@ -139,6 +139,7 @@ def measure(step: str, meta: dict, block_rows: int) -> dict:
     st = gpd.read_file(meta["stands_path"], layer="stands")
     base = _rss_mb()
     t0 = time.perf_counter()
+    c0 = time.process_time()
     out: dict = {"step": step}
     if step == "stand_terrain":
         res = stand_terrain(st, TerrainSettings(), meta["dem_path"], block_rows=block_rows)
@@ -167,6 +168,7 @@ def measure(step: str, meta: dict, block_rows: int) -> dict:
             no_net=int(df["no_net_area"].sum()),
         )
     out["time_s"] = time.perf_counter() - t0
+    out["cpu_s"] = time.process_time() - c0
     out["rss_before_mb"] = base
     out["peak_rss_mb"] = _rss_mb()
     return out
@@ -212,12 +214,12 @@ def main() -> None:
         f"{meta['n_stands']} stands, DEM {meta['cells']} x {meta['cells']} cells of "
         f"{meta['cell_m']:.2f} m ({meta['cells'] ** 2 / 1e6:.0f} M cells)"
     )
-    print("| step | block rows | time (s) | peak RSS (MB) | RSS before (MB) |")
-    print("|---|---|---|---|---|")
+    print("| step | block rows | wall (s) | CPU (s) | peak RSS (MB) | RSS before (MB) |")
+    print("|---|---|---|---|---|---|")
     for r in results:
         br = r.get("block_rows", "-")
         print(
-            f"| {r['step']} | {br} | {r['time_s']:.1f} | {r['peak_rss_mb']:.0f} | "
+            f"| {r['step']} | {br} | {r['time_s']:.1f} | {r['cpu_s']:.1f} | {r['peak_rss_mb']:.0f} | "
             f"{r['rss_before_mb']:.0f} |"
         )
 

@@ -40,14 +40,6 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-CAUTIONS = (
-    "spatialplan is a planning aid. Its plans are not a substitute for field checks, "
-    "local forest practice law or the judgement of a licensed forester, who decide what is "
-    "harvested.",
-    "Slope, operability and net-area outputs are estimates from a DEM and mapped streams; "
-    "ground crews and local regulations decide on steep ground and near water.",
-)
-
 # Output columns added to the stand attributes in the `schedule` layer.
 PLAN_COLUMNS = (
     "period", "harvest_year", "age_at_harvest", "volume_m3", "gross_value", "value",
@@ -425,31 +417,15 @@ def run_plan(
         outputs.write_period_raster(sched, s.output.raster_out, s.output.raster_cell_m)
         extra.append(Path(s.output.raster_out))
     if not s.output.no_map:
-        extra.extend(write_views(out_path, sched, openings, periods_df, strata_df, run_df, s))
+        from spatialplan.report import write_review_files
+
+        info = dict(zip(run_df["key"], run_df["value"], strict=True))
+        views = write_review_files(
+            out_path, sched, openings, periods_df, strata_df, info, s,
+            basemap=s.output.basemap, id_col=s.fields.id_field,
+        )
+        extra.extend([Path(views["map"]), Path(views["report"]), *map(Path, views["charts"])])
     if s.output.write_back:
         outputs.write_back(inputs.stands_path, layers)
     return PlanOutcome(out_path, result, report, sched, periods_df, extra,
                        inputs.messages + bundle.messages)
-
-
-def write_views(
-    gpkg: Path, sched: gpd.GeoDataFrame, openings: gpd.GeoDataFrame, periods_df: pd.DataFrame,
-    strata_df: pd.DataFrame, run_df: pd.DataFrame, settings: Settings, basemap: str | None = None,
-) -> list[Path]:
-    """Write the map, charts and report beside ``gpkg`` (same stem)."""
-    from spatialplan import charts, mapping, report
-
-    stem = gpkg.with_suffix("")
-    map_path = Path(f"{stem}.map.html")
-    mapping.write_map(
-        sched, openings, map_path, id_col=settings.fields.id_field, stratum_col="stratum",
-        reserve_col="reserve", periods=settings.horizon.periods,
-        title=f"Harvest plan: {gpkg.name}", basemap=basemap or settings.output.basemap,
-    )
-    chart_dir = Path(f"{stem}_charts")
-    chart_dir.mkdir(exist_ok=True)
-    chart_paths = charts.plan_charts(periods_df, sched, settings, chart_dir)
-    rep = Path(f"{stem}.report.html")
-    info = dict(zip(run_df["key"], run_df["value"], strict=True))
-    report.write_report(rep, info, periods_df, strata_df, chart_paths, map_path.name, CAUTIONS)
-    return [map_path, rep, chart_dir]

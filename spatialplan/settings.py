@@ -97,8 +97,9 @@ class Rules:
     """Harvest rules. ``None`` switches an optional rule off."""
 
     max_opening_ha: float | None = field(default=40.0, metadata=_rng(0, None, lo_open=True))
-    green_up_periods: int = field(default=2, metadata=_rng(0, 100))
-    green_up_years: float | None = field(default=None, metadata=_rng(0, None))
+    # At least 1: a fresh clearcut is an opening in the period it is cut.
+    green_up_periods: int = field(default=2, metadata=_rng(1, 100))
+    green_up_years: float | None = field(default=None, metadata=_rng(0, None, lo_open=True))
     green_up_height_m: float | None = field(default=None, metadata=_rng(0, None, lo_open=True))
     unit_restriction: bool = False
     min_age_yr: float = field(default=0.0, metadata=_rng(0, 1000))

@@ -73,6 +73,9 @@ NO_NET_AREA_HA = 1.0e-4
 #: Side of the tiles the dissolved stream buffer is cut into before it meets the stands, so
 #: that each stand is intersected with small pieces instead of one network-wide polygon.
 BUFFER_TILE_M = 1000.0
+#: GDAL block cache (MB) while a DEM is read. Each row is read once (plus a halo), so a
+#: large cache only holds memory; GDAL's default is 5 % of RAM.
+GDAL_CACHE_MB = 128
 _MAX_IDS = 20
 
 
@@ -392,7 +395,7 @@ def read_dem_slope(
     InputError
         Missing file, not a raster, no CRS, rotated grid, fewer than 3 x 3 cells.
     """
-    with _Dem(dem_path, elevation_unit_m) as dem:
+    with rasterio.Env(GDAL_CACHEMAX=GDAL_CACHE_MB), _Dem(dem_path, elevation_unit_m) as dem:
         h, w = dem.ds.height, dem.ds.width
         slope = np.empty((h, w), dtype=np.float32)
         mask = np.empty((h, w), dtype=bool)
@@ -475,7 +478,7 @@ def stand_terrain(
     classes = settings.slope_classes
     k = len(classes)
     maxes = np.array([c.max_slope_pct for c in classes], dtype=np.float64)
-    with _Dem(path, settings.elevation_unit_m) as dem:
+    with rasterio.Env(GDAL_CACHEMAX=GDAL_CACHE_MB), _Dem(path, settings.elevation_unit_m) as dem:
         geoms = np.asarray(stands.to_crs(dem.ds.crs).geometry.values, dtype=object)
         acc = _accumulate(dem, geoms, maxes, settings.steep_threshold_pct, block_rows)
         cell_size = dem.cell_size_m

@@ -13,6 +13,7 @@ from spatialplan.cli._common import (
     settings_from_flags,
     settings_options,
 )
+from spatialplan.errors import OutputError
 
 PLAN_FLAGS = [
     "layer", "id-field", "age-field", "yield-keys", "reserve-field", "cost-class-field", "crs",
@@ -87,6 +88,13 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
         if v:
             inputs_list.append(Path(v))
     ensure_output_path(out, inputs_list, overwrite)
+    if not settings.output.no_map and not overwrite:
+        from spatialplan.report import review_paths
+
+        for side in review_paths(out).values():
+            if side.exists():
+                msg = f"output {side} exists; pass --overwrite to replace it (or --no-map)"
+                raise OutputError(msg)
     inputs = load_inputs(stands, yields_path, settings)
     for p in inputs.inventory.warnings:
         con.err.print(f"{p.severity}: {escape(p.text())}")

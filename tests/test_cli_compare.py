@@ -1,0 +1,152 @@
+"""``spatialplan compare`` end to end: embedded local cluster and a separately started
+``dask scheduler`` + ``dask worker`` on localhost."""
+
+from __future__ import annotations
+
+import contextlib
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from spatialplan.cli import cli
+from spatialplan.synthetic import synthetic_yield_table, voronoi_forest
+
+SCENARIOS = """
+[inputs]
+stands = "stands.gpkg"
+yields = "yields.csv"
+
+[base]
+"solver.workers" = 1
+"solver.gap" = 0.0
+"solver.time_limit_s" = 20
+"horizon.periods" = 3
+"economics.price_per_m3" = 50.0
+"rules.min_age_yr" = 30
+
+[[sweep]]
+vary = { "rules.max_opening_ha" = [8, "off"] }
+labels = { "rules.max_opening_ha" = "open" }
+"""
+
+
+def _tiny(folder: Path, extra: str = "") -> Path:
+    voronoi_forest(20, seed=5, mean_area_ha=8).to_file(folder / "stands.gpkg", layer="stands",
+                                                       driver="GPKG")
+    synthetic_yield_table().to_csv(folder / "yields.csv", index=False)
+    p = folder / "scenarios.toml"
+    p.write_text(SCENARIOS + extra, encoding="utf-8")
+    return p
+
+
+def _check_outputs(out: Path, names: list[str]) -> pd.DataFrame:
+    table = pd.read_csv(out / "comparison.csv")
+    assert table["scenario"].tolist() == names
+    png = (out / "comparison.png").read_bytes()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
+    return table
+
+
+def test_compare_local_cluster_writes_table_and_chart(tmp_path: Path) -> None:
+    p = _tiny(tmp_path)
+    out = tmp_path / "cmp"
+    r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    t = _check_outputs(out, ["open8", "openoff"])
+    assert (t["status"] == "optimal").all()
+    assert t["verify_ok"].all()
+    # A tighter opening limit cannot raise the optimal NPV (relaxation argument), so its
+    # cost against the rule switched off is >= 0.
+    t = t.set_index("scenario")
+    assert t.loc["open8", "cost_rules.max_opening_ha"] >= 0
+    assert t.loc["open8", "ref_rules.max_opening_ha"] == "openoff"
+    assert {f"volume_m3_p{k}" for k in (1, 2, 3)} <= set(t.columns)
+    assert (out / "open8.gpkg").is_file() and (out / "openoff.gpkg").is_file()
+    assert not (out / "open8.map.html").exists()  # --no-maps is the default
+    # Outputs are not replaced silently.
+    r2 = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out)])
+    assert r2.exit_code == 1
+    assert "--overwrite" in r2.output
+
+
+def test_compare_failed_scenario_exit_code(tmp_path: Path) -> None:
+    p = _tiny(tmp_path, '\n[scenarios.impossible]\n"rules.period_volume_min_m3" = 1e9\n')
+    out = tmp_path / "cmp"
+    r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out), "--ship-inputs"])
+    assert r.exit_code == 1, r.output
+    assert "impossible" in r.output and "infeasible" in r.output
+    assert "inputs: shipped" in r.output
+    t = _check_outputs(out, ["impossible", "open8", "openoff"]).set_index("scenario")
+    assert t.loc["impossible", "status"] == "infeasible"
+    assert t.loc["open8", "status"] == "optimal"
+
+
+def test_compare_bad_key_names_it(tmp_path: Path) -> None:
+    p = _tiny(tmp_path, '\n[scenarios.typo]\n"rules.max_opening" = 30\n')
+    r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(tmp_path / "cmp")])
+    assert r.exit_code == 1
+    assert "rules.max_opening" in r.output and "rules.max_opening_ha" in r.output
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def _stop(proc: subprocess.Popen | None) -> None:
+    if proc is None or proc.poll() is not None:
+        return
+    proc.terminate()
+    try:
+        proc.wait(timeout=15)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait(timeout=5)
+
+
+def test_compare_on_separately_started_scheduler(tmp_path: Path) -> None:
+    distributed = pytest.importorskip("distributed")
+    p = _tiny(tmp_path)
+    port = _free_port()
+    addr = f"tcp://127.0.0.1:{port}"
+    sched = worker = None
+    logs = tmp_path / "dask.log"
+    with open(logs, "wb") as log:
+        try:
+            sched = subprocess.Popen(
+                [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
+                 "--port", str(port), "--no-dashboard"], stdout=log, stderr=log)
+            worker = subprocess.Popen(
+                [sys.executable, "-m", "distributed.cli.dask_worker", addr, "--nworkers", "1",
+                 "--nthreads", "1", "--no-dashboard", "--host", "127.0.0.1"],
+                stdout=log, stderr=log)
+            deadline = time.monotonic() + 90
+            while True:  # bounded wait until the worker has joined the scheduler
+                with contextlib.suppress(OSError, TimeoutError):
+                    with distributed.Client(addr, timeout="5s") as c:
+                        c.wait_for_workers(1, timeout=10)
+                        break
+                assert time.monotonic() < deadline, logs.read_text(errors="replace")
+                assert sched.poll() is None and worker.poll() is None, logs.read_text()
+                time.sleep(0.5)
+            out = tmp_path / "cmp"
+            r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out),
+                                         "--scheduler", addr])
+            assert r.exit_code == 0, r.output
+            assert "inputs: shared" in r.output  # the worker sees the same files
+            t = _check_outputs(out, ["open8", "openoff"])
+            assert (t["status"] == "optimal").all()
+            # Every scenario ran on the external worker, not in this process.
+            import os
+
+            assert all(not str(w).endswith(f":{os.getpid()}") for w in t["worker"])
+        finally:
+            _stop(worker)
+            _stop(sched)
