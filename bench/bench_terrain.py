@@ -179,7 +179,7 @@ def main() -> None:
     ap.add_argument("--stands", type=int, default=50_000)
     ap.add_argument("--cells", type=int, default=10_000)
     ap.add_argument("--workdir", type=Path, default=Path("/tmp/spatialplan_bench_terrain"))
-    ap.add_argument("--block-rows", type=int, nargs="+", default=[512, 2048])
+    ap.add_argument("--block-rows", type=int, nargs="+", default=[256, 1024])
     ap.add_argument("--skip-full", action="store_true", help="skip reading the whole slope grid")
     ap.add_argument("--_measure", help=argparse.SUPPRESS)
     ap.add_argument("--_meta", help=argparse.SUPPRESS)

@@ -385,11 +385,13 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
     ax.bar(x, np.nan_to_num(area), color="#6a8caf", edgecolor="#333333", lw=0.6,
            label="Area harvested (ha)")
     ax.set_ylabel("Area harvested over the plan (ha)")
+    # Head room above the bars and markers for the legend.
+    ax.set_ylim(0, max(1e-9, float(np.nanmax(np.r_[area, 0.0]))) * 1.3)
     ax2 = ax.twinx()
     ok_l = np.isfinite(largest) & ran
     ax2.plot(x[ok_l], largest[ok_l], "s", color="#c06000", ms=6, label="Largest opening (ha)")
     ax2.set_ylabel("Largest opening (ha)")
-    ax2.set_ylim(bottom=0)
+    ax2.set_ylim(0, max(1e-9, float(np.nanmax(np.r_[largest[ok_l], 0.0]))) * 1.3)
     h1, l1 = ax.get_legend_handles_labels()
     h2, l2 = ax2.get_legend_handles_labels()
     ax.legend(h1 + h2, l1 + l2, fontsize=8, loc="upper left")

@@ -298,10 +298,24 @@ def load_yield_table(
         raise InputError(msg)
     try:
         df = pd.read_csv(p, dtype=str, keep_default_na=False, skipinitialspace=True)
-    except (OSError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
+    except UnicodeDecodeError:
+        bad = [i for i, ln in enumerate(p.read_bytes().split(b"\n"), start=1)
+               if not _is_utf8(ln)]
+        where = f" (line {bad[0]})" if bad else ""
+        msg = f"yield table {p} is not UTF-8 text{where}; save it as CSV UTF-8"
+        raise InputError(msg) from None
+    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
         msg = f"yield table {p} cannot be read as CSV: {exc}"
         raise InputError(msg) from None
     return yield_table_from_frame(df, key_fields, columns, source=str(p))
+
+
+def _is_utf8(raw: bytes) -> bool:
+    try:
+        raw.decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    return True
 
 
 def yield_table_from_frame(
@@ -337,6 +351,8 @@ def yield_table_from_frame(
             f"yield table {source} lacks column(s) {', '.join(missing)}; "
             f"it has: {', '.join(map(str, df.columns))}"
         )
+        if len(df.columns) == 1 and any(sep in str(df.columns[0]) for sep in ";\t|"):
+            msg += "; the file looks ';'-, tab- or '|'-separated: save it comma-separated"
         raise InputError(msg)
     if len(df) == 0:
         msg = f"yield table {source} has no rows"

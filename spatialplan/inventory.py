@@ -596,9 +596,11 @@ def match_strata(inv: InventoryResult, strata: set[str] | list[str], source: str
 
 def age_class_table(stands: pd.DataFrame, age: np.ndarray | None = None, width_yr: int = 20) -> pd.DataFrame:
     """Area (ha) by age class of ``width_yr`` years (``0-19``, ``20-39`` ...)."""
-    a = stands["age"].to_numpy() if age is None else np.asarray(age)
-    lo = (np.floor(a / width_yr) * width_yr).astype(int)
+    a = np.asarray(stands["age"].to_numpy() if age is None else age, dtype=float)
+    ok = np.isfinite(a)  # missing or junk ages are reported by read_stands, not classed here
+    lo = (np.floor(a[ok] / width_yr) * width_yr).astype(int)
     labels = [f"{v}-{v + width_yr - 1}" for v in lo]
-    df = pd.DataFrame({"age_class": labels, "lo": lo, "area_ha": stands["area_ha"].to_numpy()})
+    area = stands["area_ha"].to_numpy()[ok]
+    df = pd.DataFrame({"age_class": labels, "lo": lo, "area_ha": area})
     out = df.groupby(["lo", "age_class"], as_index=False)["area_ha"].sum().sort_values("lo")
     return out[["age_class", "area_ha"]].reset_index(drop=True)

@@ -37,6 +37,7 @@ import logging
 import math
 import os
 import re
+import shutil
 import socket
 import tempfile
 import time
@@ -581,13 +582,13 @@ def _visible_on_worker(sizes: dict[str, int]) -> bool:
 
 
 def _settings_for_worker(settings: Settings, paths: Mapping[str, Path]) -> Settings:
+    """Point the terrain paths at the files the worker actually reads."""
     t = settings.terrain
-    repl = {}
-    for role in ("dem", "streams"):
-        if getattr(t, role) and role in paths:
-            repl[role] = str(paths[role])
-    if repl:
-        settings = dataclasses.replace(settings, terrain=dataclasses.replace(t, **repl))
+    dem = str(paths["dem"]) if t.dem and "dem" in paths else t.dem
+    streams = str(paths["streams"]) if t.streams and "streams" in paths else t.streams
+    if (dem, streams) != (t.dem, t.streams):
+        settings = dataclasses.replace(
+            settings, terrain=dataclasses.replace(t, dem=dem, streams=streams))
     return settings
 
 
@@ -720,7 +721,7 @@ def run_scenario_task(task: ScenarioTask, files: InputFiles | None = None) -> Sc
             out_dir.mkdir()
             inputs = load_inputs(paths["stands"], paths.get("yields"), settings)
             outcome = run_plan(inputs, out_dir / f"{task.name}.gpkg")
-            files = _read_tree(out_dir)
+            written = _read_tree(out_dir)
         r = outcome.result
         return ScenarioResult(
             task.name, True, str(r.status), npv=float(r.npv), lp_bound=float(r.lp_bound),
@@ -729,7 +730,7 @@ def run_scenario_task(task: ScenarioTask, files: InputFiles | None = None) -> Sc
             verify_ok=bool(outcome.verify.ok), verify_verdict=str(outcome.verify.verdict),
             periods=_period_summary(outcome.periods),
             stand_ids=inputs.inventory.stands["stand_id"].to_numpy(dtype=object),
-            period=np.asarray(r.period, dtype=np.int64), files=files,
+            period=np.asarray(r.period, dtype=np.int64), files=written,
             messages=list(outcome.messages) + [str(w) for w in r.stats.get("warnings", [])],
             wall_s=time.perf_counter() - t0, worker=_where(),
         )
@@ -898,7 +899,6 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
         load_inputs,
         run_table,
         schedule_frame,
-        write_views,
     )
 
     t0 = time.perf_counter()
@@ -909,12 +909,13 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
         status = "infeasible" if any(u.status == "infeasible" for u in failed) else failed[0].status
         return None, ScenarioResult(name, False, status, error="; ".join(lines), diagnosis=diag,
                                     wall_s=time.perf_counter() - t0, worker=_where())
+    # The inputs stay on disk until the run table (which fingerprints them) is written.
+    td = tempfile.mkdtemp(prefix="spatialplan-")
     try:
-        with tempfile.TemporaryDirectory(prefix="spatialplan-") as td:
-            paths = files.materialize(Path(td) / "in")
-            s = _settings_for_worker(settings, paths)
-            inputs = load_inputs(paths["stands"], paths.get("yields"), s)
-            bundle = build_problem(inputs)
+        paths = files.materialize(Path(td) / "in")
+        s = _settings_for_worker(settings, paths)
+        inputs = load_inputs(paths["stands"], paths.get("yields"), s)
+        bundle = build_problem(inputs)
         n = len(inputs.inventory.stands)
         period = np.zeros(n, dtype=np.int64)
         for u in solves:
@@ -964,8 +965,16 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
                                   "periods": periods_df, "strata": strata_df, "run": run_df}
         outputs.write_plan_geopackage(out_path, layers)
         extra: list[Path] = []
-        if not s.output.no_map:
-            extra.extend(write_views(out_path, sched, openings, periods_df, strata_df, run_df, s))
+        if not s.output.no_map:  # the same review files as ``plan`` writes
+            from spatialplan.report import write_review_files
+
+            info = dict(zip(run_df["key"], run_df["value"], strict=True))
+            views = write_review_files(
+                out_path, sched, openings, periods_df, strata_df, info, s,
+                basemap=s.output.basemap, id_col=s.fields.id_field,
+            )
+            extra.extend([Path(views["map"]), Path(views["report"]),
+                          *map(Path, views["charts"])])
         unit_fail = [u for u in solves if not u.verify_ok]
         for u in unit_fail:
             messages.append(f"unit {u.unit} failed its own verification: {u.verify_verdict}")
@@ -980,6 +989,8 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
         return outcome, res
     except Exception as exc:
         return None, _failure(name, exc, t0)
+    finally:
+        shutil.rmtree(td, ignore_errors=True)
 
 
 def _merge_task(name: str, settings: Settings, files: InputFiles,
@@ -1141,6 +1152,19 @@ def split_threads(n_tasks: int, cores: int | None = None,
     return n_workers, int(threads_per_task)
 
 
+def _quiet_dask() -> None:
+    """Keep Dask's own INFO chatter (scheduler, nanny, worker start and stop) off the terminal.
+
+    Dask configures levels on its child loggers, so the parent level alone is not enough.
+    With ``-vv`` (root logger at DEBUG) everything stays visible.
+    """
+    if logging.getLogger().getEffectiveLevel() <= logging.DEBUG:
+        return
+    names = [n for n in logging.root.manager.loggerDict if n.split(".")[0] == "distributed"]
+    for n in {"distributed", *names}:
+        logging.getLogger(n).setLevel(logging.ERROR)
+
+
 class dask_client:  # noqa: N801 - used like a function: ``with dask_client(...) as client``
     """Context manager: a Client on an embedded ``LocalCluster`` or on ``scheduler``.
 
@@ -1165,6 +1189,8 @@ class dask_client:  # noqa: N801 - used like a function: ``with dask_client(...)
     def __enter__(self) -> Any:
         from distributed import Client, LocalCluster
 
+        _quiet_dask()
+
         if self.scheduler:
             try:
                 self.client = Client(self.scheduler, timeout=f"{self.timeout_s}s")
@@ -1174,9 +1200,11 @@ class dask_client:  # noqa: N801 - used like a function: ``with dask_client(...)
                 msg = f"cannot use the Dask scheduler at {self.scheduler}: {exc}"
                 raise SettingsError(msg) from None
         else:
+            # Loopback only; the scheduler's HTTP server takes a free port (not 8787, which a
+            # user's own Dask dashboard may hold).
             self.cluster = LocalCluster(
                 n_workers=self.n_workers, threads_per_worker=1, processes=True,
-                dashboard_address=None, silence_logs=logging.ERROR,
+                host="127.0.0.1", dashboard_address=":0", silence_logs=logging.ERROR,
             )
             self.client = Client(self.cluster)
         return self.client

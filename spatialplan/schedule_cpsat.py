@@ -24,6 +24,7 @@ a plan CP-SAT accepts also passes a float64 check (it is re-checked anyway).
 from __future__ import annotations
 
 import math
+import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -175,7 +176,8 @@ class SubModel:
             mx = float(np.abs(dv[nz]).max())
             s = ROW_TARGET / mx
             coefs = np.ceil(dv[nz] * s).astype(np.int64)
-            safety = 1e-9 * max(abs(r.rhs), r.scale_ref, abs(const))
+            # Bound on the float error of rhs - const (zero when both are exact zeros).
+            safety = 1e-12 * (abs(r.rhs) + r.lhs(base, absolute=True))
             rhs_real = r.rhs - const - safety
             rhs = math.floor(rhs_real * s)
             self.row_tightening = max(
@@ -326,6 +328,24 @@ class SubModel:
         try:
             if registry is not None and registry.get("interrupted"):
                 st = cp_model.UNKNOWN
+            elif threading.current_thread() is threading.main_thread():
+                # Solve in a helper thread so the main thread keeps running Python code
+                # and a Ctrl-C handler can call stop_search() at once.
+                box: dict = {}
+
+                def run() -> None:
+                    try:
+                        box["st"] = solver.Solve(self.m, cb)
+                    except BaseException as exc:  # pragma: no cover - re-raised below
+                        box["exc"] = exc
+
+                th = threading.Thread(target=run, name="cpsat", daemon=True)
+                th.start()
+                while th.is_alive():
+                    th.join(0.05)
+                if "exc" in box:
+                    raise box["exc"]
+                st = box["st"]
             else:
                 st = solver.Solve(self.m, cb)
         finally:

@@ -23,6 +23,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import json
+import math
 import re
 import tomllib
 import types
@@ -176,11 +177,14 @@ class GrowthSettings:
 
 @dataclass(frozen=True)
 class SlopeClass:
-    """A harvest system used up to ``max_slope_pct`` with its own harvest cost."""
+    """A harvest system used up to ``max_slope_pct`` with its own harvest cost.
+
+    ``harvest_cost_per_m3 = None`` (not given) keeps the cost from ``[economics]``.
+    """
 
     system: str = "ground"
     max_slope_pct: float = field(default=35.0, metadata=_rng(0, 10000))
-    harvest_cost_per_m3: float = field(default=0.0, metadata=_rng(0, None))
+    harvest_cost_per_m3: float | None = field(default=None, metadata=_rng(0, None))
 
 
 @dataclass(frozen=True)
@@ -190,13 +194,14 @@ class TerrainSettings:
     dem: str | None = None
     streams: str | None = None
     streams_layer: str | None = None
+    # Buffer distance on each side of a stream line, metres (common practice, local rules differ).
     stream_buffer_m: float = field(default=15.0, metadata=_rng(0, 10000))
     stream_buffer_field: str | None = None
     stream_buffer_by_class: dict[str, float] = field(default_factory=dict)
     # Common practice, local rules differ: ground-based to ~35 %, cable to ~80 %.
     slope_classes: tuple[SlopeClass, ...] = (
-        SlopeClass("ground", 35.0, 0.0),
-        SlopeClass("cable", 80.0, 0.0),
+        SlopeClass("ground", 35.0),
+        SlopeClass("cable", 80.0),
     )
     steep_threshold_pct: float = field(default=35.0, metadata=_rng(0, 10000))
     max_inoperable_share: float = field(default=0.5, metadata=_rng(0, 1))
@@ -358,6 +363,8 @@ def _find_line(text: str, dotted: str) -> int | None:
         m = pat_sec.match(line)
         if m:
             current = m.group(1).replace('"', "")
+            if current == dotted:  # the key names a whole section, e.g. [rulez]
+                return i
             continue
         m = pat_key.match(line)
         if m:
@@ -406,8 +413,8 @@ def _convert(tp: Any, value: Any, key: str, ctx: _Ctx, meta: dict | None = None)
         if isinstance(value, bool) or not isinstance(value, int | float):
             _type_error(key, value, "a number", ctx)
         value = float(value)
-        if value != value:  # NaN
-            _type_error(key, value, "a number", ctx)
+        if not math.isfinite(value):  # NaN or inf would poison the model's arithmetic
+            _type_error(key, value, "a finite number", ctx)
     elif tp is str:
         if not isinstance(value, str):
             _type_error(key, value, "a text string", ctx)
@@ -486,10 +493,14 @@ def _check_consistency(s: Settings, ctx: _Ctx) -> None:
     if r.green_up_years is not None and r.green_up_height_m is not None:
         problems.append(
             "contradictory rules: give either rules.green_up_years or rules.green_up_height_m"
+            f", not both{ctx.where('rules.green_up_height_m')}"
         )
     ms = [c.max_slope_pct for c in s.terrain.slope_classes]
     if ms != sorted(ms):
-        problems.append("terrain.slope_classes must be ordered by increasing max_slope_pct")
+        problems.append(
+            "terrain.slope_classes must be ordered by increasing max_slope_pct"
+            f"{ctx.where('terrain.slope_classes')}"
+        )
     if problems:
         raise SettingsError("\n".join(problems))
 
@@ -535,7 +546,15 @@ def load_settings(path: str | Path | None = None, overrides: dict[str, Any] | No
         if not p.is_file():
             msg = f"settings file not found: {p}"
             raise SettingsError(msg)
-        text = p.read_text(encoding="utf-8")
+        try:
+            text = p.read_text(encoding="utf-8")
+        except UnicodeDecodeError as exc:
+            line = p.read_bytes()[: exc.start].count(b"\n") + 1
+            msg = f"settings file {p} is not UTF-8 text (line {line}); save it as UTF-8"
+            raise SettingsError(msg) from None
+        except OSError as exc:
+            msg = f"cannot read settings file {p}: {exc.strerror or exc}"
+            raise SettingsError(msg) from None
         try:
             data = tomllib.loads(text)
         except tomllib.TOMLDecodeError as exc:

@@ -67,14 +67,15 @@ log = logging.getLogger(__name__)
 INOPERABLE = "inoperable"
 UNKNOWN = "unknown"
 #: Rows of the DEM processed at a time (with a one-row halo on each side).
-DEFAULT_BLOCK_ROWS = 512
+DEFAULT_BLOCK_ROWS = 256
 #: A stand with less net area than this (ha, i.e. 1 m2) counts as having none left.
 NO_NET_AREA_HA = 1.0e-4
 #: Side of the tiles the dissolved stream buffer is cut into before it meets the stands, so
 #: that each stand is intersected with small pieces instead of one network-wide polygon.
 BUFFER_TILE_M = 1000.0
-#: GDAL block cache (MB) while a DEM is read. Each row is read once (plus a halo), so a
-#: large cache only holds memory; GDAL's default is 5 % of RAM.
+#: GDAL block cache (MB) while a DEM block is read. Each row is read once (plus a halo), so
+#: a large cache only holds memory (GDAL's default is 5 % of RAM). Only the reads are capped:
+#: GDAL's rasterizer sizes its work chunks from the same setting and slows down under a cap.
 GDAL_CACHE_MB = 128
 _MAX_IDS = 20
 
@@ -94,7 +95,8 @@ class TerrainResult:
         (share of the area with slope above ``steep_threshold_pct``), ``share_<system>`` for
         each slope class and ``share_inoperable``, ``harvest_system`` (a class's ``system``,
         ``"inoperable"``, or ``"unknown"`` outside the DEM), ``harvest_cost_per_m3`` (the
-        class's cost; NaN when inoperable or unknown), ``operable`` (bool; stands outside the
+        class's cost; NaN when the class gives none, or when inoperable or unknown, meaning
+        "use the ``[economics]`` cost"), ``operable`` (bool; stands outside the
         DEM stay operable), ``outside_dem`` (bool), ``n_cells`` (DEM cells with a slope inside
         the stand; 0 when sampled at one point) and ``dem_cover_share`` (share of the stand's
         area covered by cells with a slope).
@@ -340,7 +342,8 @@ class _Dem:
             r1 = min(h, r0 + block_rows)
             rr0, rr1 = max(0, r0 - 1), min(h, r1 + 1)  # one-row halo on each side
             win = rasterio.windows.Window(0, rr0, w, rr1 - rr0)
-            elev = self.ds.read(1, window=win, masked=False)
+            with rasterio.Env(GDAL_CACHEMAX=GDAL_CACHE_MB):
+                elev = self.ds.read(1, window=win, masked=False)
             slope = horn_slope_percent(
                 elev, self.xres_rows[rr0:rr1], self.yres_rows[rr0:rr1], self.nodata
             )
@@ -349,7 +352,8 @@ class _Dem:
             yield r0, r1, slope[r0 - rr0 : r0 - rr0 + (r1 - r0)].astype(np.float32, copy=False)
 
     def nodata_rows(self, r0: int, r1: int) -> np.ndarray:
-        elev = self.ds.read(1, window=rasterio.windows.Window(0, r0, self.ds.width, r1 - r0))
+        with rasterio.Env(GDAL_CACHEMAX=GDAL_CACHE_MB):
+            elev = self.ds.read(1, window=rasterio.windows.Window(0, r0, self.ds.width, r1 - r0))
         bad = ~np.isfinite(elev)
         if self.nodata is not None and not np.isnan(self.nodata):
             bad |= elev == self.nodata
@@ -395,7 +399,7 @@ def read_dem_slope(
     InputError
         Missing file, not a raster, no CRS, rotated grid, fewer than 3 x 3 cells.
     """
-    with rasterio.Env(GDAL_CACHEMAX=GDAL_CACHE_MB), _Dem(dem_path, elevation_unit_m) as dem:
+    with _Dem(dem_path, elevation_unit_m) as dem:
         h, w = dem.ds.height, dem.ds.width
         slope = np.empty((h, w), dtype=np.float32)
         mask = np.empty((h, w), dtype=bool)
@@ -478,7 +482,7 @@ def stand_terrain(
     classes = settings.slope_classes
     k = len(classes)
     maxes = np.array([c.max_slope_pct for c in classes], dtype=np.float64)
-    with rasterio.Env(GDAL_CACHEMAX=GDAL_CACHE_MB), _Dem(path, settings.elevation_unit_m) as dem:
+    with _Dem(path, settings.elevation_unit_m) as dem:
         geoms = np.asarray(stands.to_crs(dem.ds.crs).geometry.values, dtype=object)
         acc = _accumulate(dem, geoms, maxes, settings.steep_threshold_pct, block_rows)
         cell_size = dem.cell_size_m
@@ -503,7 +507,11 @@ def stand_terrain(
     covers = cum >= settings.system_cover_share - 1e-9
     first = np.where(covers.any(axis=1), covers.argmax(axis=1), k - 1)
     systems = np.array([c.system for c in classes] + [INOPERABLE, UNKNOWN], dtype=object)
-    costs = np.array([c.harvest_cost_per_m3 for c in classes] + [np.nan, np.nan])
+    # A class without a cost (None) gives NaN: the economics cost applies.
+    costs = np.array(
+        [np.nan if c.harvest_cost_per_m3 is None else c.harvest_cost_per_m3 for c in classes]
+        + [np.nan, np.nan]
+    )
     which = np.where(outside, k + 1, np.where(inoperable, k, first))
 
     if "area_ha" in stands.columns:

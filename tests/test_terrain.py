@@ -275,6 +275,12 @@ def test_costs_and_stands_in_another_crs(tmp_path):
     # Reprojection moves cell-centre membership only at the boundary; the zones are planes.
     assert np.allclose(df["slope_pct_mean"], [10.0, 50.0], rtol=1e-5)
     assert list(df["harvest_cost_per_m3"]) == [12.0, 30.0]
+    # Classes without a cost leave it to [economics] (NaN falls through there).
+    assert df_default_costs(st, dem).isna().all()
+
+
+def df_default_costs(st: gpd.GeoDataFrame, dem: Path):
+    return stand_terrain(st, TerrainSettings(), dem).stands["harvest_cost_per_m3"]
 
 
 def test_harvest_system_by_cover_share(tmp_path):
@@ -500,3 +506,25 @@ def test_net_area_input_errors(tmp_path):
     res = net_area(square_stand(), two, TerrainSettings(), layer="other")
     # The strip 5..35 m below the square's top edge: 200 m x 30 m (analytic).
     assert res.stands.loc[0, "buffer_area_ha"] == pytest.approx(0.6, rel=1e-9)
+
+
+def test_grouped_statistics_match_per_stand_masks(tmp_path):
+    # Reference: rasterio.features.geometry_mask, one stand at a time, over the slope grid;
+    # the grouped, block-wise code (small blocks with halos) must give the same means.
+    from rasterio.features import geometry_mask
+
+    from spatialplan.synthetic import voronoi_forest
+
+    st = voronoi_forest(30, seed=4, mean_area_ha=1.0, origin=(X0, Y0 - 600.0))
+    st["area_ha"] = st.area / 10_000.0
+    x, y = grid_xy((64, 64), 10.0)
+    z = 60 * np.sin(x / 70.0) * np.cos(y / 110.0) + 0.2 * x
+    dem = write_dem(tmp_path / "dem.tif", z)
+    slope, transform, _, _ = read_dem_slope(dem)
+    df = stand_terrain(st, TerrainSettings(), dem, block_rows=5).stands
+    assert (df["n_cells"] > 5).all()
+    for i, geom in enumerate(st.geometry):
+        inside = ~geometry_mask([geom], slope.shape, transform) & np.isfinite(slope)
+        assert df.loc[i, "n_cells"] == inside.sum()
+        assert df.loc[i, "slope_pct_mean"] == pytest.approx(slope[inside].mean(), rel=1e-5)
+        assert df.loc[i, "steep_share"] == pytest.approx((slope[inside] > 35).mean())

@@ -12,7 +12,7 @@ from typing import Any
 
 import click
 
-from spatialplan.errors import SpatialPlanError
+from spatialplan.errors import InfeasibleError, SettingsError, SpatialPlanError
 from spatialplan.settings import Settings, load_settings
 
 __all__ = [
@@ -112,7 +112,16 @@ def settings_from_flags(settings_path: str | None, kwargs: dict[str, Any]) -> Se
         if py in kwargs:
             val = kwargs.pop(py)
             overrides[key] = True if val else None
-    return load_settings(settings_path, overrides)
+    try:
+        return load_settings(settings_path, overrides)
+    except SettingsError as exc:
+        # A bad flag value: name the flag as typed, not only the settings key.
+        flags = {key: name for name, (key, *_r) in {**SETTINGS_FLAGS, **_BOOL_FLAGS}.items()}
+        for key, val in overrides.items():
+            if val is not None and f"'{key}'" in str(exc) and key in flags:
+                msg = f"{exc} (given as --{flags[key]})"
+                raise SettingsError(msg) from None
+        raise
 
 
 class _Console:
@@ -141,12 +150,26 @@ def handle_errors(ctx: click.Context) -> Iterator[None]:
         if debug:
             raise
         click.echo(f"Error: {exc}", err=True)
+        if isinstance(exc, InfeasibleError):
+            for line in exc.diagnosis:
+                click.echo(f"  diagnosis: {line}", err=True)
+            if not exc.diagnosis:
+                click.echo("  relax the volume/area flow, minimum-age or ending-inventory rules "
+                           "and try again", err=True)
+        if exc.exit_code in (2, 3):
+            click.echo("No plan was written.", err=True)
         ctx.exit(exc.exit_code)
     except KeyboardInterrupt:
         click.echo("Interrupted; nothing further written.", err=True)
         ctx.exit(130)
     except (click.exceptions.Exit, click.ClickException, click.Abort, SystemExit):
         raise
+    except OSError as exc:  # disk full, permission denied ...: the system's word, not a bug
+        if debug:
+            raise
+        where = f" {exc.filename}" if exc.filename else ""
+        click.echo(f"Error: cannot read or write{where}: {exc.strerror or exc}", err=True)
+        ctx.exit(1)
     except Exception as exc:  # a bug, not a user mistake: say so plainly
         if debug:
             raise
@@ -163,15 +186,27 @@ def run_cli(group: click.Group, argv: list[str] | None = None) -> Any:
     return group.main(args=argv, prog_name="spatialplan")
 
 
-def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool) -> None:
-    """Refuse to overwrite an input or an existing output without ``--overwrite``."""
+def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool, flag: str = "--out") -> None:
+    """Refuse to overwrite an input or an existing output without ``--overwrite``.
+
+    Also refuses a folder, a missing folder and a folder the process cannot write to;
+    ``flag`` names the option in messages.
+    """
+    import os
+    import tempfile
+
     from spatialplan.errors import OutputError
 
     out_r = out.resolve()
     for p in inputs:
-        if p is not None and Path(p).exists() and Path(p).resolve() == out_r:
-            msg = f"output {out} is the same file as input {p}; choose another --out"
+        if p is not None and Path(p).exists() and (
+            Path(p).resolve() == out_r or (out.exists() and os.path.samefile(p, out))
+        ):
+            msg = f"output {out} is the same file as input {p}; choose another {flag}"
             raise OutputError(msg)
+    if out.is_dir():
+        msg = f"output {out} is a folder; give a file name such as {out / 'plan.gpkg'}"
+        raise OutputError(msg)
     if out.exists() and not overwrite:
         msg = f"output {out} exists; pass --overwrite to replace it"
         raise OutputError(msg)
@@ -179,8 +214,11 @@ def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool) -> None:
     if not parent.is_dir():
         msg = f"output folder {parent} does not exist; create it first"
         raise OutputError(msg)
-    import os
-
-    if not os.access(parent, os.W_OK):
-        msg = f"output folder {parent} is not writable"
-        raise OutputError(msg)
+    # Try it: permission bits say nothing for root, read-only mounts or ACLs.
+    try:
+        with tempfile.TemporaryFile(dir=parent):
+            pass
+    except OSError as exc:
+        msg = (f"output folder {parent} is not writable ({exc.strerror or exc}); "
+               f"choose another {flag}")
+        raise OutputError(msg) from None

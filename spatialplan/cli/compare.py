@@ -124,6 +124,9 @@ def _run(con: Any, scen: Any, out_dir: str, client: Any, ship: bool | None,
                 f"[dim](at {dt:.0f} s on {escape(r.worker)})[/dim]")
             if not r.verify_ok:
                 progress.console.print(f"    {escape(r.verify_verdict)}")
+            for m in r.messages:
+                if str(m).lower().startswith("warning"):
+                    progress.console.print(f"    {m}", markup=False)
         else:
             progress.console.print(f"[red]failed[/red] {escape(r.name)}: {escape(r.status)}: "
                                    f"{escape(r.error or '')}")
@@ -147,8 +150,10 @@ def _summary(con: Any, result: Any) -> None:
 
     tab = result.table
     t = Table(title=f"Scenario comparison ({result.csv_path})")
-    for c in ("scenario", "status", "NPV", "LP bound", "gap", "cost of spatial rules", "verify"):
-        t.add_column(c, justify="left" if c in ("scenario", "status", "verify") else "right")
+    width = max([len(str(s)) for s in tab["scenario"]] + [8])
+    t.add_column("scenario", no_wrap=True, min_width=width)
+    for c in ("status", "NPV", "LP bound", "gap", "spatial rules cost", "verify"):
+        t.add_column(c, justify="left" if c in ("status", "verify") else "right")
 
     def num(v: Any, fmt: str = "{:,.0f}") -> str:
         try:

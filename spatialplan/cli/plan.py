@@ -87,7 +87,14 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
         v = getattr(settings.terrain, k)
         if v:
             inputs_list.append(Path(v))
+    if out.suffix.lower() != ".gpkg":
+        msg = f"--out {out} must be a GeoPackage file name ending in .gpkg, e.g. {out.stem}.gpkg"
+        raise OutputError(msg)
     ensure_output_path(out, inputs_list, overwrite)
+    if settings.output.raster_out:
+        # Checked before solving: a bad raster path must not cost a solve, nor hit an input.
+        ensure_output_path(Path(settings.output.raster_out), [*inputs_list, out], overwrite,
+                           flag="--raster-out")
     if not settings.output.no_map and not overwrite:
         from spatialplan.report import review_paths
 
@@ -154,4 +161,9 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
             con.err.print(f"violation: {escape(str(v.message))}")
         con.err.print("[bold red]The plan failed independent verification; do not use it.[/bold red]")
         return 1
+    if r.status == "interrupted":
+        con.err.print(f"Interrupted: {out} holds the best plan found before Ctrl-C "
+                      "(solver_status = interrupted in its run table); run again to finish.",
+                      markup=False)
+        return 130  # 128 + SIGINT, the shell convention for a run stopped by Ctrl-C
     return 0

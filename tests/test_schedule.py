@@ -1,0 +1,304 @@
+"""Scheduler checks against independent references.
+
+* Brute force over every schedule ((P + 1)^n of them) with a rule checker written here,
+  using networkx connected components for the openings (reference library).
+* The aspatial LP against scipy.optimize.linprog (HiGHS) on a matrix built here.
+"""
+
+from __future__ import annotations
+
+import itertools
+import os
+import re
+import signal
+import threading
+
+import networkx as nx
+import numpy as np
+import pytest
+import shapely
+from scipy.optimize import linprog
+
+from spatialplan.errors import InfeasibleError, NoSolutionError
+from spatialplan.problem import FlowRules, PlanProblem
+from spatialplan.schedule import diagnose, lp_bound, solve
+from spatialplan.settings import SolverSettings
+from spatialplan.synthetic import voronoi_forest
+
+EXACT = SolverSettings(time_limit_s=30.0, workers=2, seed=1, gap=0.0)
+
+
+# ---- small instances -------------------------------------------------------------------
+def grid_edges(rows: int, cols: int) -> np.ndarray:
+    """Rook adjacency of a rows x cols grid of squares (shared sides only)."""
+    e = []
+    for r in range(rows):
+        for c in range(cols):
+            i = r * cols + c
+            if c + 1 < cols:
+                e.append((i, i + 1))
+            if r + 1 < rows:
+                e.append((i, i + cols))
+    return np.array(e, dtype=np.int64)
+
+
+def touch_edges(gdf) -> np.ndarray:
+    """Stands sharing more than 1 m of boundary (shapely, independent of the package)."""
+    g = np.asarray(gdf.geometry.values)
+    a, b = shapely.STRtree(g).query(g, predicate="intersects")
+    e = []
+    for i, j in zip(a, b, strict=True):
+        if i < j and shapely.length(shapely.intersection(g[i].boundary, g[j].boundary)) > 1.0:
+            e.append((int(i), int(j)))
+    return np.array(e, dtype=np.int64).reshape(-1, 2)
+
+
+def make_problem(
+    n: int,
+    edges: np.ndarray,
+    seed: int,
+    periods: int = 3,
+    length: float = 10.0,
+    area: np.ndarray | None = None,
+    age: np.ndarray | None = None,
+    min_age: float = 30.0,
+    green: int = 1,
+    max_opening: float | None = 25.0,
+    unit: bool = False,
+    flow: FlowRules | None = None,
+    rate: float = 0.04,
+) -> PlanProblem:
+    """A small instance with Chapman-Richards volumes (common practice, no source)."""
+    rng = np.random.default_rng(seed)
+    area = rng.uniform(5.0, 15.0, n) if area is None else np.asarray(area, float)
+    age = rng.integers(5, 90, n).astype(float) if age is None else np.asarray(age, float)
+    t = (np.arange(1, periods + 1) - 0.5) * length
+    age_mid = age[:, None] + t[None, :]
+    asym = rng.uniform(300, 600, n)[:, None]
+    vol = asym * (1 - np.exp(-0.03 * age_mid)) ** 2.5
+    npv = vol * 50.0 * (1 + rate) ** -t[None, :]
+    elig = age_mid >= min_age
+    init_open = age_mid < green * length
+    return PlanProblem(
+        stand_ids=np.array([f"S{i}" for i in range(n)], dtype=object), area_ha=area,
+        opening_area_ha=area, age_start_yr=age, eligible=elig, volume_m3_ha=vol,
+        npv_per_ha=npv, green_up_periods=np.full(n, green), initially_open=init_open,
+        edges=edges, periods=periods, period_length_yr=length, max_opening_ha=max_opening,
+        unit_restriction=unit, flow=flow or FlowRules(flow_tolerance=0.5),
+        eligible_no_min_age=np.ones_like(elig), min_age_yr=min_age,
+    )
+
+
+# ---- independent checker and brute force ---------------------------------------------------
+def rule_breaks(pr: PlanProblem, period: np.ndarray) -> list[str]:
+    """Every rule a plan breaks, checked from the definitions in the issue text."""
+    n, P = pr.n_stands, pr.periods
+    out = []
+    for i in range(n):
+        if period[i] and not pr.eligible[i, period[i] - 1]:
+            out.append(f"ineligible {i}")
+    V = np.zeros(P)
+    A = np.zeros(P)
+    for i in range(n):
+        if period[i]:
+            V[period[i] - 1] += pr.area_ha[i] * pr.volume_m3_ha[i, period[i] - 1]
+            A[period[i] - 1] += pr.area_ha[i]
+    f = pr.flow
+    eps = 1e-9 * max(V.max(), 1.0)
+    for p in range(P - 1):
+        if f.flow_tolerance is not None and abs(V[p + 1] - V[p]) > f.flow_tolerance * V[p] + eps:
+            out.append(f"flow {p}")
+        if f.non_declining and V[p + 1] < V[p] - eps:
+            out.append(f"declining {p}")
+    for p in range(P):
+        if f.volume_min_m3 is not None and V[p] < f.volume_min_m3 - eps:
+            out.append(f"volume min {p}")
+        if f.volume_max_m3 is not None and V[p] > f.volume_max_m3 + eps:
+            out.append(f"volume max {p}")
+    g = nx.Graph()
+    g.add_nodes_from(range(n))
+    g.add_edges_from(map(tuple, np.asarray(pr.edges)))
+    for p in range(1, P + 1):
+        # harvested in q -> open in q .. q + G - 1 (issue 4)
+        new = {i for i in range(n) if period[i] and period[i] <= p <= period[i] + pr.green_up_periods[i] - 1}
+        opn = new | {i for i in range(n) if pr.initially_open[i, p - 1]}
+        sub = g.subgraph(opn)
+        if pr.max_opening_ha is not None:
+            for comp in nx.connected_components(sub):
+                if comp & new and sum(pr.opening_area_ha[i] for i in comp) > pr.max_opening_ha:
+                    out.append(f"opening {p} {sorted(comp)}")
+        if pr.unit_restriction:
+            for a, b in sub.edges:
+                if a in new or b in new:
+                    out.append(f"unit {p} {a}-{b}")
+    return out
+
+
+def brute_force(pr: PlanProblem) -> tuple[float, np.ndarray]:
+    """Best NPV over all (P + 1)^n schedules that break no rule."""
+    n, P = pr.n_stands, pr.periods
+    grid = np.array(list(itertools.product(range(P + 1), repeat=n)), dtype=np.int64)
+    val = np.zeros(len(grid))
+    ok = np.ones(len(grid), dtype=bool)
+    for i in range(n):
+        q = grid[:, i]
+        h = q > 0
+        col = np.clip(q - 1, 0, P - 1)
+        ok &= ~h | pr.eligible[i, col]
+        val += np.where(h, pr.area_ha[i] * pr.npv_per_ha[i, col], 0.0)
+    idx = np.nonzero(ok)[0]
+    for k in idx[np.argsort(-val[idx], kind="stable")]:
+        if not rule_breaks(pr, grid[k]):
+            return float(val[k]), grid[k]
+    raise AssertionError("no legal schedule (the empty one should be)")
+
+
+def assert_matches_brute_force(pr: PlanProblem) -> None:
+    best, _ = brute_force(pr)
+    res = solve(pr, EXACT)
+    assert rule_breaks(pr, res.period) == []
+    assert res.status == "optimal"
+    # CP-SAT optimises integer-scaled values; equal up to the reported rounding bound.
+    tol = res.stats["objective_rounding_error_bound"] + 1e-9 * abs(best)
+    assert abs(res.npv - best) <= 2 * tol + 1e-6
+    assert res.npv <= res.lp_bound + 1e-6
+
+
+# ---- tests --------------------------------------------------------------------------------
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_grid_area_restriction_matches_brute_force(seed: int) -> None:
+    # 3 x 3 grid, 3 periods: 4^9 = 262,144 schedules enumerated.
+    pr = make_problem(9, grid_edges(3, 3), seed, max_opening=22.0, green=2)
+    assert_matches_brute_force(pr)
+
+
+def test_voronoi_stands_match_brute_force() -> None:
+    gdf = voronoi_forest(8, seed=4, mean_area_ha=10.0)
+    area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
+    pr = make_problem(len(gdf), touch_edges(gdf), 5, area=area,
+                      age=gdf["age"].to_numpy(float), max_opening=20.0, green=2, min_age=20.0)
+    assert len(pr.edges) > 0
+    assert_matches_brute_force(pr)
+
+
+def test_unit_restriction_matches_brute_force() -> None:
+    pr = make_problem(8, grid_edges(2, 4), 7, max_opening=None, unit=True, green=2,
+                      min_age=10.0)
+    assert_matches_brute_force(pr)
+
+
+def test_green_up_with_initially_open_stands() -> None:
+    # Young stands (age 1-4) are open in period 1 (age at mid-period < G L = 20).
+    age = np.array([2, 95, 80, 3, 70, 85, 60, 1], float)
+    pr = make_problem(8, grid_edges(2, 4), 8, age=age, max_opening=25.0, green=2,
+                      min_age=0.0)
+    assert pr.initially_open[:, 0].sum() >= 3
+    assert_matches_brute_force(pr)
+
+
+def test_flow_and_volume_floor_match_brute_force() -> None:
+    pr0 = make_problem(8, grid_edges(2, 4), 9, max_opening=30.0, green=1)
+    lp = lp_bound(pr0)
+    vmin = 0.3 * lp.period_volume_m3.min()
+    pr = make_problem(8, grid_edges(2, 4), 9, max_opening=30.0, green=1,
+                      flow=FlowRules(flow_tolerance=0.25, volume_min_m3=vmin))
+    assert_matches_brute_force(pr)
+
+
+def test_lp_bound_matches_linprog() -> None:
+    pr = make_problem(10, grid_edges(2, 5), 11, periods=4, min_age=20.0,
+                      flow=FlowRules(flow_tolerance=0.15, volume_max_m3=9000.0,
+                                     area_min_ha=5.0))
+    n, P = pr.n_stands, pr.periods
+    cells = [(i, p) for i in range(n) for p in range(P) if pr.eligible[i, p]]
+    c = np.array([-pr.area_ha[i] * pr.npv_per_ha[i, p] for i, p in cells])
+    vol = {(i, p): pr.area_ha[i] * pr.volume_m3_ha[i, p] for i, p in cells}
+    rows, rhs = [], []
+    for i in range(n):  # at most one harvest per stand (Model I)
+        rows.append([1.0 if k[0] == i else 0.0 for k in cells])
+        rhs.append(1.0)
+    t = pr.flow.flow_tolerance
+    for p in range(P - 1):  # V[p+1] <= (1+t) V[p] and V[p+1] >= (1-t) V[p]
+        rows.append([vol[k] if k[1] == p + 1 else -(1 + t) * vol[k] if k[1] == p else 0.0
+                     for k in cells])
+        rows.append([(1 - t) * vol[k] if k[1] == p else -vol[k] if k[1] == p + 1 else 0.0
+                     for k in cells])
+        rhs += [0.0, 0.0]
+    for p in range(P):
+        rows.append([vol[k] if k[1] == p else 0.0 for k in cells])
+        rhs.append(9000.0)
+        rows.append([-pr.area_ha[k[0]] if k[1] == p else 0.0 for k in cells])
+        rhs.append(-5.0)
+    ref = linprog(c, A_ub=np.array(rows), b_ub=np.array(rhs), bounds=(0, 1), method="highs")
+    assert ref.status == 0
+    got = lp_bound(pr)
+    assert got.status == "optimal"
+    assert got.value == pytest.approx(-ref.fun, rel=1e-7)
+    assert got.x.shape == (n, P)
+
+
+def test_infeasible_flow_is_diagnosed() -> None:
+    # Stand 0 can only be cut in period 1 (100 m3), stand 1 only in period 2 (150 m3);
+    # a 50 m3 floor forces both, so |150 - 100| <= t * 100 needs t >= 0.5.
+    pr = make_problem(2, np.array([[0, 1]]), 1, periods=2, area=np.array([1.0, 1.0]),
+                      max_opening=None, flow=FlowRules(flow_tolerance=0.10, volume_min_m3=50.0))
+    pr = PlanProblem(**{**pr.__dict__, "volume_m3_ha": np.array([[100.0, 0.0], [0.0, 150.0]]),
+                        "eligible": np.array([[True, False], [False, True]]),
+                        "eligible_no_min_age": None, "min_age_yr": None})
+    with pytest.raises(InfeasibleError) as ei:
+        solve(pr, SolverSettings(time_limit_s=10.0, workers=2))
+    diag = ei.value.diagnosis
+    line = next(d for d in diag if d.startswith("flow tolerance"))
+    m = re.match(r"flow tolerance 0\.10 is infeasible, ([0-9.]+) is feasible", line)
+    assert m, diag
+    v = float(m.group(1))
+    assert 0.5 <= v <= 0.52  # smallest feasible value, 1 % bisection resolution
+    relaxed = PlanProblem(**{**pr.__dict__, "flow": FlowRules(flow_tolerance=v,
+                                                               volume_min_m3=50.0)})
+    assert rule_breaks(relaxed, np.array([1, 2])) == []
+    assert diagnose(pr, SolverSettings(time_limit_s=10.0)) == diag
+
+
+def test_tiny_time_limit_gives_legal_plan_or_no_solution() -> None:
+    gdf = voronoi_forest(80, seed=3)
+    area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
+    pr = make_problem(len(gdf), touch_edges(gdf), 3, area=area, age=gdf["age"].to_numpy(float),
+                      periods=5, length=5.0, max_opening=40.0, green=2,
+                      flow=FlowRules(flow_tolerance=0.1))
+    for limit in (0.001, 0.2, 2.0):
+        try:
+            res = solve(pr, SolverSettings(time_limit_s=limit, workers=2))
+        except NoSolutionError:
+            continue
+        assert rule_breaks(pr, res.period) == []
+        assert res.status in {"optimal", "feasible", "time_limit"}
+        assert res.npv <= res.lp_bound * (1 + 1e-9)
+
+
+def test_only_empty_plan_is_flagged() -> None:
+    # Every stand is larger than the maximum opening: only the empty plan is legal.
+    pr = make_problem(4, grid_edges(2, 2), 2, area=np.full(4, 30.0), max_opening=25.0,
+                      min_age=0.0)
+    res = solve(pr, EXACT)
+    assert not res.period.any()
+    assert res.stats["empty_plan"]
+    assert res.status != "optimal" and res.lp_bound > 0
+    assert res.stats["warnings"]
+
+
+def test_ctrl_c_returns_best_plan_marked_interrupted() -> None:
+    gdf = voronoi_forest(300, seed=5)
+    area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
+    pr = make_problem(len(gdf), touch_edges(gdf), 5, area=area, age=gdf["age"].to_numpy(float),
+                      periods=6, length=5.0, max_opening=40.0, green=2,
+                      flow=FlowRules(flow_tolerance=0.1))
+    timer = threading.Timer(3.0, lambda: os.kill(os.getpid(), signal.SIGINT))
+    before = signal.getsignal(signal.SIGINT)
+    timer.start()
+    try:
+        res = solve(pr, SolverSettings(time_limit_s=60.0, workers=2, gap=0.0))
+    finally:
+        timer.cancel()
+    assert signal.getsignal(signal.SIGINT) is before  # handler restored
+    assert res.status in {"interrupted", "optimal"}
+    assert rule_breaks(pr, res.period) == []
