@@ -8,8 +8,8 @@ and exits with :attr:`SpatialPlanError.exit_code`.
 from __future__ import annotations
 
 __all__ = [
-    "InputError",
     "InfeasibleError",
+    "InputError",
     "NoSolutionError",
     "OutputError",
     "SettingsError",

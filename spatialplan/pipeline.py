@@ -194,6 +194,13 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     init_open = rules.initially_open(age0, green, P, L)
     eligible = rules.eligible_matrix(age0, reserve, s.rules.min_age_yr, P, L, operable)
     eligible_any_age = rules.eligible_matrix(age0, reserve, 0.0, P, L, operable)
+    if n and not eligible.any():
+        # Not an error (harvesting nothing is a legal plan) but never what was meant.
+        messages.append(
+            f"no stand may be harvested in any period: rules.min_age_yr = {s.rules.min_age_yr:g} "
+            "(--min-age), reserves and operability exclude every stand; the plan harvests "
+            "nothing"
+        )
     if progress:
         progress("adjacency")
     adj = adjacency.build_adjacency(

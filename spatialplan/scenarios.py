@@ -74,17 +74,21 @@ __all__ = [
     "UnitSolve",
     "apply_overrides",
     "check_outputs",
+    "check_units_settings",
     "comparison_table",
     "cross_unit_edges",
     "dask_client",
     "flatten_overrides",
     "load_scenarios",
+    "merge_unit_plans",
     "plan_by_unit",
     "rule_costs",
     "run_comparison",
     "run_scenario_task",
     "solve_unit_task",
     "split_threads",
+    "unit_tasks",
+    "units_for",
 ]
 
 log = logging.getLogger(__name__)
@@ -880,13 +884,26 @@ def check_units_settings(settings: Settings, where: str = "by-unit planning") ->
         raise SettingsError(msg)
 
 
+def _without_flow_rules(s: Settings) -> Settings:
+    """The settings with every rule of the flow family off (they apply per unit)."""
+    r = dataclasses.replace(
+        s.rules, flow_tolerance=None, non_declining=False, period_volume_min_m3=None,
+        period_volume_max_m3=None, period_area_min_ha=None, period_area_max_ha=None,
+        ending_volume_fraction=None, ending_mean_age_yr=None,
+    )
+    return dataclasses.replace(s, rules=r)
+
+
 def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
                      solves: list[UnitSolve], out_path: Path) -> tuple[Any, ScenarioResult]:
     """Merge per-unit plans into one plan of the whole layer and write it.
 
     Builds the whole problem (adjacency included) to check for stands of different units
-    that touch, then writes the output exactly as ``plan`` does (schedule frame, forest-
-    wide verification, openings, period and strata tables, run table, optional views).
+    that touch, then writes the output as ``plan`` does (schedule frame, verification,
+    openings, period and strata tables, run table, optional views). The flow family of
+    rules (flow tolerance, non-declining flow, per-period targets, ending inventory)
+    belongs to each unit and was verified per unit; the merged plan is verified against
+    every other rule, forest-wide (opening size and green-up across unit boundaries).
 
     Returns
     -------
@@ -943,14 +960,17 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
             {"units": len(solves), "cross_unit_edges": len(cross), "warnings": []},
         )
         sched = schedule_frame(inputs, bundle, period)
-        rep = verify.verify_schedule(sched, s, inputs.growth)
+        # Flow rules belong to each unit (checked by each unit's own verification); the
+        # merged plan is checked forest-wide for everything else, the spatial rules above all.
+        s_merged = _without_flow_rules(s)
+        rep = verify.verify_schedule(sched, s_merged, inputs.growth)
         openings, stand_opening = outputs.opening_table(
             sched, bundle.problem.edges, s.horizon.periods, bundle.problem.green_up_periods,
             bundle.problem.initially_open, s.rules.max_opening_ha, bundle.problem.opening_area_ha,
             id_col=s.fields.id_field,
         )
         sched["opening_id"] = stand_opening
-        periods_df = outputs.period_table(sched, s, openings)
+        periods_df = outputs.period_table(sched, s_merged, openings)
         strata_df = outputs.strata_table(sched, s)
         unit_info = "; ".join(f"{u.unit}: {u.status}, NPV {u.npv:.2f}, {u.verify_verdict}"
                               for u in solves)
@@ -960,6 +980,8 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
             "planned_by_unit": "true",
             "units": unit_info,
             "cross_unit_edges": str(len(cross)),
+            "verification": "flow rules per unit (each unit verified on its own); all other "
+                            "rules on the merged plan",
         })
         layers: dict[str, Any] = {"schedule": sched, "openings": openings,
                                   "periods": periods_df, "strata": strata_df, "run": run_df}
@@ -1475,7 +1497,7 @@ def run_comparison(
 
     units: list[str] = []
     if by_unit:
-        units = _units_for(scen)
+        units = units_for(scen)
 
     results: dict[str, ScenarioResult] = {}
     if on_submit:
@@ -1543,7 +1565,7 @@ def run_comparison(
     return ComparisonResult(table, results, csv_path, chart_path, mode)
 
 
-def _units_for(scen: ScenarioSet) -> list[str]:
+def units_for(scen: ScenarioSet) -> list[str]:
     """Unit values of the stand layer (read once on the client), checked for gaps."""
     from spatialplan.inventory import read_stands
 

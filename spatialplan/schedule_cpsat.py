@@ -91,11 +91,15 @@ class CoverPool:
 
 
 class _Callback(cp_model.CpSolverSolutionCallback):
-    def __init__(self, on_solution: Callable[[float, float], None] | None) -> None:
+    def __init__(self, on_solution: Callable[[float, float], None] | None,
+                 registry: dict | None = None) -> None:
         super().__init__()
         self.on_solution = on_solution
+        self.registry = registry
 
     def on_solution_callback(self) -> None:
+        if self.registry is not None and self.registry.get("interrupted"):
+            self.stop_search()
         if self.on_solution is not None:
             self.on_solution(self.objective_value, self.best_objective_bound)
 
@@ -321,7 +325,10 @@ class SubModel:
         prm.random_seed = int(seed)
         prm.relative_gap_limit = float(gap)
         prm.log_search_progress = False
-        cb = _Callback(on_solution)
+        # Ctrl-C is handled in Python (schedule._sigint); CP-SAT's own C++ handler would
+        # abort the process when the solve runs outside the main thread.
+        prm.catch_sigint_signal = False
+        cb = _Callback(on_solution, registry)
         if registry is not None:
             registry["solver"] = solver
         t0 = time.perf_counter()
@@ -341,8 +348,15 @@ class SubModel:
 
                 th = threading.Thread(target=run, name="cpsat", daemon=True)
                 th.start()
+                stopped = False
                 while th.is_alive():
                     th.join(0.05)
+                    # stop_search() is only safe once the search runs (OR-Tools aborts on a
+                    # call in the first instants of Solve), hence the short delay.
+                    if (not stopped and registry is not None and registry.get("interrupted")
+                            and time.perf_counter() - t0 > 0.25 and th.is_alive()):
+                        solver.stop_search()
+                        stopped = True
                 if "exc" in box:
                     raise box["exc"]
                 st = box["st"]

@@ -42,7 +42,7 @@ def is_feasible(problem: PlanProblem, time_limit_s: float = 5.0, workers: int = 
         return True
     lp2 = solve_lp(problem, rows=prep.rows, eligible=prep.eligible, time_limit_s=time_limit_s)
     if lp2.status == "optimal":
-        period, info = greedy_plan(prep, lp2.x, lp2.price, t0 + time_limit_s, order="balanced")
+        _, info = greedy_plan(prep, lp2.x, lp2.price, t0 + time_limit_s, order="balanced")
         if info.get("legal"):
             return True
     left = time_limit_s - (time.perf_counter() - t0)

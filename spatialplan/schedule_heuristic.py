@@ -161,7 +161,7 @@ def _loss(price: np.ndarray) -> np.ndarray:
 def _assign_balanced(st: SpatialState, price: np.ndarray, vol: np.ndarray,
                      target: np.ndarray) -> int:
     """Water-filling: always top up the period furthest below its LP volume."""
-    n, P = price.shape
+    P = price.shape[1]
     loss = _loss(price)
     lists = []
     for pc in range(P):
@@ -197,7 +197,7 @@ def _assign_balanced(st: SpatialState, price: np.ndarray, vol: np.ndarray,
 
 def _assign_sequential(st: SpatialState, price: np.ndarray, vol: np.ndarray,
                        target: np.ndarray, backward: bool = False) -> int:
-    n, P = price.shape
+    P = price.shape[1]
     loss = _loss(price)
     skips = 0
     for pc in range(P - 1, -1, -1) if backward else range(P):
@@ -224,7 +224,6 @@ def _assign_rounded(st: SpatialState, price: np.ndarray, lp_x: np.ndarray) -> in
     Stands go in order of their LP share (whole shares first) and, within that, of price;
     a stand whose LP period would break an opening tries its other periods by price.
     """
-    n, P = price.shape
     share = lp_x.max(axis=1)
     first = lp_x.argmax(axis=1)
     cand = np.nonzero(share > 0.5)[0]

@@ -371,7 +371,7 @@ def extract_covers(
     """
     mx = prep.max_opening
     grp = [int(i) for i in group]
-    if mx is None or len(grp) == 2 and prep.opening_area[grp].sum() <= mx:
+    if mx is None or (len(grp) == 2 and prep.opening_area[grp].sum() <= mx):
         return [frozenset(grp)]  # unit restriction pair
     gset = set(grp)
     fixed = prep.fixed_open[:, p]
@@ -465,11 +465,10 @@ def enumerate_covers(
             nxt = []
             for k in frontier:
                 for j in nb[k]:
-                    if j not in seen and allowed[j] and dist_area[k] + area[j] <= mx + area[j]:
-                        if dist_area[k] <= mx:
-                            seen.add(j)
-                            dist_area[j] = dist_area[k] + area[j]
-                            nxt.append(j)
+                    if j not in seen and allowed[j] and dist_area[k] <= mx:
+                        seen.add(j)
+                        dist_area[j] = dist_area[k] + area[j]
+                        nxt.append(j)
             frontier = nxt
         cand_v.update(seen)
     for v in sorted(cand_v):

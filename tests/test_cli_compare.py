@@ -158,3 +158,31 @@ def test_compare_on_separately_started_scheduler(tmp_path: Path) -> None:
         finally:
             _stop(worker)
             _stop(sched)
+
+
+def test_compare_by_unit_cli(tmp_path: Path) -> None:
+    # Two units 500 m apart: by-unit planning is exact (no shared rule, no adjacency).
+    a = voronoi_forest(10, seed=3, mean_area_ha=8)
+    b = voronoi_forest(10, seed=4, mean_area_ha=8)
+    b["geometry"] = b.geometry.translate(xoff=float(a.total_bounds[2] - a.total_bounds[0]) + 500)
+    a["stand_id"] = "N" + a["stand_id"]
+    b["stand_id"] = "S" + b["stand_id"]
+    a["block"], b["block"] = "North", "South"
+    pd.concat([a, b], ignore_index=True).to_file(tmp_path / "stands.gpkg", layer="stands",
+                                                 driver="GPKG")
+    synthetic_yield_table().to_csv(tmp_path / "yields.csv", index=False)
+    p = tmp_path / "scenarios.toml"
+    p.write_text(SCENARIOS.replace('[base]\n', '[base]\n"fields.unit_field" = "block"\n')
+                 + '\n[units.South]\n"rules.flow_tolerance" = 0.3\n', encoding="utf-8")
+    out = tmp_path / "cmp"
+    r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out), "--by-unit"])
+    assert r.exit_code == 0, r.output
+    assert "different units" not in r.output
+    t = _check_outputs(out, ["open15", "openoff"])
+    assert t["verify_ok"].all()
+    import geopandas as gpd
+
+    sched = gpd.read_file(out / "open15.gpkg", layer="schedule")
+    assert len(sched) == 20  # both units merged into one layer
+    run = gpd.read_file(out / "open15.gpkg", layer="run").set_index("key")["value"]
+    assert run["planned_by_unit"] == "true"

@@ -82,7 +82,8 @@ def client():
     """A real dask.distributed LocalCluster: 2 worker processes, 1 thread each."""
     distributed = pytest.importorskip("distributed")
     cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       dashboard_address=None, silence_logs=40)
+                                       host="127.0.0.1", dashboard_address=":0",
+                                       silence_logs=40)
     c = distributed.Client(cluster)
     try:
         yield c

@@ -146,6 +146,19 @@ def brute_force(pr: PlanProblem) -> tuple[float, np.ndarray]:
         col = np.clip(q - 1, 0, P - 1)
         ok &= ~h | pr.eligible[i, col]
         val += np.where(h, pr.area_ha[i] * pr.npv_per_ha[i, col], 0.0)
+    # Flow and volume rules vectorised over all schedules first (same definitions as
+    # rule_breaks, which re-checks the survivors together with the openings).
+    V = np.zeros((len(grid), P))
+    for i in range(n):
+        for p in range(P):
+            V[:, p] += np.where(grid[:, i] == p + 1, pr.area_ha[i] * pr.volume_m3_ha[i, p], 0.0)
+    f = pr.flow
+    eps = 1e-9 * max(V.max(), 1.0)
+    for p in range(P - 1):
+        if f.flow_tolerance is not None:
+            ok &= np.abs(V[:, p + 1] - V[:, p]) <= f.flow_tolerance * V[:, p] + eps
+    if f.volume_min_m3 is not None:
+        ok &= (f.volume_min_m3 - eps <= V).all(axis=1)
     idx = np.nonzero(ok)[0]
     for k in idx[np.argsort(-val[idx], kind="stable")]:
         if not rule_breaks(pr, grid[k]):
@@ -155,6 +168,7 @@ def brute_force(pr: PlanProblem) -> tuple[float, np.ndarray]:
 
 def assert_matches_brute_force(pr: PlanProblem) -> None:
     best, _ = brute_force(pr)
+    assert best > 0  # a non-trivial optimum
     res = solve(pr, EXACT)
     assert rule_breaks(pr, res.period) == []
     assert res.status == "optimal"
@@ -168,7 +182,8 @@ def assert_matches_brute_force(pr: PlanProblem) -> None:
 @pytest.mark.parametrize("seed", [1, 2, 3])
 def test_grid_area_restriction_matches_brute_force(seed: int) -> None:
     # 3 x 3 grid, 3 periods: 4^9 = 262,144 schedules enumerated.
-    pr = make_problem(9, grid_edges(3, 3), seed, max_opening=22.0, green=2)
+    pr = make_problem(9, grid_edges(3, 3), seed, max_opening=22.0, green=2,
+                      flow=FlowRules(flow_tolerance=0.6))
     assert_matches_brute_force(pr)
 
 
@@ -183,7 +198,7 @@ def test_voronoi_stands_match_brute_force() -> None:
 
 def test_unit_restriction_matches_brute_force() -> None:
     pr = make_problem(8, grid_edges(2, 4), 7, max_opening=None, unit=True, green=2,
-                      min_age=10.0)
+                      min_age=10.0, flow=FlowRules(flow_tolerance=None))
     assert_matches_brute_force(pr)
 
 
@@ -191,7 +206,7 @@ def test_green_up_with_initially_open_stands() -> None:
     # Young stands (age 1-4) are open in period 1 (age at mid-period < G L = 20).
     age = np.array([2, 95, 80, 3, 70, 85, 60, 1], float)
     pr = make_problem(8, grid_edges(2, 4), 8, age=age, max_opening=25.0, green=2,
-                      min_age=0.0)
+                      min_age=0.0, flow=FlowRules(flow_tolerance=0.8))
     assert pr.initially_open[:, 0].sum() >= 3
     assert_matches_brute_force(pr)
 

@@ -162,6 +162,10 @@ def handle_errors(ctx: click.Context) -> Iterator[None]:
     except KeyboardInterrupt:
         click.echo("Interrupted; nothing further written.", err=True)
         ctx.exit(130)
+    except click.UsageError as exc:
+        # Bad flags are bad input (exit 1); exit 2 is kept for "the rules admit no plan".
+        exc.exit_code = 1
+        raise
     except (click.exceptions.Exit, click.ClickException, click.Abort, SystemExit):
         raise
     except OSError as exc:  # disk full, permission denied ...: the system's word, not a bug

@@ -51,7 +51,13 @@ def command(scenarios: str, out_dir: str, scheduler: str | None,
     Exit codes: 0 every scenario produced a verified plan; 1 any scenario failed (or a
     plan failed verification), or the scenario file has an error.
     """
-    from spatialplan.scenarios import check_outputs, dask_client, load_scenarios, split_threads
+    from spatialplan.scenarios import (
+        check_outputs,
+        dask_client,
+        load_scenarios,
+        split_threads,
+        units_for,
+    )
 
     con = console()
     extra: dict[str, Any] = {"output.no_map": not maps}
@@ -66,7 +72,9 @@ def command(scenarios: str, out_dir: str, scheduler: str | None,
         n_workers, threads = 1, workers_per_scenario or 1
         where = f"Dask scheduler {scheduler}"
     else:
-        n_workers, threads = split_threads(n, threads_per_task=workers_per_scenario)
+        # With --by-unit every unit of every scenario is a task that can run at once.
+        n_tasks = n * len(units_for(scen)) if by_unit else n
+        n_workers, threads = split_threads(n_tasks, threads_per_task=workers_per_scenario)
         where = f"local cluster: {n_workers} worker process(es) x 1 task"
     scen = _with_threads(scen, threads, force=workers_per_scenario is not None)
     con.err.print(f"{n} scenario(s) from {scen.path.name} on the {where}; CP-SAT threads per "
