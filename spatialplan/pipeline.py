@@ -36,6 +36,7 @@ __all__ = [
     "problem_from_frames",
     "run_plan",
     "schedule_frame",
+    "write_plan",
 ]
 
 log = logging.getLogger(__name__)
@@ -389,29 +390,68 @@ def run_plan(
     -------
     PlanOutcome
     """
-    from spatialplan import outputs, schedule, verify
+    from spatialplan import schedule
 
     stage = on_stage or (lambda _s: None)
     s = inputs.settings
-    out_path = Path(out_path)
     stage("building the model")
     bundle = build_problem(inputs, progress=stage)
     stage("solving")
     result = schedule.solve(bundle.problem, s.solver, on_progress=on_progress)
+    return write_plan(inputs, bundle, result, out_path, on_stage=stage)
+
+
+def write_plan(
+    inputs: PlanInputs,
+    bundle: PlanBundle,
+    result: Any,
+    out_path: str | Path,
+    *,
+    verify_settings: Settings | None = None,
+    run_extra: dict[str, str] | None = None,
+    messages: list[str] | None = None,
+    on_stage: Callable[[str], None] | None = None,
+) -> PlanOutcome:
+    """Verify a solved plan independently and write the GeoPackage and review files.
+
+    Parameters
+    ----------
+    inputs, bundle
+        What the plan was built from.
+    result
+        Anything with the fields of :class:`spatialplan.schedule.PlanResult`.
+    out_path
+        Output GeoPackage.
+    verify_settings
+        Rules to verify against (default: ``inputs.settings``); by-unit planning checks
+        the merged plan without the per-unit flow rules.
+    run_extra
+        More key/value rows for the ``run`` table.
+    messages
+        Messages to report instead of those of the inputs and the bundle.
+    on_stage
+        Called with a short stage name as the run proceeds.
+    """
+    from spatialplan import outputs, verify
+
+    stage = on_stage or (lambda _s: None)
+    s = inputs.settings
+    out_path = Path(out_path)
     stage("verifying")
     sched = schedule_frame(inputs, bundle, result.period)
-    report = verify.verify_schedule(sched, s, inputs.growth)
+    report = verify.verify_schedule(sched, verify_settings or s, inputs.growth)
     openings, stand_opening = outputs.opening_table(
         sched, bundle.problem.edges, s.horizon.periods, bundle.problem.green_up_periods,
         bundle.problem.initially_open, s.rules.max_opening_ha, bundle.problem.opening_area_ha,
         id_col=s.fields.id_field,
     )
     sched["opening_id"] = stand_opening
-    periods_df = outputs.period_table(sched, s, openings)
+    periods_df = outputs.period_table(sched, verify_settings or s, openings)
     strata_df = outputs.strata_table(sched, s)
     run_df = run_table(inputs, result, report.verdict, {
         "violations": str(len(report.violations)),
         "max_opening_ha": str(s.rules.max_opening_ha),
+        **(run_extra or {}),
     })
     stage("writing outputs")
     layers: dict[str, Any] = {
@@ -434,5 +474,5 @@ def run_plan(
         extra.extend([Path(views["map"]), Path(views["report"]), *map(Path, views["charts"])])
     if s.output.write_back:
         outputs.write_back(inputs.stands_path, layers)
-    return PlanOutcome(out_path, result, report, sched, periods_df, extra,
-                       inputs.messages + bundle.messages)
+    msgs = messages if messages is not None else inputs.messages + bundle.messages
+    return PlanOutcome(out_path, result, report, sched, periods_df, extra, msgs)

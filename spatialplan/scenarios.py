@@ -909,14 +909,7 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
     -------
     (PlanOutcome or None, ScenarioResult)
     """
-    from spatialplan import outputs, verify
-    from spatialplan.pipeline import (
-        PlanOutcome,
-        build_problem,
-        load_inputs,
-        run_table,
-        schedule_frame,
-    )
+    from spatialplan.pipeline import build_problem, load_inputs, write_plan
 
     t0 = time.perf_counter()
     failed = [u for u in solves if not u.ok]
@@ -959,48 +952,25 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
             float(max(u.solve_time_s for u in solves)) if solves else 0.0,
             {"units": len(solves), "cross_unit_edges": len(cross), "warnings": []},
         )
-        sched = schedule_frame(inputs, bundle, period)
-        # Flow rules belong to each unit (checked by each unit's own verification); the
-        # merged plan is checked forest-wide for everything else, the spatial rules above all.
-        s_merged = _without_flow_rules(s)
-        rep = verify.verify_schedule(sched, s_merged, inputs.growth)
-        openings, stand_opening = outputs.opening_table(
-            sched, bundle.problem.edges, s.horizon.periods, bundle.problem.green_up_periods,
-            bundle.problem.initially_open, s.rules.max_opening_ha, bundle.problem.opening_area_ha,
-            id_col=s.fields.id_field,
-        )
-        sched["opening_id"] = stand_opening
-        periods_df = outputs.period_table(sched, s_merged, openings)
-        strata_df = outputs.strata_table(sched, s)
         unit_info = "; ".join(f"{u.unit}: {u.status}, NPV {u.npv:.2f}, {u.verify_verdict}"
                               for u in solves)
-        run_df = run_table(inputs, result, rep.verdict, {
-            "violations": str(len(rep.violations)),
-            "max_opening_ha": str(s.rules.max_opening_ha),
-            "planned_by_unit": "true",
-            "units": unit_info,
-            "cross_unit_edges": str(len(cross)),
-            "verification": "flow rules per unit (each unit verified on its own); all other "
-                            "rules on the merged plan",
-        })
-        layers: dict[str, Any] = {"schedule": sched, "openings": openings,
-                                  "periods": periods_df, "strata": strata_df, "run": run_df}
-        outputs.write_plan_geopackage(out_path, layers)
-        extra: list[Path] = []
-        if not s.output.no_map:  # the same review files as ``plan`` writes
-            from spatialplan.report import write_review_files
-
-            info = dict(zip(run_df["key"], run_df["value"], strict=True))
-            views = write_review_files(
-                out_path, sched, openings, periods_df, strata_df, info, s,
-                basemap=s.output.basemap, id_col=s.fields.id_field,
-            )
-            extra.extend([Path(views["map"]), Path(views["report"]),
-                          *map(Path, views["charts"])])
+        # Flow rules belong to each unit (checked by each unit's own verification); the
+        # merged plan is checked forest-wide for everything else, the spatial rules above all.
+        outcome = write_plan(
+            inputs, bundle, result, out_path, verify_settings=_without_flow_rules(s),
+            messages=messages,
+            run_extra={
+                "planned_by_unit": "true",
+                "units": unit_info,
+                "cross_unit_edges": str(len(cross)),
+                "verification": "flow rules per unit (each unit verified on its own); all other "
+                                "rules on the merged plan",
+            },
+        )
+        rep, periods_df = outcome.verify, outcome.periods
         unit_fail = [u for u in solves if not u.verify_ok]
         for u in unit_fail:
             messages.append(f"unit {u.unit} failed its own verification: {u.verify_verdict}")
-        outcome = PlanOutcome(out_path, result, rep, sched, periods_df, extra, messages)
         res = ScenarioResult(
             name, True, result.status, npv=npv, lp_bound=lp, cpsat_bound=cps, gap=gap,
             solve_time_s=result.solve_time_s, verify_ok=bool(rep.ok) and not unit_fail,
