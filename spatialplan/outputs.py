@@ -276,7 +276,9 @@ def period_table(
         One row per period ``1 .. P``: ``period``, ``start_yr``, ``mid_yr``, ``end_yr``
         (years from the plan start), ``harvest_area_ha``, ``harvest_volume_m3``,
         ``gross_value``, ``discounted_value``, ``mean_age_at_harvest_yr`` (area weighted),
-        ``stands_harvested``, ``opening_count``, ``largest_opening_ha``,
+        ``stands_harvested``, ``opening_count``, ``largest_opening_ha`` (largest opening
+        holding a harvest of the period), ``largest_other_opening_ha`` (largest opening
+        with no harvest of the period: young stands from before the plan or earlier cuts),
         ``flow_lower_m3``, ``flow_upper_m3`` (volume bounds that applied to this period
         given the previous period's harvest, the tolerance, non-declining flow and the
         per-period targets; NaN = unbounded), ``flow_ok``, ``area_lower_ha``,
@@ -313,13 +315,23 @@ def period_table(
         mean_age = np.where(age_a > 0, age_w / age_a, np.nan)
     count = np.bincount(idx, minlength=P + 1)[1:]
 
+    # The rule judges openings that hold a harvest of the period; openings of stands that
+    # were young before the plan (or cut earlier) are reported apart so a pre-existing
+    # large young patch does not read as a breach of the plan.
     largest = np.zeros(P)
+    largest_other = np.zeros(P)
     n_open = np.zeros(P, dtype=np.int64)
     if openings is not None and len(openings):
         op = openings["period"].to_numpy(dtype=np.int64)
         oa = openings["area_ha"].to_numpy(dtype=float)
+        new = (
+            openings["new_harvest_ha"].to_numpy(dtype=float) > 0
+            if "new_harvest_ha" in openings.columns
+            else np.ones(len(openings), dtype=bool)
+        )
         ok = (op >= 1) & (op <= P)
-        np.maximum.at(largest, op[ok] - 1, oa[ok])
+        np.maximum.at(largest, op[ok & new] - 1, oa[ok & new])
+        np.maximum.at(largest_other, op[ok & ~new] - 1, oa[ok & ~new])
         n_open = np.bincount(op[ok] - 1, minlength=P)[:P]
 
     lower = np.full(P, np.nan)
@@ -359,6 +371,7 @@ def period_table(
             "stands_harvested": count.astype(np.int64),
             "opening_count": n_open.astype(np.int64),
             "largest_opening_ha": largest,
+            "largest_other_opening_ha": largest_other,
             "flow_lower_m3": lower,
             "flow_upper_m3": upper,
             "flow_ok": flow_ok,
