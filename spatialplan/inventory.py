@@ -28,7 +28,7 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import shapely
-from pyproj import CRS
+from pyproj import CRS, Geod
 
 from spatialplan.errors import InputError
 from spatialplan.settings import FieldMap
@@ -480,7 +480,7 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
 
 
 def _geodesic_area_m2(geoms: np.ndarray, crs: CRS) -> np.ndarray:
-    geod = crs.get_geod()
+    geod = crs.get_geod() or Geod(ellps="WGS84")
     out = np.zeros(len(geoms))
     for i, g in enumerate(geoms):
         if g is not None and not g.is_empty and g.geom_type in ("Polygon", "MultiPolygon"):

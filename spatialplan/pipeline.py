@@ -210,9 +210,6 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     )
     messages.extend(adj.warnings)
     start_vol = float((inputs.growth.volume(strata, age0) * net_area).sum())
-    kw: dict[str, Any] = {}
-    if "eligible_no_min_age" in {f.name for f in dataclasses.fields(PlanProblem)}:
-        kw["eligible_no_min_age"] = eligible_any_age
     npv_ha = values.npv_per_ha
     end_vol = values.ending_volume_m3_ha
     problem = PlanProblem(
@@ -233,7 +230,8 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
         flow=_flow_rules(s, start_vol),
         ending_volume_m3_ha=end_vol,
         ending_age_yr=values.ending_age_yr,
-        **kw,
+        eligible_no_min_age=eligible_any_age,
+        min_age_yr=s.rules.min_age_yr,
     )
     if s.economics.include_ending_value:
         problem = _with_ending_value(problem, values)
@@ -324,8 +322,9 @@ def run_table(
     inputs: PlanInputs, result: Any, verdict: str, extra: dict[str, Any] | None = None
 ) -> pd.DataFrame:
     """Key/value rows recording everything needed to reproduce and audit the plan."""
+    from importlib.metadata import version
+
     import geopandas
-    import ortools
     import shapely
 
     s = inputs.settings
@@ -333,7 +332,7 @@ def run_table(
         "software": f"spatialplan {__version__}",
         "python": platform.python_version(),
         "versions": (
-            f"ortools {ortools.__version__}; geopandas {geopandas.__version__}; "
+            f"ortools {version('ortools')}; highspy {version('highspy')}; geopandas {geopandas.__version__}; "
             f"shapely {shapely.__version__}; numpy {np.__version__}; pandas {pd.__version__}"
         ),
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),

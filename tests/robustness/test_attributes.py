@@ -23,7 +23,7 @@ def map_tooltips(html_path: Path) -> list[str]:
     return [json.loads(m) for m in _TIP.findall(html_path.read_text(encoding="utf-8"))]
 
 
-@pytest.mark.parametrize("flag, value, role", [
+@pytest.mark.parametrize(('flag', 'value', 'role'), [
     ("--id-field", "STAND_NO", "id_field"),
     ("--age-field", "AGE_2024", "age_field"),
     ("--yield-keys", "species,site", "yield_keys"),
@@ -135,7 +135,8 @@ def test_shapefile_in_latin1_is_decoded(run: GuardedCli, tmp_path: Path, yields:
     out = tmp_path / "plan.gpkg"
     res = run("plan", p, "--yields", yields, "--out", out, *FAST, "--no-map")
     assert res.exit_code == 0, res.output
-    assert list(pyogrio.read_dataframe(out, layer="schedule")["stand_id"]) == ["Forêt-1", "Forêt-2"]
+    sched = pyogrio.read_dataframe(out, layer="schedule")
+    assert list(sched["stand_id"]) == ["Forêt-1", "Forêt-2"]
 
 
 def test_markup_in_values_is_escaped_in_map(run: GuardedCli, tmp_path: Path,

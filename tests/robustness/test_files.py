@@ -26,9 +26,9 @@ def test_missing_stand_file(run: GuardedCli, tmp_path: Path, yields: Path) -> No
     assert not (tmp_path / "o.gpkg").exists()
 
 
-@pytest.mark.parametrize("name, content", [
+@pytest.mark.parametrize(("name", "content"), [
     ("junk.gpkg", b"this is not a GeoPackage\x00\x01"),
-    ("notes.txt", "Stand notes written by hand\nnothing spatial here\n".encode()),
+    ("notes.txt", b"Stand notes written by hand\nnothing spatial here\n"),
 ])
 def test_not_a_vector_file(run: GuardedCli, tmp_path: Path, yields: Path, name: str,
                            content: bytes) -> None:

@@ -9,8 +9,6 @@ passes the independent ``verify`` command.
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import geopandas as gpd
 import shapely
 from hypothesis import HealthCheck, event, given, settings
@@ -122,3 +120,38 @@ def test_check_and_plan_never_crash(tmp_path_factory, layer: gpd.GeoDataFrame,
     else:
         assert res.output.count("Error:") == 1, res.output
         assert not out.exists()
+
+
+@settings(max_examples=15, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(periods=st.integers(1, 4), period_length=st.sampled_from(["1", "5", "10"]),
+       max_opening=st.floats(0.5, 50.0), green_up=st.integers(1, 4),
+       min_age=st.sampled_from(["0", "30", "80", "200"]),
+       flow=st.sampled_from(["0", "0.05", "0.5", "1"]), non_declining=st.booleans(),
+       seed=st.integers(0, 3))
+def test_random_rules_give_verified_plans_or_clear_errors(
+    tmp_path_factory, periods: int, period_length: str, max_opening: float, green_up: int,
+    min_age: str, flow: str, non_declining: bool, seed: int,
+) -> None:
+    from spatialplan.synthetic import voronoi_forest
+
+    d = tmp_path_factory.mktemp("rules")
+    stands = d / "stands.gpkg"
+    voronoi_forest(15, seed=seed, mean_area_ha=8.0).to_file(stands, layer="stands",
+                                                            driver="GPKG")
+    yields = d / "yields.csv"
+    synthetic_yield_table().to_csv(yields, index=False)
+    run = GuardedCli()
+    run.guard(stands, yields)
+    out = d / "plan.gpkg"
+    res = run("plan", stands, "--yields", yields, "--out", out, "--price", "40", "--no-map",
+              "--periods", periods, "--period-length", period_length,
+              "--max-opening", f"{max_opening:.3f}", "--green-up", green_up,
+              "--min-age", min_age, "--flow-tolerance", flow, "--time-limit", "1",
+              "--workers", "1", *(["--non-declining"] if non_declining else []))
+    event(f"plan exit code {res.exit_code}")
+    assert res.exit_code in (0, 2, 3), res.output  # the inputs themselves are valid
+    if res.exit_code == 0:
+        assert run("verify", out).exit_code == 0
+    else:
+        assert res.output.count("Error:") == 1 and not out.exists(), res.output

@@ -126,6 +126,7 @@ def test_coordinates_in_degrees(run: GuardedCli, tmp_path: Path, yields: Path) -
     assert run("verify", out).exit_code == 0
 
 
+@pytest.mark.filterwarnings("ignore:'crs' was not provided:UserWarning")
 def test_layer_without_crs(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     p = write_layer(grid_stands(crs=None), tmp_path / "nocrs.gpkg")
     run.guard(p, yields)

@@ -46,7 +46,7 @@ CASES = [
 ]
 
 
-@pytest.mark.parametrize("toml, needles", CASES, ids=[c[1][0][:40] for c in CASES])
+@pytest.mark.parametrize(("toml", "needles"), CASES, ids=[c[1][0][:40] for c in CASES])
 def test_bad_settings_file(run: GuardedCli, tmp_path: Path, stands: Path, yields: Path,
                            toml: str, needles: list[str]) -> None:
     s = tmp_path / "plan.toml"
@@ -68,7 +68,7 @@ def test_settings_file_not_utf8(run: GuardedCli, tmp_path: Path, stands: Path,
     assert_user_error(res, 1, str(s), "not UTF-8", "line 3")
 
 
-@pytest.mark.parametrize("flag, value, needles", [
+@pytest.mark.parametrize(("flag", "value", "needles"), [
     ("--periods", "0", ["'horizon.periods' = 0", "allowed [1, 200]", "given as --periods"]),
     ("--period-length", "-5", ["'horizon.period_length_yr'", "given as --period-length"]),
     ("--flow-tolerance", "2", ["'rules.flow_tolerance'", "given as --flow-tolerance"]),
@@ -89,3 +89,16 @@ def test_flag_of_wrong_type_is_bad_input(run: GuardedCli, tmp_path: Path, stands
     res = run("plan", stands, "--yields", yields, "--out", tmp_path / "o.gpkg", "--periods", "x")
     # Exit 1 like any bad input; 2 means the rules admit no plan.
     assert res.exit_code == 1 and "'x' is not a valid integer" in res.output
+
+
+def test_subprocess_settings_error_has_no_traceback(tmp_path: Path, stands: Path,
+                                                    yields: Path) -> None:
+    from tests.robustness.conftest import TRACEBACK, run_subprocess
+
+    s = tmp_path / "plan.toml"
+    s.write_text("[rules]\nmax_openng_ha = 30\n")
+    res = run_subprocess(["plan", stands, "--yields", yields, "--settings", s,
+                          "--out", tmp_path / "o.gpkg"])
+    assert res.returncode == 1
+    assert res.stderr.count("Error:") == 1 and "did you mean 'rules.max_opening_ha'" in res.stderr
+    assert TRACEBACK not in res.stderr + res.stdout

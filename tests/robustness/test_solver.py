@@ -86,7 +86,7 @@ def test_keyboard_interrupt_while_writing_leaves_no_file(run: GuardedCli, tmp_pa
     monkeypatch.setattr(pyogrio, "write_dataframe", write_then_interrupt)
     out = tmp_path / "plan.gpkg"
     run.guard(forest, yields)
-    res = run("plan", forest, "--yields", yields, "--out", out, *PLAN, "--time-limit", "5")
+    res = run("plan", forest, "--yields", yields, "--out", out, *PLAN, "--time-limit", "1")
     assert res.exit_code == 130, res.output
     assert "Interrupted" in res.output
     assert calls["n"] == 2
@@ -123,3 +123,16 @@ def test_ctrl_c_during_solve_writes_marked_plan_or_nothing(tmp_path: Path) -> No
         res = run_subprocess(["verify", out])
         assert res.returncode == 0, res.stdout[-2000:]
     assert not [p.name for p in tmp_path.iterdir() if p.name.startswith(".plan.")]
+
+
+def test_subprocess_infeasible_has_no_traceback(tmp_path: Path, forest: Path,
+                                                yields: Path) -> None:
+    s = tmp_path / "s.toml"
+    s.write_text("[rules]\nperiod_area_min_ha = 1e6\n")  # more than the forest's area
+    out = tmp_path / "plan.gpkg"
+    res = run_subprocess(["plan", forest, "--yields", yields, "--out", out, "--settings", s,
+                          *PLAN, "--time-limit", "5"])
+    assert res.returncode == 2, res.stderr
+    assert "diagnosis: period area minimum" in res.stderr
+    assert TRACEBACK not in res.stderr + res.stdout
+    assert not out.exists()

@@ -85,7 +85,7 @@ def test_stands_with_no_key(run: GuardedCli, stands: Path, tmp_path: Path) -> No
     assert len(pyogrio.read_dataframe(out, layer="schedule")) == 6
 
 
-@pytest.mark.parametrize("content, needle", [
+@pytest.mark.parametrize(("content", "needle"), [
     (b"", "cannot be read as CSV"),
     (b"stratum,age,volume\n", "no rows"),
     ("stratum,age,volume\nS\xe9,10,5\n".encode("latin-1"), "not UTF-8 text (line 2)"),
