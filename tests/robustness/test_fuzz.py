@@ -128,10 +128,10 @@ def test_check_and_plan_never_crash(tmp_path_factory, layer: gpd.GeoDataFrame,
        max_opening=st.floats(0.5, 50.0), green_up=st.integers(1, 4),
        min_age=st.sampled_from(["0", "30", "80", "200"]),
        flow=st.sampled_from(["0", "0.05", "0.5", "1"]), non_declining=st.booleans(),
-       seed=st.integers(0, 3))
+       volume_min=st.sampled_from([None, None, 1500.0, 1e8]), seed=st.integers(0, 3))
 def test_random_rules_give_verified_plans_or_clear_errors(
     tmp_path_factory, periods: int, period_length: str, max_opening: float, green_up: int,
-    min_age: str, flow: str, non_declining: bool, seed: int,
+    min_age: str, flow: str, non_declining: bool, volume_min: float | None, seed: int,
 ) -> None:
     from spatialplan.synthetic import voronoi_forest
 
@@ -141,10 +141,13 @@ def test_random_rules_give_verified_plans_or_clear_errors(
                                                             driver="GPKG")
     yields = d / "yields.csv"
     synthetic_yield_table().to_csv(yields, index=False)
+    toml = d / "rules.toml"
+    toml.write_text("" if volume_min is None else f"[rules]\nperiod_volume_min_m3 = {volume_min}\n")
     run = GuardedCli()
-    run.guard(stands, yields)
+    run.guard(stands, yields, toml)
     out = d / "plan.gpkg"
     res = run("plan", stands, "--yields", yields, "--out", out, "--price", "40", "--no-map",
+              "--settings", toml,
               "--periods", periods, "--period-length", period_length,
               "--max-opening", f"{max_opening:.3f}", "--green-up", green_up,
               "--min-age", min_age, "--flow-tolerance", flow, "--time-limit", "1",
