@@ -41,6 +41,7 @@ from spatialplan.errors import InfeasibleError, NoSolutionError
 from spatialplan.problem import PlanProblem
 from spatialplan.schedule_cpsat import CoverPool, SubModel, make_scaling
 from spatialplan.schedule_heuristic import greedy_plan
+from spatialplan.schedule_local import anneal
 from spatialplan.schedule_lp import LpResult, lp_bound, solve_lp
 from spatialplan.schedule_model import check_plan, plan_npv, prepare
 from spatialplan.schedule_search import SearchCtx, lazy_rounds, lns, seed_pair_covers
@@ -55,8 +56,11 @@ __all__ = [
     "solve",
 ]
 
-# Full CP-SAT model up to this many harvest variables; spatial LNS above.
+# Local search then CP-SAT on the full model up to this many harvest variables; local
+# search alone above.
 FULL_MODEL_MAX_VARS = 6_000
+# Share of the remaining time the local search may use before CP-SAT on small models.
+LOCAL_SHARE_FULL = 0.4
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
 
 
@@ -153,7 +157,8 @@ def solve(
     on_progress
         Called with a :class:`SolveProgress` whenever the best plan improves.
     _strategy
-        ``"auto"``, ``"full"`` (CP-SAT on the full model), ``"lns"`` (spatial LNS) or
+        ``"auto"``, ``"full"`` (local search, then CP-SAT on the full model),
+        ``"local"`` (local search to the deadline), ``"lns"`` (spatial CP-SAT LNS) or
         ``"heuristic"`` (LP + greedy only); for benchmarks.
 
     Returns
@@ -228,12 +233,23 @@ def solve(
         n_vars = int(prep.eligible.sum())
         strategy = _strategy
         if strategy == "auto":
-            strategy = "full" if n_vars <= FULL_MODEL_MAX_VARS else "lns"
+            strategy = "full" if n_vars <= FULL_MODEL_MAX_VARS else "local"
         stats["strategy"] = strategy
         infeasible = False
         if strategy != "heuristic" and not ctx.stopped() and n_vars > 0:
-            if strategy == "full" or ctx.best is None or not ctx.best.any():
-                infeasible = _full(ctx, settings, stats, until_first=strategy != "full")
+            if ctx.best is None or (not ctx.best.any() and strategy != "local"):
+                # No legal start for the local search: let CP-SAT find one first.
+                infeasible = _full(ctx, settings, stats, until_first=True)
+            if not infeasible and ctx.best is not None and strategy in ("full", "local"):
+                # Small models: the local search gets a share of the time, CP-SAT polishes
+                # the result (and proves optimality on small instances); large models: the
+                # local search runs to the deadline.
+                share = LOCAL_SHARE_FULL if strategy == "full" else 1.0
+                _local(ctx, stats, time.perf_counter() + share * max(ctx.left(), 0.0),
+                       patience=3 if strategy == "full" else 2,
+                       repeat=strategy != "full")
+            if strategy == "full" and not infeasible and not ctx.stopped():
+                infeasible = _full(ctx, settings, stats, until_first=False)
             if strategy == "lns" and not infeasible and ctx.best is not None:
                 lns(ctx)
     # 4. result
@@ -271,7 +287,7 @@ def solve(
         status = "interrupted"
     elif ctx.proven or (gap <= settings.gap and not (empty_plan and lp_value > 0)):
         status = "optimal"
-    elif time.perf_counter() >= deadline - 0.05 or strategy == "lns":
+    elif time.perf_counter() >= deadline - 0.05 or strategy in ("lns", "local"):
         status = "time_limit"
     else:
         status = "feasible"
@@ -312,6 +328,38 @@ def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bo
                   "area_restriction_constraints": size["cover_clauses"],
                   "row_tightening_rel": sub.row_tightening})
     return False
+
+
+def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: bool) -> None:
+    """Simulated annealing from the best plan (:mod:`spatialplan.schedule_local`).
+
+    With ``repeat`` the search starts again from the best plan with longer rounds and the
+    next seed whenever it stalls, until ``until``.
+    """
+    prep = ctx.prep
+    assert ctx.best is not None
+    round_moves = max(20_000, 150 * prep.n)
+    k = 0
+    tl = time.perf_counter()
+    info: dict = {"runs": 0, "moves": 0, "rounds": 0, "improving_rounds": 0}
+    start_npv = ctx.best_npv
+    while ctx.best is not None and not ctx.stopped() and time.perf_counter() < until:
+        res = anneal(prep, ctx.best, seed=ctx.seed + 7919 * k, deadline=until,
+                     round_moves=round_moves, patience=patience, stop=ctx.stopped,
+                     on_best=lambda per, v: ctx.offer(per, "local"))
+        info["runs"] += 1
+        info["moves"] += res.moves
+        info["rounds"] += res.rounds
+        info["improving_rounds"] += res.improving_rounds
+        if not repeat:
+            break
+        k += 1
+        round_moves *= 2
+    dt = time.perf_counter() - tl
+    info["seconds"] = round(dt, 3)
+    info["moves_per_s"] = round(info["moves"] / dt) if dt > 0 else None
+    info["gain"] = ctx.best_npv - start_npv
+    stats["local_search"] = info
 
 
 def _first_slice(prep) -> float:

@@ -10,6 +10,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import os
+import sys
+
 import highspy
 import numpy as np
 import scipy.sparse as sp
@@ -45,6 +48,43 @@ class LpResult:
     """(n, P) LP "profit" of each cell: objective minus the rule rows' dual prices times
     the cell's row coefficients (reduced cost plus the stand's own dual); the heuristic
     ranks periods of a stand by it."""
+
+
+_BANNER_SILENCED = False
+
+
+def _new_highs() -> highspy.Highs:
+    """A HiGHS instance that prints nothing.
+
+    highspy 1.16 prints its banner to the C-level stdout when the first instance of a
+    process is made, before any option can be set; stdout is pointed at the null device
+    for that one construction.
+    """
+    global _BANNER_SILENCED
+    if _BANNER_SILENCED:
+        h = highspy.Highs()
+    else:
+        _BANNER_SILENCED = True
+        try:
+            sys.stdout.flush()
+            fd = os.dup(1)
+        except (OSError, ValueError):
+            fd = -1
+        if fd < 0:
+            h = highspy.Highs()
+        else:
+            try:
+                with open(os.devnull, "w") as null:
+                    os.dup2(null.fileno(), 1)
+                    try:
+                        h = highspy.Highs()
+                    finally:
+                        os.dup2(fd, 1)
+            finally:
+                os.close(fd)
+    h.setOptionValue("output_flag", False)
+    h.setOptionValue("log_to_console", False)
+    return h
 
 
 def solve_lp(
@@ -119,8 +159,7 @@ def solve_lp(
     lp.a_matrix_.index_ = a.indices.astype(np.int32)
     lp.a_matrix_.value_ = a.data
     lp.sense_ = highspy.ObjSense.kMaximize
-    h = highspy.Highs()
-    h.setOptionValue("output_flag", False)
+    h = _new_highs()
     h.setOptionValue("threads", 1)
     if time_limit_s is not None:
         h.setOptionValue("time_limit", max(float(time_limit_s), 0.01))

@@ -90,3 +90,27 @@ def test_demo_subprocess(tmp_path: Path) -> None:
         assert (out / name).is_file()
     assert any((out / "brennick_plan_charts").glob("*.png"))
     assert "PASS" in res.stdout
+
+
+def test_plan_by_unit_merges_units(tmp_path: Path, yields_csv: Path) -> None:
+    import pandas as pd
+
+    # Two management units 1 km apart: no stand of one touches the other, so planning them
+    # apart is exact (docs/scaling.md) and the merged plan must pass the forest-wide check.
+    a = voronoi_forest(25, seed=5, mean_area_ha=10.0)
+    b = voronoi_forest(25, seed=6, mean_area_ha=10.0, origin=(520_000.0, 5_200_000.0))
+    a["mu"], b["mu"] = "north", "south"
+    b["stand_id"] = "U" + b["stand_id"]
+    g = pd.concat([a, b], ignore_index=True)
+    p = tmp_path / "units.gpkg"
+    g.to_file(p, layer="stands", driver="GPKG")
+    out = tmp_path / "units_plan.gpkg"
+    res = CliRunner().invoke(cli, [*_plan_args(p, yields_csv, out), "--by-unit", "--unit-field", "mu"])
+    assert res.exit_code == 0, res.output
+    sched = pyogrio.read_dataframe(out, layer="schedule")
+    assert set(sched["mu"]) == {"north", "south"}
+    with sqlite3.connect(out) as con:
+        run = dict(con.execute("select key, value from run").fetchall())
+    assert run["planned_by_unit"] == "true"
+    res = CliRunner().invoke(cli, ["plan", str(p), "--yields", str(yields_csv), "--out", str(tmp_path / "x.gpkg"), "--by-unit"])
+    assert res.exit_code == 1 and "--unit-field" in res.output

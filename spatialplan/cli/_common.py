@@ -42,6 +42,7 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     "yield-keys": ("fields.yield_keys", str, "Comma-separated attributes that select the yield table."),
     "reserve-field": ("fields.reserve_field", str, "Attribute flagging reserve stands (never harvested)."),
     "cost-class-field": ("fields.cost_class_field", str, "Attribute holding the harvest-cost class."),
+    "unit-field": ("fields.unit_field", str, "Attribute holding the management unit (with --by-unit)."),
     "crs": ("fields.crs", str, "CRS to assume when the layer has none, e.g. EPSG:32610."),
     "periods": ("horizon.periods", int, "Number of planning periods."),
     "period-length": ("horizon.period_length_yr", float, "Length of one period in years."),

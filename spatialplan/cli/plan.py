@@ -17,7 +17,7 @@ from spatialplan.errors import OutputError
 
 PLAN_FLAGS = [
     "layer", "id-field", "age-field", "yield-keys", "reserve-field", "cost-class-field", "crs",
-    "skip-unmatched", "periods", "period-length", "max-opening", "green-up", "min-age",
+    "unit-field", "skip-unmatched", "periods", "period-length", "max-opening", "green-up", "min-age",
     "flow-tolerance", "non-declining", "unit-restriction", "discount-rate", "price",
     "gap-tolerance", "min-shared-edge", "corner-adjacency", "time-limit", "workers", "seed", "gap",
     "dem", "streams", "stream-buffer",
@@ -55,9 +55,12 @@ def output_overrides(kwargs: dict[str, Any]) -> dict[str, Any]:
 @click.option("--out", "out", type=click.Path(dir_okay=False), required=True,
               help="Output GeoPackage (map, report and charts are written beside it).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing output.")
+@click.option("--by-unit", is_flag=True,
+              help="Plan each management unit (--unit-field) on its own, with its own flow "
+                   "rules, and merge the plans.")
 @output_options
 @settings_options(PLAN_FLAGS)
-def command(stands: str, yields_path: str | None, out: str, overwrite: bool,
+def command(stands: str, yields_path: str | None, out: str, overwrite: bool, by_unit: bool,
             settings_path: str | None, **kwargs: Any) -> None:
     """Plan which stands to clear-cut in each period to maximise NPV under the rules.
 
@@ -67,13 +70,16 @@ def command(stands: str, yields_path: str | None, out: str, overwrite: bool,
     outs = output_overrides(kwargs)
     settings = settings_from_flags(settings_path, kwargs)
     settings = settings.with_overrides(outs)
-    code = run_and_report(stands, yields_path, Path(out), overwrite, settings)
+    if by_unit and not settings.fields.unit_field:
+        msg = "--by-unit needs the attribute holding the management unit: --unit-field NAME"
+        raise click.UsageError(msg)
+    code = run_and_report(stands, yields_path, Path(out), overwrite, settings, by_unit=by_unit)
     if code:
         raise SystemExit(code)
 
 
 def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path, overwrite: bool,
-                   settings: Any) -> int:
+                   settings: Any, *, by_unit: bool = False) -> int:
     """Run the plan pipeline with a live progress display; print the summary."""
     from rich.live import Live
     from rich.markup import escape
@@ -129,7 +135,13 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
         live.update(render())
 
     with live:
-        outcome = run_plan(inputs, out, on_progress=on_progress, on_stage=on_stage)
+        if by_unit:
+            from spatialplan.scenarios import plan_by_unit
+
+            on_stage("solving each management unit")
+            outcome = plan_by_unit(stands, yields_path, settings, out)
+        else:
+            outcome = run_plan(inputs, out, on_progress=on_progress, on_stage=on_stage)
     r = outcome.result
     for m in outcome.messages:
         con.err.print(f"note: {escape(m)}")
