@@ -41,6 +41,7 @@ __all__ = [
     "list_vector_layers",
     "match_strata",
     "read_stands",
+    "read_vector_layer",
     "text_key",
 ]
 
@@ -142,11 +143,11 @@ def text_key(values: pd.Series) -> pd.Series:
     return values.map(one).astype(object)
 
 
-def list_vector_layers(path: str | Path) -> list[tuple[str, str | None]]:
+def list_vector_layers(path: str | Path, what: str = "stand layer") -> list[tuple[str, str | None]]:
     """Layers in a vector file as ``(name, geometry type)``; raises :class:`InputError`."""
     p = Path(path)
     if not p.exists():
-        msg = f"stand layer not found: {p}"
+        msg = f"{what} not found: {p}"
         raise InputError(msg)
     try:
         layers = pyogrio.list_layers(p)
@@ -161,10 +162,33 @@ def _short(exc: Exception) -> str:
     return s[0] if s else type(exc).__name__
 
 
-def _read_layer(path: Path, layer: str | None) -> tuple[gpd.GeoDataFrame, str | None]:
-    layers = list_vector_layers(path)
+def read_vector_layer(
+    path: str | Path,
+    layer: str | None,
+    *,
+    what: str = "stand layer",
+    holds: str = "the stands",
+    layer_hint: str = "--layer (or fields.layer)",
+    expect: str = "stands must be polygons",
+) -> tuple[gpd.GeoDataFrame, str | None]:
+    """Read one layer of a vector file with messages that say what to do.
+
+    Parameters
+    ----------
+    path, layer
+        File and layer name (``None``: the only spatial layer).
+    what, holds, layer_hint, expect
+        Words for messages: what the file is, what the layer holds, how to name the
+        layer, what geometry is expected.
+
+    Returns
+    -------
+    (GeoDataFrame, layer name or None)
+    """
+    path = Path(path)
+    layers = list_vector_layers(path, what)
     if not layers:
-        msg = f"{path} contains no layers"
+        msg = f"{what} {path} contains no layers"
         raise InputError(msg)
     names = [n for n, _ in layers]
     if layer is None:
@@ -174,8 +198,8 @@ def _read_layer(path: Path, layer: str | None) -> tuple[gpd.GeoDataFrame, str | 
                 layer = spatial[0]
             else:
                 msg = (
-                    f"{path} has {len(layers)} layers; say which holds the stands with "
-                    f"--layer (or fields.layer): {', '.join(names)}"
+                    f"{path} has {len(layers)} layers; say which holds {holds} with "
+                    f"{layer_hint}: {', '.join(names)}"
                 )
                 raise InputError(msg)
     elif layer not in names:
@@ -192,7 +216,7 @@ def _read_layer(path: Path, layer: str | None) -> tuple[gpd.GeoDataFrame, str | 
         msg = f"cannot read layer {layer or names[0]!r} of {path}: {_short(exc)}"
         raise InputError(msg) from None
     if not isinstance(gdf, gpd.GeoDataFrame) or gdf.geometry.name not in gdf.columns:
-        msg = f"layer {layer or names[0]!r} of {path} has no geometry; stands must be polygons"
+        msg = f"layer {layer or names[0]!r} of {path} has no geometry; {expect}"
         raise InputError(msg)
     return gdf, layer
 
@@ -292,7 +316,7 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
     """
     fields = fields or FieldMap()
     path = Path(path)
-    gdf, layer = _read_layer(path, fields.layer)
+    gdf, layer = read_vector_layer(path, fields.layer)
     if len(gdf) == 0:
         msg = f"{path}: layer {layer or ''} is empty (no stands)".replace("  ", " ")
         raise InputError(msg)

@@ -833,20 +833,6 @@ def cross_unit_edges(edges: np.ndarray, units: np.ndarray) -> np.ndarray:
     return e[u[e[:, 0]] != u[e[:, 1]]]
 
 
-@dataclass
-class _MergedResult:
-    """Duck-typed :class:`spatialplan.schedule.PlanResult` of a merged by-unit plan."""
-
-    period: np.ndarray
-    status: str
-    npv: float
-    cpsat_bound: float | None
-    lp_bound: float
-    gap: float
-    solve_time_s: float
-    stats: dict = field(default_factory=dict)
-
-
 _STATUS_RANK = ("optimal", "feasible", "time_limit", "interrupted")
 
 
@@ -947,7 +933,9 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
         bound = min(lp, cps) if cps is not None and math.isfinite(lp) else (
             cps if cps is not None else lp)
         gap = max(0.0, (bound - npv) / max(abs(bound), 1e-9)) if math.isfinite(bound) else math.inf
-        result = _MergedResult(
+        from spatialplan.schedule import PlanResult
+
+        result = PlanResult(
             period, _merge_status([u.status for u in solves]), npv, cps, lp, gap,
             float(max(u.solve_time_s for u in solves)) if solves else 0.0,
             {"units": len(solves), "cross_unit_edges": len(cross), "warnings": []},
@@ -1046,20 +1034,11 @@ def plan_by_unit(
     InfeasibleError
         A unit's rules admit no plan (the diagnosis names the unit).
     """
-    from spatialplan.inventory import read_stands
-
     if not settings.fields.unit_field:
         msg = "by-unit planning needs fields.unit_field (the attribute naming each stand's unit)"
         raise SettingsError(msg)
     check_units_settings(settings)
-    inv = read_stands(stands, settings.fields)
-    inv.raise_for_errors()
-    units_arr = _unit_labels(inv.stands)
-    missing = [str(i) for i, u in zip(inv.stands["stand_id"], units_arr, strict=True) if u is None]
-    if missing:
-        msg = (f"{stands}: {len(missing)} stand(s) have no value in unit field "
-               f"'{settings.fields.unit_field}': {', '.join(missing[:20])}")
-        raise InputError(msg)
+    _inv, units_arr = _read_units(stands, settings.fields)
     units = sorted({str(u) for u in units_arr})
     files = InputFiles.collect(Path(stands), None if yields is None else Path(yields), [settings])
     if ship:
@@ -1535,9 +1514,23 @@ def run_comparison(
     return ComparisonResult(table, results, csv_path, chart_path, mode)
 
 
+def _read_units(stands: str | Path, fields: Any) -> tuple[Any, np.ndarray]:
+    """Read the stand layer and its unit labels; every stand must name its unit."""
+    from spatialplan.inventory import read_stands
+
+    inv = read_stands(stands, fields)
+    inv.raise_for_errors()
+    units = _unit_labels(inv.stands)
+    missing = [str(i) for i, v in zip(inv.stands["stand_id"], units, strict=True) if v is None]
+    if missing:
+        msg = (f"{stands}: {len(missing)} stand(s) have no value in unit field "
+               f"'{fields.unit_field}': {', '.join(missing[:20])}")
+        raise InputError(msg)
+    return inv, units
+
+
 def units_for(scen: ScenarioSet) -> list[str]:
     """Unit values of the stand layer (read once on the client), checked for gaps."""
-    from spatialplan.inventory import read_stands
 
     fields = {s.settings.fields for s in scen.scenarios}
     if len(fields) > 1:
@@ -1550,14 +1543,7 @@ def units_for(scen: ScenarioSet) -> list[str]:
         raise SettingsError(msg)
     for s in scen.scenarios:
         check_units_settings(s.settings, f"{scen.path} scenario '{s.name}'")
-    inv = read_stands(scen.stands, f)
-    inv.raise_for_errors()
-    u = _unit_labels(inv.stands)
-    missing = [str(i) for i, v in zip(inv.stands["stand_id"], u, strict=True) if v is None]
-    if missing:
-        msg = (f"{scen.stands}: {len(missing)} stand(s) have no value in unit field "
-               f"'{f.unit_field}': {', '.join(missing[:20])}")
-        raise InputError(msg)
+    _inv, u = _read_units(scen.stands, f)
     unknown = sorted(set(scen.unit_overrides) - {str(v) for v in u})
     if unknown:
         msg = f"{scen.path}: [units] names unit(s) not in the stand layer: {', '.join(unknown)}"

@@ -330,6 +330,10 @@ def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bo
     return False
 
 
+def _offer_local(ctx: SearchCtx, period: np.ndarray) -> None:
+    ctx.offer(period, "local")
+
+
 def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: bool) -> None:
     """Simulated annealing from the best plan (:mod:`spatialplan.schedule_local`).
 
@@ -338,7 +342,7 @@ def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: boo
     """
     prep = ctx.prep
     assert ctx.best is not None
-    round_moves = max(20_000, 150 * prep.n)
+    round_moves = max(50_000, 400 * prep.n)
     k = 0
     tl = time.perf_counter()
     info: dict = {"runs": 0, "moves": 0, "rounds": 0, "improving_rounds": 0}
@@ -346,7 +350,7 @@ def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: boo
     while ctx.best is not None and not ctx.stopped() and time.perf_counter() < until:
         res = anneal(prep, ctx.best, seed=ctx.seed + 7919 * k, deadline=until,
                      round_moves=round_moves, patience=patience, stop=ctx.stopped,
-                     on_best=lambda per, v: ctx.offer(per, "local"))
+                     on_best=lambda per, v: _offer_local(ctx, per))
         info["runs"] += 1
         info["moves"] += res.moves
         info["rounds"] += res.rounds

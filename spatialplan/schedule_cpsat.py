@@ -152,8 +152,8 @@ class SubModel:
         si = self.free[fi]
         self.cell_i = si
         self.cell_p = fp
-        self.xvars = [m.NewBoolVar(f"x{i}_{p + 1}") for i, p in zip(si, fp, strict=True)]
-        self.xidx = np.array([v.Index() for v in self.xvars], dtype=np.int64)
+        self.xvars = [m.new_bool_var(f"x{i}_{p + 1}") for i, p in zip(si, fp, strict=True)]
+        self.xidx = np.array([v.index for v in self.xvars], dtype=np.int64)
         self.cell_of: dict[tuple[int, int], int] = {
             (int(i), int(p)): k for k, (i, p) in enumerate(zip(si, fp, strict=True))
         }
@@ -162,7 +162,7 @@ class SubModel:
         self.n_amo = 0
         for a, b in zip(starts, ends, strict=True):
             if b - a > 1:
-                m.AddAtMostOne(self.xvars[a:b])
+                m.add_at_most_one(self.xvars[a:b])
                 self.n_amo += 1
         self.ovars: dict[tuple[int, int], cp_model.IntVar] = {}
         self.n_cover_clauses = 0
@@ -188,13 +188,13 @@ class SubModel:
                 self.row_tightening,
                 float(((coefs - dv[nz] * s).sum() + (rhs_real * s - rhs)) / s / max(r.scale_ref, 1)),
             )
-            m.Add(cp_model.LinearExpr.WeightedSum([self.xvars[k] for k in nz], coefs.tolist())
+            m.add(cp_model.LinearExpr.weighted_sum([self.xvars[k] for k in nz], coefs.tolist())
                   <= rhs)
             self.n_rows += 1
         # objective
         coef = scaling.int_value[si, fp]
         nzo = np.nonzero(coef)[0]
-        m.Maximize(cp_model.LinearExpr.WeightedSum([self.xvars[k] for k in nzo],
+        m.maximize(cp_model.LinearExpr.weighted_sum([self.xvars[k] for k in nzo],
                                                    coef[nzo].tolist()))
         if prep.unit and unit_edges:
             self._unit_clauses()
@@ -213,11 +213,11 @@ class SubModel:
         if len(ks) == 1:
             v = self.xvars[ks[0]]
         else:
-            v = self.m.NewBoolVar(f"o{i}_{p + 1}")
+            v = self.m.new_bool_var(f"o{i}_{p + 1}")
             xs = [self.xvars[k] for k in ks]
             for x in xs:
-                self.m.AddImplication(x, v)
-            self.m.AddBoolOr(xs).OnlyEnforceIf(v)
+                self.m.add_implication(x, v)
+            self.m.add_bool_or(xs).only_enforce_if(v)
         self.ovars[key] = v
         return v
 
@@ -256,12 +256,12 @@ class SubModel:
             if skip or not any_free:
                 continue
             if lits:
-                self.m.AddBoolOr([v.Not() for v in lits])
+                self.m.add_bool_or([~v for v in lits])
                 added += 1
             elif not fixed_new:
                 # Every stand of s is open from the start: no new harvest may join it.
                 for v in must_close:
-                    self.m.AddBoolOr([v.Not()])
+                    self.m.add_bool_or([~v])
                     added += 1
             # else: the base plan already breaks this cover outside the free stands.
         self.n_cover_clauses += added
@@ -290,17 +290,17 @@ class SubModel:
     def hint(self, period: np.ndarray) -> None:
         """Use ``period`` (values of the free stands) as the solution hint."""
         m = self.m
-        m.ClearHints()
+        m.clear_hints()
         per = np.asarray(period)
         on = per[self.cell_i] == self.cell_p + 1
         for v, b in zip(self.xvars, on.tolist(), strict=True):
-            m.AddHint(v, b)
+            m.add_hint(v, b)
         for (i, p), v in self.ovars.items():
-            if v.Index() in self._xset():
+            if v.index in self._xset():
                 continue
             g = int(self.prep.green[i])
             q = int(per[i])
-            m.AddHint(v, q > 0 and p - g + 1 <= q - 1 <= p)
+            m.add_hint(v, q > 0 and p - g + 1 <= q - 1 <= p)
 
     def _xset(self) -> set[int]:
         if not hasattr(self, "_xs"):
@@ -309,7 +309,7 @@ class SubModel:
 
     def size(self) -> dict:
         """Model size: variables and constraints."""
-        proto = self.m.Proto()
+        proto = self.m.proto
         return {"variables": len(proto.variables), "constraints": len(proto.constraints),
                 "x_vars": len(self.xvars), "rows": self.n_rows,
                 "cover_clauses": self.n_cover_clauses}
@@ -342,7 +342,7 @@ class SubModel:
 
                 def run() -> None:
                     try:
-                        box["st"] = solver.Solve(self.m, cb)
+                        box["st"] = solver.solve(self.m, cb)
                     except BaseException as exc:  # pragma: no cover - re-raised below
                         box["exc"] = exc
 
@@ -361,7 +361,7 @@ class SubModel:
                     raise box["exc"]
                 st = box["st"]
             else:
-                st = solver.Solve(self.m, cb)
+                st = solver.solve(self.m, cb)
         finally:
             if registry is not None:
                 registry["solver"] = None
@@ -370,11 +370,11 @@ class SubModel:
                 cp_model.INFEASIBLE: "infeasible", cp_model.MODEL_INVALID: "invalid"}.get(
             st, "unknown")
         if name in ("optimal", "feasible"):
-            sol = np.asarray(solver.ResponseProto().solution, dtype=np.int64)
+            sol = np.asarray(solver.response_proto.solution, dtype=np.int64)
             on = sol[self.xidx] > 0
             per = self.base.copy()
             per[self.cell_i[on]] = self.cell_p[on] + 1
-            return SolveOut(name, per, solver.ObjectiveValue(), solver.BestObjectiveBound(),
+            return SolveOut(name, per, solver.objective_value, solver.best_objective_bound,
                             wall)
-        bound = solver.BestObjectiveBound() if name == "unknown" else None
+        bound = solver.best_objective_bound if name == "unknown" else None
         return SolveOut(name, None, None, bound, wall)

@@ -14,6 +14,7 @@ from __future__ import annotations
 import dataclasses
 import time
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 
@@ -65,7 +66,7 @@ def is_feasible(problem: PlanProblem, time_limit_s: float = 5.0, workers: int = 
     return None
 
 
-def _flow(problem: PlanProblem, **kw: object) -> PlanProblem:
+def _flow(problem: PlanProblem, **kw: Any) -> PlanProblem:
     return dataclasses.replace(problem, flow=dataclasses.replace(problem.flow, **kw))
 
 
@@ -74,6 +75,12 @@ def _with_min_age(problem: PlanProblem, age: float) -> PlanProblem:
     t = (np.arange(1, problem.periods + 1) - 0.5) * problem.period_length_yr
     old = problem.age_start_yr[:, None] + t[None, :] >= age - 1e-9
     return dataclasses.replace(problem, eligible=base & old, min_age_yr=age)
+
+
+def _flow_check(feas: Callable[[PlanProblem], bool | None], pr: PlanProblem,
+                key: str) -> Callable[[float], bool | None]:
+    """Feasibility of ``pr`` with flow setting ``key`` at a value."""
+    return lambda x: feas(_flow(pr, **{key: x}))
 
 
 def _bisect(
@@ -224,7 +231,7 @@ def _detail(name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool 
         others = {k: None for k, *_ in pairs + tops if k != key}
         pr = _flow(problem, **others)
         if feas(_flow(pr, **{key: lo})):
-            v = _bisect(lambda x, k=key, p=pr: feas(_flow(p, **{k: x})), float(cur), lo)
+            v = _bisect(_flow_check(feas, pr, key), float(cur), lo)
             msgs.append(f"{label} {_fmt(cur)} {unit} is infeasible, {_fmt(v)} {unit} is feasible")
     for key, label, unit in tops:
         cur = getattr(fr, key)
@@ -232,10 +239,11 @@ def _detail(name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool 
             continue
         others = {k: None for k, *_ in pairs + tops if k != key}
         pr = _flow(problem, **others)
-        a = np.asarray(problem.area_ha, float)[:, None]
-        big = float((a * problem.volume_m3_ha).sum() if unit == "m3" else a.sum() *
-                    problem.periods) + 1.0
+        a_ha = np.asarray(problem.area_ha, float)[:, None]
+        total = (a_ha * problem.volume_m3_ha).sum() if unit == "m3" else (
+            a_ha.sum() * problem.periods)
+        big = float(total) + 1.0
         if feas(_flow(pr, **{key: big})):
-            v = _bisect(lambda x, k=key, p=pr: feas(_flow(p, **{k: x})), float(cur), big)
+            v = _bisect(_flow_check(feas, pr, key), float(cur), big)
             msgs.append(f"{label} {_fmt(cur)} {unit} is infeasible, {_fmt(v)} {unit} is feasible")
     return msgs or ["drop the period targets"]

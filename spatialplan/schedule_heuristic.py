@@ -133,10 +133,8 @@ def _assign_regret(st: SpatialState, price: np.ndarray, vol: np.ndarray, target:
     cand = cand[np.argsort(-regret[cand], kind="stable")]
     V = np.zeros(P)
     skips = 0
-    for i in cand:
-        i = int(i)
-        for pc in order_p[i]:
-            pc = int(pc)
+    for i in cand.tolist():
+        for pc in order_p[i].tolist():
             if not np.isfinite(price[i, pc]) or price[i, pc] <= 0:
                 break
             if V[pc] + vol[i, pc] > target[pc] + 0.5 * vol[i, pc]:
@@ -204,8 +202,7 @@ def _assign_sequential(st: SpatialState, price: np.ndarray, vol: np.ndarray,
         ok = np.nonzero(np.isfinite(price[:, pc]) & (price[:, pc] > 0) & (vol[:, pc] > 0))[0]
         ok = ok[np.lexsort((-vol[ok, pc], loss[ok, pc]))]
         v = 0.0
-        for i in ok:
-            i = int(i)
+        for i in ok.tolist():
             if st.period[i]:
                 continue
             if v >= target[pc] - 0.5 * vol[i, pc]:
@@ -231,15 +228,13 @@ def _assign_rounded(st: SpatialState, price: np.ndarray, lp_x: np.ndarray) -> in
     cand = cand[np.lexsort((-pf, -np.round(share[cand], 6)))]
     order_p = np.argsort(-price, axis=1)
     skips = 0
-    for i in cand:
-        i = int(i)
+    for i in cand.tolist():
         q = int(first[i])
         if st.can_add(i, q + 1):
             st.set(i, q + 1)
             continue
         skips += 1
-        for pc in order_p[i]:
-            pc = int(pc)
+        for pc in order_p[i].tolist():
             if not np.isfinite(price[i, pc]) or price[i, pc] <= 0:
                 break
             if pc != q and st.can_add(i, pc + 1):
@@ -342,7 +337,7 @@ def greedy_plan(
         for pc in range(P):
             ok = np.nonzero(np.isfinite(prio[:, pc]) & (prep.value[:, pc] > 0))[0]
             lists.append(ok[np.argsort(-prio[ok, pc], kind="stable")].tolist())
-        dead = [set() for _ in range(P)]
+        dead: list[set[int]] = [set() for _ in range(P)]
         progress = True
         while progress and time.perf_counter() < deadline:
             progress = False

@@ -71,6 +71,7 @@ class _State:
         self.fixed = [bytearray(prep.fixed_open[:, p].astype(np.uint8).tobytes())
                       for p in range(P)]
         self.open = [bytearray(b) for b in self.fixed]
+        self.hop = [bytearray(n) for _ in range(P)]  # harvest-open
         mx = prep.max_opening
         # A group at exactly the maximum is legal; keep a hair of room against summation order.
         self.mx = math.inf if mx is None else float(mx) * (1 - 1e-12)
@@ -125,6 +126,7 @@ class _State:
         P = self.P
         for p in range(q - 1, min(q - 1 + self.green[i], P)):
             self.open[p][i] = 1
+            self.hop[p][i] = 1
 
     def unset(self, i: int) -> None:
         """Leave stand ``i`` uncut."""
@@ -132,7 +134,66 @@ class _State:
         if q:
             for p in range(q - 1, min(q - 1 + self.green[i], self.P)):
                 self.open[p][i] = self.fixed[p][i]
+                self.hop[p][i] = 0
             self.period[i] = 0
+
+    def excess_near(self, p: int, i: int) -> tuple[float, int]:
+        """Over-size area and count of breaching groups in period ``p`` touching stand ``i``.
+
+        Only the groups that hold ``i`` or one of its neighbours can change when ``i``
+        changes, so the difference of this value before and after a change of ``i`` is the
+        change of the plan's total over-size area in ``p``.
+        """
+        col = self.open[p]
+        hop = self.hop[p]
+        nbrs = self.nbrs
+        area = self.area
+        mx = self.mx
+        exc = 0.0
+        bad = 0
+        seen: set[int] = set()
+        for s0 in (i, *nbrs[i]):
+            if not col[s0] or s0 in seen:
+                continue
+            seen.add(s0)
+            stack = [s0]
+            a = 0.0
+            h = 0
+            while stack:
+                kk = stack.pop()
+                a += area[kk]
+                h |= hop[kk]
+                for j in nbrs[kk]:
+                    if col[j] and j not in seen:
+                        seen.add(j)
+                        stack.append(j)
+            if h and a > mx:
+                exc += a - mx
+                bad += 1
+        return exc, bad
+
+    def move_soft(self, i: int, qn: int) -> tuple[float, int]:
+        """Give stand ``i`` period ``qn``; returns the change of over-size area and groups."""
+        qo = self.period[i]
+        g = self.green[i]
+        P = self.P
+        d_exc = 0.0
+        d_bad = 0
+        lo = min(qo - 1 if qo else P, qn - 1 if qn else P)
+        hi = max(min(qo - 1 + g, P) if qo else 0, min(qn - 1 + g, P) if qn else 0)
+        for p in range(lo, hi):
+            was = 1 if qo and qo - 1 <= p < qo - 1 + g else 0
+            now = 1 if qn and qn - 1 <= p < qn - 1 + g else 0
+            if was == now:
+                continue
+            e0, b0 = self.excess_near(p, i)
+            self.hop[p][i] = now
+            self.open[p][i] = now | self.fixed[p][i]
+            e1, b1 = self.excess_near(p, i)
+            d_exc += e1 - e0
+            d_bad += b1 - b0
+        self.period[i] = qn
+        return d_exc, d_bad
 
     def can_add(self, i: int, q: int) -> bool:
         """True when harvesting uncut stand ``i`` in period ``q`` keeps every opening legal."""
@@ -179,10 +240,13 @@ def anneal(
     round_moves: int | None = None,
     max_rounds: int = 1000,
     patience: int = 3,
-    t_start: float = 0.05,
-    t_end: float = 0.0005,
+    t_start: float = 0.5,
+    t_end: float = 0.002,
     lam_start: float = 0.5,
     lam_end: float = 8.0,
+    soft: bool = False,
+    mu_start: float = 1.0,
+    mu_end: float = 30.0,
     stop: Callable[[], bool] | None = None,
     on_best: Callable[[np.ndarray, float], None] | None = None,
 ) -> AnnealResult:
@@ -199,7 +263,7 @@ def anneal(
     deadline
         ``time.perf_counter()`` value at which to stop (checked every few thousand moves).
     round_moves
-        Moves per cooling round (default ``max(20_000, 150 n)``).
+        Moves per cooling round (default ``max(50_000, 400 n)``).
     max_rounds, patience
         Stop after ``max_rounds`` rounds, or after ``patience`` rounds in a row without a
         better plan.
@@ -208,6 +272,12 @@ def anneal(
     lam_start, lam_end
         Weight of the row penalty at the start and end of a round (1 = one typical
         stand's excess costs one typical stand's value).
+    soft, mu_start, mu_end
+        With ``soft`` (area restriction without unit restriction only), a move may also
+        make openings over-size; the over-size area is then a penalty of weight ``mu`` (1 =
+        an excess of one maximum opening costs one typical stand's value), rising from
+        ``mu_start`` to ``mu_end`` within a round. Only plans with no over-size opening
+        are recorded. Without it, every move must keep the openings legal.
     stop
         Called every few thousand moves; ``True`` stops the search (Ctrl-C, gap reached).
     on_best
@@ -230,8 +300,9 @@ def anneal(
     best_vals = [max(st.val[i]) for i in movable]
     unit = float(np.mean([v for v in best_vals if v > 0])) if any(
         v > 0 for v in best_vals) else 1.0
-    moves_per_round = int(round_moves or max(20_000, 150 * n))
+    moves_per_round = int(round_moves or max(50_000, 400 * n))
     D, cap, k = st.D, st.cap, st.k
+    soft = bool(soft and prep.max_opening is not None and not prep.unit)
     best_npv = start_npv
     best_period = list(st.period)
     idle = 0
@@ -250,6 +321,7 @@ def anneal(
         st.recompute()
         cur = best_npv
         round_best = best_npv
+        bad = 0  # over-size openings in the current plan (the best plan has none)
         lhs = st.lhs
         done = 0
         while done < moves_per_round:
@@ -261,10 +333,8 @@ def anneal(
             temp = unit * t_start * (t_end / t_start) ** frac
             lam = lam_start * (lam_end / lam_start) ** frac
             wl = (lam * unit) / st.row_unit
-            if k:
-                pen = float(np.maximum(lhs - cap, 0.0) @ wl)
-            else:
-                pen = 0.0
+            wm = (mu_start * (mu_end / mu_start) ** frac) * unit / st.mx if soft else 0.0
+            pen = float(np.maximum(lhs - cap, 0.0) @ wl) if k else 0.0
             r_stand = rng.integers(0, n_mov, BLOCK).tolist()
             r_type = rng.random(BLOCK).tolist()
             r_opt = rng.random(BLOCK).tolist()
@@ -316,7 +386,32 @@ def anneal(
                 else:
                     npen = 0.0
                     delta = dv
-                if delta < 0.0 and r_acc[b] >= math.exp(delta * inv_t):
+                if (bad == 0 or not soft) and delta < 0.0 and r_acc[b] >= math.exp(
+                        delta * inv_t):
+                    # With no over-size opening the spatial change can only add penalty,
+                    # so the move fails the test whatever it does to the openings.
+                    continue
+                if soft:
+                    de, db = st.move_soft(i, qn)
+                    if j >= 0:
+                        de2, db2 = st.move_soft(j, qi)
+                        de += de2
+                        db += db2
+                    tot = delta - wm * de
+                    if tot < 0.0 and r_acc[b] >= math.exp(tot * inv_t):
+                        if j >= 0:
+                            st.move_soft(j, qn)
+                        st.move_soft(i, qi)
+                        continue
+                    bad += db
+                    accepted += 1
+                    cur += dv
+                    pen = npen
+                    if k:
+                        lhs = nl
+                    if bad == 0 and npen == 0.0 and cur > round_best + 1e-9 * abs(round_best):
+                        round_best = cur
+                        best_period = list(period)
                     continue
                 # spatial test, applying the move
                 if j < 0:

@@ -8,10 +8,9 @@ spatial rule, so its optimum is an upper bound on the NPV of every legal plan.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import os
 import sys
+from dataclasses import dataclass
 
 import highspy
 import numpy as np

@@ -447,15 +447,14 @@ def enumerate_covers(
     if mx is None:
         return []
     area = prep.opening_area
-    nb = [prep.neighbours(i).tolist() for i in range(prep.n)] if prep.n <= 200_000 else None
+    nb = [prep.neighbours(i).tolist() for i in range(prep.n)]
     is_root = np.zeros(prep.n, dtype=bool)
     is_root[np.asarray(roots, dtype=np.int64)] = True
     out: list[frozenset[int]] = []
     # Every set S has a unique smallest member v; enumerate sets whose smallest member is
     # any allowed stand v within reach of a root (a cover must contain a root).
-    cand_v = set()
-    for r in np.nonzero(is_root & allowed)[0]:
-        r = int(r)
+    cand_v: set[int] = set()
+    for r in np.nonzero(is_root & allowed)[0].tolist():
         cand_v.add(r)
         # members of a cover through r lie within a few hops; the smallest may be a neighbour
         frontier = [r]

@@ -125,10 +125,10 @@ def _new_covers(ctx: SearchCtx, period: np.ndarray, breaches: list) -> int:
 
 def _ball(prep: Prep, seed: int, size: int, extra: np.ndarray | None = None) -> np.ndarray:
     """Breadth-first ball of ``size`` stands with eligible cells around ``seed``."""
-    has = prep.eligible.any(axis=1)
+    has = np.asarray(prep.eligible.any(axis=1), dtype=bool)
     seen = {seed}
     dq = deque([seed])
-    out = []
+    out: list[int] = []
     while dq and len(out) < size:
         i = dq.popleft()
         if has[i]:
@@ -210,7 +210,7 @@ def _repair(ctx: SearchCtx, period: np.ndarray, breaches: list) -> None:
         for i in grp:
             stands.add(int(i))
             stands.update(int(j) for j in prep.neighbours(int(i)))
-    has = prep.eligible.any(axis=1)
+    has = np.asarray(prep.eligible.any(axis=1), dtype=bool)
     free = np.array(sorted(i for i in stands if has[i]), dtype=np.int64)
     if free.size == 0:
         return

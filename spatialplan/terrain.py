@@ -823,36 +823,12 @@ def net_area(
 
 
 def _read_streams(path: Path, layer: str | None) -> gpd.GeoDataFrame:
-    if not path.exists():
-        msg = f"streams file not found: {path}"
-        raise InputError(msg)
-    try:
-        import pyogrio
+    from spatialplan.inventory import read_vector_layer
 
-        names = [str(r[0]) for r in pyogrio.list_layers(path)]
-    except Exception as exc:
-        msg = f"streams file {path} is not a vector layer GDAL can read ({_short(exc)})"
-        raise InputError(msg) from None
-    if not names:
-        msg = f"streams file {path} contains no layers"
-        raise InputError(msg)
-    if layer is not None and layer not in names:
-        msg = f"layer '{layer}' not found in streams file {path}; layers there: {', '.join(names)}"
-        raise InputError(msg)
-    if layer is None and len(names) > 1:
-        msg = (
-            f"streams file {path} has {len(names)} layers; say which holds the streams with "
-            f"terrain.streams_layer: {', '.join(names)}"
-        )
-        raise InputError(msg)
-    try:
-        gdf = gpd.read_file(path, layer=layer, engine="pyogrio")
-    except Exception as exc:
-        msg = f"cannot read streams file {path}: {_short(exc)}"
-        raise InputError(msg) from None
-    if not isinstance(gdf, gpd.GeoDataFrame) or gdf.geometry.name not in gdf.columns:
-        msg = f"streams file {path} has no geometry; a line layer is expected"
-        raise InputError(msg)
+    gdf, _ = read_vector_layer(
+        path, layer, what="streams file", holds="the streams",
+        layer_hint="terrain.streams_layer", expect="a line layer is expected",
+    )
     if gdf.crs is None:
         msg = f"streams file {path} has no CRS; assign one in a GIS before using it"
         raise InputError(msg)
