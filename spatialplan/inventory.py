@@ -40,9 +40,11 @@ __all__ = [
     "find_overlaps",
     "list_vector_layers",
     "match_strata",
+    "polygon_area_ha",
     "read_stands",
     "read_vector_layer",
     "text_key",
+    "unit_to_metre",
 ]
 
 log = logging.getLogger(__name__)
@@ -390,14 +392,12 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
     work = gpd.GeoSeries(geom, index=gdf.index, crs=src_crs)
     if work_crs != src_crs:
         work = work.to_crs(work_crs)
-    unit_factor = _unit_to_metre(work_crs)
-    if src_crs.is_geographic:
-        # Geodesic area on the CRS's ellipsoid: exact, unlike any single projection.
-        area_m2 = pd.Series(_geodesic_area_m2(geom, src_crs), index=gdf.index)
-    else:
-        area_m2 = pd.Series(np.asarray(shapely.area(work.values), dtype=float), index=gdf.index)
-        area_m2 = area_m2 * unit_factor**2
-    area_ha = area_m2 / 10_000.0
+    unit_factor = unit_to_metre(work_crs)
+    area_ha = pd.Series(
+        polygon_area_ha(geom, src_crs) if src_crs.is_geographic
+        else polygon_area_ha(work.values, work_crs),
+        index=gdf.index,
+    )
     empty_now = ~null & ~wrong & (shapely.is_empty(work.values) | (area_ha <= 0))
     if null.any():
         problems.append(
@@ -503,16 +503,25 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
     return InventoryResult(stands, attributes, src_crs, work_crs, path, layer, problems, fields)
 
 
-def _geodesic_area_m2(geoms: np.ndarray, crs: CRS) -> np.ndarray:
-    geod = crs.get_geod() or Geod(ellps="WGS84")
-    out = np.zeros(len(geoms))
-    for i, g in enumerate(geoms):
-        if g is not None and not g.is_empty and g.geom_type in ("Polygon", "MultiPolygon"):
-            out[i] = abs(geod.geometry_area_perimeter(g)[0])
-    return out
+def polygon_area_ha(geoms: np.ndarray, crs: CRS) -> np.ndarray:
+    """Areas in hectares: geodesic on the ellipsoid for degrees, planar otherwise.
+
+    Planar areas are converted from the CRS's linear unit (feet, ...) to metres.
+    """
+    geoms = np.asarray(geoms, dtype=object)
+    if crs.is_geographic:
+        # Exact on the CRS's ellipsoid, unlike any single projection.
+        geod = crs.get_geod() or Geod(ellps="WGS84")
+        out = np.zeros(len(geoms))
+        for i, g in enumerate(geoms):
+            if g is not None and not g.is_empty and g.geom_type in ("Polygon", "MultiPolygon"):
+                out[i] = abs(geod.geometry_area_perimeter(g)[0])
+        return out / 10_000.0
+    return np.asarray(shapely.area(geoms), dtype=float) * unit_to_metre(crs) ** 2 / 10_000.0
 
 
-def _unit_to_metre(crs: CRS) -> float:
+def unit_to_metre(crs: CRS) -> float:
+    """Length of the CRS's first axis unit in metres (1 when unknown)."""
     try:
         f = crs.axis_info[0].unit_conversion_factor
         return float(f) if f else 1.0

@@ -943,23 +943,15 @@ def _stand_ids(stands: pd.DataFrame) -> np.ndarray:
 
 
 def _area_ha(stands: gpd.GeoDataFrame) -> np.ndarray:
-    crs = CRS.from_user_input(stands.crs)
-    if crs.is_geographic:
-        geod = crs.get_geod()
-        assert geod is not None
-        return np.array(
-            [abs(geod.geometry_area_perimeter(g)[0]) if g is not None else np.nan
-             for g in stands.geometry.values]
-        ) / 10_000.0
-    return shapely.area(np.asarray(stands.geometry.values)) * _unit_to_metre(crs) ** 2 / 10_000.0
+    from spatialplan.inventory import polygon_area_ha
+
+    return polygon_area_ha(np.asarray(stands.geometry.values), CRS.from_user_input(stands.crs))
 
 
 def _unit_to_metre(crs: CRS) -> float:
-    try:
-        f = crs.axis_info[0].unit_conversion_factor
-        return float(f) if f else 1.0
-    except (IndexError, AttributeError):
-        return 1.0
+    from spatialplan.inventory import unit_to_metre
+
+    return unit_to_metre(crs)
 
 
 def _with_ids(text: str, ids: np.ndarray) -> str:
