@@ -467,8 +467,8 @@ def build_adjacency(
     graph.add_edges_from(
         (int(i), int(j), {"shared_m": float(s)}) for (i, j), s in zip(edges, shared_m, strict=True)
     )
-    for w in warnings:
-        log.warning(w)
+    for w in warnings:  # callers report the returned warnings; log only for debugging
+        log.debug(w)
     return AdjacencyResult(
         graph=graph,
         edges=edges,

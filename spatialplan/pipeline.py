@@ -208,7 +208,8 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
         st.geometry, s.adjacency.min_shared_edge_m, s.adjacency.gap_tolerance_m,
         s.adjacency.corner_adjacency, ids=st["stand_id"].tolist(),
     )
-    messages.extend(adj.warnings)
+    # Overlaps are already reported (with their areas) by the inventory check.
+    messages.extend(w for w in adj.warnings if "overlap" not in w)
     start_vol = float((inputs.growth.volume(strata, age0) * net_area).sum())
     npv_ha = values.npv_per_ha
     end_vol = values.ending_volume_m3_ha
