@@ -1,4 +1,4 @@
-"""The spatial harvest scheduler: LP bound, heuristic, CP-SAT with lazy covers, spatial LNS.
+"""The spatial harvest scheduler: LP bound, heuristic, local search, CP-SAT with lazy covers.
 
 Public entry points:
 
@@ -13,12 +13,15 @@ How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling mod
 1. LP bound with HiGHS; its dual prices rank the periods of every stand.
 2. Regret greedy with incremental opening checks, flow repair and fill: a legal plan
    within seconds (:mod:`spatialplan.schedule_heuristic`).
-3. Improvement with real CP-SAT (:mod:`spatialplan.schedule_cpsat`): on small and medium
-   models the full model with minimal cover clauses added lazily in rounds (each returned
+3. Simulated annealing over stand-period assignments with hard opening checks and
+   penalised rule rows (:mod:`spatialplan.schedule_local`): on large models until the
+   deadline, on small and medium ones for a share of the time.
+4. Small and medium models: CP-SAT (:mod:`spatialplan.schedule_cpsat`) on the full model
+   hinted with the best plan, minimal cover clauses added lazily in rounds (each returned
    plan is checked, its over-size openings become clauses, near-legal plans are repaired in
-   a small window); on large models spatial large neighbourhood search over windows of
-   the adjacency graph (:mod:`spatialplan.schedule_search`).
-4. The final plan is re-checked in float64 against every rule.
+   a small window); it gives the bound and proves optimality on small instances. Spatial
+   CP-SAT LNS (:mod:`spatialplan.schedule_search`) remains available for benchmarks.
+5. The final plan is re-checked in float64 against every rule.
 
 The empty plan: when the rules allow it (with default even flow ``0 <= 0`` holds) harvesting
 nothing is a legal plan and may be returned when nothing better was found in time, but

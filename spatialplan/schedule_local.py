@@ -257,7 +257,9 @@ def anneal(
     prep
         Pre-computed problem.
     start
-        (n,) legal plan to start from (checked by the caller).
+        (n,) legal plan to start from (checked by the caller). Only plans meeting every
+        rule are recorded as best, so a start that breaks a row is returned unchanged
+        when no legal plan is found.
     seed
         Seed of the random moves; with the same seed and move budget the result is the same.
     deadline
@@ -277,7 +279,9 @@ def anneal(
         make openings over-size; the over-size area is then a penalty of weight ``mu`` (1 =
         an excess of one maximum opening costs one typical stand's value), rising from
         ``mu_start`` to ``mu_end`` within a round. Only plans with no over-size opening
-        are recorded. Without it, every move must keep the openings legal.
+        are recorded. Without it, every move must keep the openings legal. Experimental:
+        on small instances with tight openings it often ends its rounds with an over-size
+        opening and records nothing; off by default.
     stop
         Called every few thousand moves; ``True`` stops the search (Ctrl-C, gap reached).
     on_best
