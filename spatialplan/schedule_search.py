@@ -175,9 +175,12 @@ def lazy_rounds(
         ctx.stats["cpsat_time_s"] = ctx.stats.get("cpsat_time_s", 0.0) + out.wall_s
         if out.status == "infeasible":
             return "infeasible"
-        if full and out.bound_int is not None:
+        if full and out.bound_int is not None and out.status in ("optimal", "feasible"):
+            # Only a search that reached a solution reports a proven bound; a bound below a
+            # legal plan already found cannot be one (an unfinished call reports junk).
             b = out.bound_int / ctx.scaling.s_obj + ctx.scaling.total_error_bound
-            ctx.cpsat_bound = b if ctx.cpsat_bound is None else min(ctx.cpsat_bound, b)
+            if b >= ctx.best_npv - 1e-6 * max(abs(ctx.best_npv), 1.0):
+                ctx.cpsat_bound = b if ctx.cpsat_bound is None else min(ctx.cpsat_bound, b)
         if out.period is None:
             slice_s *= 2
             continue

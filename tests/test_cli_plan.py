@@ -55,6 +55,9 @@ def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Pat
     assert run["verify_verdict"].startswith("PASS")
     assert float(run["npv"]) == pytest.approx(sched["value"].sum(), rel=1e-6)
     assert float(run["lp_bound"]) >= float(run["npv"]) - 1e-6
+    # A bound is an upper bound: never below a legal plan's value.
+    if run["cpsat_bound"]:
+        assert float(run["cpsat_bound"]) >= float(run["npv"]) * (1 - 1e-6)
     # The independent checker agrees when run on the file.
     res = CliRunner().invoke(cli, ["verify", str(out)])
     assert res.exit_code == 0, res.output
