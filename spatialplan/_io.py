@@ -9,7 +9,7 @@ import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 
-__all__ = ["atomic_path", "sha256_file"]
+__all__ = ["atomic_path", "sha256_file", "write_text_atomic"]
 
 
 @contextlib.contextmanager
@@ -54,3 +54,18 @@ def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
         while block := f.read(chunk):
             h.update(block)
     return h.hexdigest()
+
+
+def write_text_atomic(path: str | Path, text: str, what: str) -> None:
+    """Write UTF-8 ``text`` to ``path`` atomically; an OS failure becomes an OutputError.
+
+    ``what`` names the file in the message (``"map"``, ``"report"`` ...).
+    """
+    from spatialplan.errors import OutputError
+
+    try:
+        with atomic_path(path) as tmp:
+            tmp.write_text(text, encoding="utf-8")
+    except OSError as exc:
+        msg = f"cannot write {what} {path}: {exc}"
+        raise OutputError(msg) from exc

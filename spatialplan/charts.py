@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import matplotlib
 
 matplotlib.use("Agg")
@@ -109,17 +111,10 @@ def rotation_chart(curves: RotationCurves, path: str | Path, title: str | None =
     ax2.legend(loc="upper right", fontsize=9)
     ax2.set_title("Value growth and the discount rate", fontsize=11, loc="left")
 
-    path = Path(path)
-    try:
-        with atomic_path(path, suffix=".png") as tmp:
-            fig.savefig(tmp, format="png", dpi=110)
-    finally:
-        plt.close(fig)
-    return path
+    return _save(fig, Path(path))
 
 
 # --- plan charts ---
-from typing import Any  # noqa: E402
 
 __all__ += ["age_class_areas", "plan_charts"]
 
@@ -133,6 +128,7 @@ def age_class_areas(
 
 
 def _save(fig: Any, path: Path) -> Path:
+    """Write ``fig`` as PNG atomically and close it."""
     try:
         with atomic_path(path, suffix=".png") as tmp:
             fig.savefig(tmp, format="png", dpi=110)

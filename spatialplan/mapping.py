@@ -23,7 +23,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 
-from spatialplan._io import atomic_path
+from spatialplan._io import write_text_atomic
 from spatialplan.errors import OutputError, SettingsError
 from spatialplan.outputs import (
     NOT_HARVESTED_COLOUR,
@@ -342,9 +342,4 @@ def write_map(
     if bad and not basemap:  # a folium change must not quietly bring back CDN links
         msg = f"internal error: the map would load web resources: {bad[:3]}"
         raise RuntimeError(msg)
-    try:
-        with atomic_path(path) as tmp:
-            tmp.write_text(text, encoding="utf-8")
-    except OSError as exc:
-        msg = f"cannot write map {path}: {exc}"
-        raise OutputError(msg) from exc
+    write_text_atomic(path, text, "map")

@@ -17,8 +17,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from spatialplan._io import atomic_path
-from spatialplan.errors import OutputError
+from spatialplan._io import write_text_atomic
 
 __all__ = ["CAUTIONS", "review_paths", "write_report", "write_review_files"]
 
@@ -242,12 +241,7 @@ pre{{background:#f7f7f7;padding:.5rem;overflow:auto;font-size:.8rem}}
 {settings_block}
 </body></html>
 """
-    try:
-        with atomic_path(path) as tmp:
-            tmp.write_text(page, encoding="utf-8")
-    except OSError as exc:
-        msg = f"cannot write report {path}: {exc}"
-        raise OutputError(msg) from exc
+    write_text_atomic(path, page, "report")
 
 
 def review_paths(gpkg: str | Path, out_html: str | Path | None = None) -> dict[str, Path]:
