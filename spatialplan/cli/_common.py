@@ -19,6 +19,7 @@ __all__ = [
     "SETTINGS_FLAGS",
     "console",
     "ensure_output_path",
+    "flag_overrides",
     "handle_errors",
     "run_cli",
     "settings_from_flags",
@@ -95,10 +96,10 @@ def settings_options(names: list[str]) -> Callable[[Callable[..., Any]], Callabl
     return deco
 
 
-def settings_from_flags(settings_path: str | None, kwargs: dict[str, Any]) -> Settings:
-    """Load settings from ``--settings`` and apply the flags found in ``kwargs``.
+def flag_overrides(kwargs: dict[str, Any]) -> dict[str, Any]:
+    """Dotted settings keys for the settings flags in ``kwargs`` (consumed from it).
 
-    Consumed keys are removed from ``kwargs``.
+    Flags that were not given map to ``None``, which ``Settings.with_overrides`` skips.
     """
     overrides: dict[str, Any] = {}
     for name, (key, _tp, _h) in SETTINGS_FLAGS.items():
@@ -113,6 +114,15 @@ def settings_from_flags(settings_path: str | None, kwargs: dict[str, Any]) -> Se
         if py in kwargs:
             val = kwargs.pop(py)
             overrides[key] = True if val else None
+    return overrides
+
+
+def settings_from_flags(settings_path: str | None, kwargs: dict[str, Any]) -> Settings:
+    """Load settings from ``--settings`` and apply the flags found in ``kwargs``.
+
+    Consumed keys are removed from ``kwargs``.
+    """
+    overrides = flag_overrides(kwargs)
     try:
         return load_settings(settings_path, overrides)
     except SettingsError as exc:

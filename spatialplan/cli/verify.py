@@ -6,7 +6,7 @@ from typing import Any
 
 import click
 
-from spatialplan.cli._common import _BOOL_FLAGS, SETTINGS_FLAGS, settings_options
+from spatialplan.cli._common import flag_overrides, settings_options
 
 _FLAGS = [
     "id-field",
@@ -25,24 +25,6 @@ _FLAGS = [
     "unit-restriction",
     "non-declining",
 ]
-
-
-def _flag_overrides(kwargs: dict[str, Any]) -> dict[str, Any]:
-    """Dotted settings keys of the flags that were given (flags not given are None)."""
-    out: dict[str, Any] = {}
-    for name in _FLAGS:
-        py = name.replace("-", "_")
-        val = kwargs.pop(py, None)
-        if val is None:
-            continue
-        if name in SETTINGS_FLAGS:
-            key = SETTINGS_FLAGS[name][0]
-            if name == "yield-keys":
-                val = tuple(v.strip() for v in str(val).split(",") if v.strip())
-            out[key] = val
-        else:
-            out[_BOOL_FLAGS[name][0]] = True if val else None
-    return out
 
 
 @click.command("verify")
@@ -74,7 +56,7 @@ def command(
     from spatialplan.settings import load_settings
     from spatialplan.verify import read_plan, verify_schedule
 
-    overrides = _flag_overrides(kwargs)
+    overrides = flag_overrides(kwargs)
     given = load_settings(settings_path, overrides) if settings_path is not None else None
     schedule, settings, table = read_plan(plan_path, overrides, yields_path, settings=given)
     if settings is None:
