@@ -9,8 +9,7 @@ averaging ~12 ha, clumped ages 1-120, 5 strata) with yields from
 :func:`spatialplan.synthetic.synthetic_yield_table`; 10 five-year periods, 40 ha maximum
 opening, 2-period green-up, +-10 % even flow, minimum age 40, r = 0.04, price 50 per m3.
 The problem is built here directly (volume interpolated at mid-period age, value = volume x
-price x (1 + r)^-((p - 0.5) L), edges where stands share more than 1 m of boundary), unless
-``--pipeline`` is given, which goes through ``spatialplan.pipeline.problem_from_frames``.
+price x (1 + r)^-((p - 0.5) L), edges where stands share more than 1 m of boundary).
 Each result prints as one JSON line (ratio of NPV to the LP bound at 5, 15, 30, 60, 120 s
 from the progress reports, model size, peak memory, what the local search did) and, with
 ``--json``, all results are written to a file.
@@ -108,7 +107,7 @@ def run_one(n: int, seed: int, time_limit: float, workers: int, strategy: str,
             trace: bool) -> dict:
     """Build and solve one instance; return the measurements."""
     from spatialplan.schedule import solve
-    from spatialplan.schedule_model import check_plan, prepare
+    from spatialplan.schedule.model import check_plan, prepare
 
     t0 = time.perf_counter()
     prob = make_problem(n, seed)

@@ -13,7 +13,6 @@ __all__ = [
     "NoSolutionError",
     "OutputError",
     "SettingsError",
-    "SolverError",
     "SpatialPlanError",
 ]
 
@@ -50,9 +49,3 @@ class NoSolutionError(SpatialPlanError):
     """The solver stopped (time limit, interrupt) before it found any feasible plan."""
 
     exit_code = 3
-
-
-class SolverError(SpatialPlanError):
-    """The solver failed for a reason other than infeasibility or time."""
-
-    exit_code = 4

@@ -602,10 +602,6 @@ class GrowthModel:
         """True when ``label`` has a volume curve."""
         return label in self.volume_cr or (self.table is not None and self.table.has_stratum(label))
 
-    def is_parametric(self, label: str) -> bool:
-        """True when the stratum's volume comes from a Chapman-Richards curve."""
-        return label in self.volume_cr
-
     def volume(self, strata: object, ages: object) -> np.ndarray:
         """Volume in m3/ha, vectorised over (n,) strata and (n,) or (n, P) ages.
 

@@ -33,7 +33,6 @@ __all__ = [
     "PlanOutcome",
     "build_problem",
     "load_inputs",
-    "problem_from_frames",
     "run_plan",
     "schedule_frame",
     "write_plan",
@@ -256,27 +255,6 @@ def _with_ending_value(problem: PlanProblem, values: Any) -> PlanProblem:
     ev = values.ending_value_per_ha * values.ending_discount
     delta = ev[:, 1:] - ev[:, [0]]
     return dataclasses.replace(problem, npv_per_ha=problem.npv_per_ha + delta)
-
-
-def problem_from_frames(
-    stands: gpd.GeoDataFrame, yields: pd.DataFrame, settings: Settings
-) -> tuple[PlanProblem, PlanBundle]:
-    """Build a problem from in-memory frames (tests, benchmarks).
-
-    ``stands`` needs the mapped id, age and yield-key fields in a projected CRS; it is
-    written to a temporary GeoPackage and read back through the same validation as files.
-    """
-    import tempfile
-
-    with tempfile.TemporaryDirectory() as td:
-        sp = Path(td) / "stands.gpkg"
-        yp = Path(td) / "yields.csv"
-        stands.to_file(sp, layer="stands", driver="GPKG")
-        yields.to_csv(yp, index=False)
-        inputs = load_inputs(sp, yp, dataclasses.replace(
-            settings, fields=dataclasses.replace(settings.fields, layer="stands")))
-        bundle = build_problem(inputs)
-    return bundle.problem, bundle
 
 
 def schedule_frame(inputs: PlanInputs, bundle: PlanBundle, period: np.ndarray) -> gpd.GeoDataFrame:

@@ -321,7 +321,7 @@ def test_ctrl_c_returns_best_plan_marked_interrupted() -> None:
     assert rule_breaks(pr, res.period) == []
 
 
-# ---- local search (spatialplan.schedule_local) ------------------------------------------
+# ---- local search (spatialplan.schedule.anneal) ------------------------------------------
 def _local_cases() -> list[PlanProblem]:
     gdf = voronoi_forest(8, seed=4, mean_area_ha=10.0)
     area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
@@ -339,8 +339,8 @@ def _local_cases() -> list[PlanProblem]:
 
 @pytest.mark.parametrize("soft", [False, True])
 def test_local_search_plans_pass_independent_checker(soft: bool) -> None:
-    from spatialplan.schedule_local import anneal
-    from spatialplan.schedule_model import plan_npv, prepare
+    from spatialplan.schedule.anneal import anneal
+    from spatialplan.schedule.model import plan_npv, prepare
 
     for k, pr in enumerate(_local_cases()):
         prep = prepare(pr)
@@ -371,8 +371,8 @@ def _voronoi_problem(n: int, seed: int, periods: int = 5) -> PlanProblem:
 
 
 def test_local_search_is_deterministic_for_a_seed() -> None:
-    from spatialplan.schedule_local import anneal
-    from spatialplan.schedule_model import prepare
+    from spatialplan.schedule.anneal import anneal
+    from spatialplan.schedule.model import prepare
 
     pr = _voronoi_problem(80, 3)
     prep = prepare(pr)
@@ -386,10 +386,10 @@ def test_local_search_is_deterministic_for_a_seed() -> None:
 
 
 def test_local_search_never_worsens_the_start() -> None:
-    from spatialplan.schedule_heuristic import greedy_plan
-    from spatialplan.schedule_local import anneal
-    from spatialplan.schedule_lp import solve_lp
-    from spatialplan.schedule_model import plan_npv, prepare
+    from spatialplan.schedule.anneal import anneal
+    from spatialplan.schedule.bound import solve_lp
+    from spatialplan.schedule.construct import greedy_plan
+    from spatialplan.schedule.model import plan_npv, prepare
 
     pr = _voronoi_problem(120, 6)
     prep = prepare(pr)

@@ -2,7 +2,7 @@
 
 One Boolean ``x[i, p]`` per eligible (stand, period) and ``AtMostOne`` per stand. The
 opening rules are *cover* clauses over minimal over-size connected stand sets, generated
-lazily from the plans CP-SAT proposes (see :func:`spatialplan.schedule_model.extract_covers`):
+lazily from the plans CP-SAT proposes (see :func:`spatialplan.schedule.model.extract_covers`):
 for a set ``S`` and period ``p`` the clause says "not every stand of ``S`` is open in
 ``p``". Openness of a stand in ``p`` is a Boolean ``o[i, p]`` equal to the OR of the
 ``x[i, q]`` with ``p - G_i + 1 <= q <= p`` (made only when a clause needs it; when the
@@ -32,7 +32,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from ortools.sat.python import cp_model
 
-from spatialplan.schedule_model import Prep
+from spatialplan.schedule.model import Prep
 
 __all__ = ["CoverPool", "Scaling", "SubModel", "make_scaling"]
 

@@ -26,8 +26,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from spatialplan.schedule_cpsat import CoverPool, Scaling, SubModel
-from spatialplan.schedule_model import (
+from spatialplan.schedule.cpsat import CoverPool, Scaling, SubModel
+from spatialplan.schedule.model import (
     Prep,
     check_plan,
     extract_covers,

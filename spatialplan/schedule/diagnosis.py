@@ -26,11 +26,11 @@ __all__ = ["diagnose", "is_feasible"]
 
 def is_feasible(problem: PlanProblem, time_limit_s: float = 5.0, workers: int = 2) -> bool | None:
     """Quick feasibility check: ``True``, ``False`` or ``None`` (undecided in time)."""
-    from spatialplan.schedule_cpsat import CoverPool, SubModel, make_scaling
-    from spatialplan.schedule_heuristic import greedy_plan
-    from spatialplan.schedule_lp import solve_lp
-    from spatialplan.schedule_model import check_plan, prepare
-    from spatialplan.schedule_search import SearchCtx, lazy_rounds, seed_pair_covers
+    from spatialplan.schedule.bound import solve_lp
+    from spatialplan.schedule.construct import greedy_plan
+    from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
+    from spatialplan.schedule.model import check_plan, prepare
+    from spatialplan.schedule.windows import SearchCtx, lazy_rounds, seed_pair_covers
 
     t0 = time.perf_counter()
     prep = prepare(problem)

@@ -17,7 +17,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from spatialplan.problem import PlanProblem
-from spatialplan.schedule_model import Row, build_rows
+from spatialplan.schedule.model import Row, build_rows
 
 __all__ = ["LpResult", "lp_bound", "solve_lp"]
 
@@ -100,7 +100,7 @@ def solve_lp(
     problem
         The instance.
     rows
-        Linear rules (defaults to :func:`~spatialplan.schedule_model.build_rows`).
+        Linear rules (defaults to :func:`~spatialplan.schedule.model.build_rows`).
     eligible
         (n, P) cells that get a variable (defaults to ``problem.eligible``).
     objective

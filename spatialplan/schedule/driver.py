@@ -12,15 +12,15 @@ How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling mod
 
 1. LP bound with HiGHS; its dual prices rank the periods of every stand.
 2. Regret greedy with incremental opening checks, flow repair and fill: a legal plan
-   within seconds (:mod:`spatialplan.schedule_heuristic`).
+   within seconds (:mod:`spatialplan.schedule.construct`).
 3. Simulated annealing over stand-period assignments with hard opening checks and
-   penalised rule rows (:mod:`spatialplan.schedule_local`): on large models until the
+   penalised rule rows (:mod:`spatialplan.schedule.anneal`): on large models until the
    deadline, on small and medium ones for a share of the time.
-4. Small and medium models: CP-SAT (:mod:`spatialplan.schedule_cpsat`) on the full model
+4. Small and medium models: CP-SAT (:mod:`spatialplan.schedule.cpsat`) on the full model
    hinted with the best plan, minimal cover clauses added lazily in rounds (each returned
    plan is checked, its over-size openings become clauses, near-legal plans are repaired in
    a small window); it gives the bound and proves optimality on small instances. Spatial
-   CP-SAT LNS (:mod:`spatialplan.schedule_search`) remains available for benchmarks.
+   CP-SAT LNS (:mod:`spatialplan.schedule.windows`) remains available for benchmarks.
 5. The final plan is re-checked in float64 against every rule.
 
 The empty plan: when the rules allow it (with default even flow ``0 <= 0`` holds) harvesting
@@ -42,12 +42,12 @@ import numpy as np
 
 from spatialplan.errors import InfeasibleError, NoSolutionError
 from spatialplan.problem import PlanProblem
-from spatialplan.schedule_cpsat import CoverPool, SubModel, make_scaling
-from spatialplan.schedule_heuristic import greedy_plan
-from spatialplan.schedule_local import anneal
-from spatialplan.schedule_lp import LpResult, lp_bound, solve_lp
-from spatialplan.schedule_model import check_plan, plan_npv, prepare
-from spatialplan.schedule_search import SearchCtx, lazy_rounds, lns, seed_pair_covers
+from spatialplan.schedule.anneal import anneal
+from spatialplan.schedule.bound import LpResult, lp_bound, solve_lp
+from spatialplan.schedule.construct import greedy_plan
+from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
+from spatialplan.schedule.model import check_plan, plan_npv, prepare
+from spatialplan.schedule.windows import SearchCtx, lazy_rounds, lns, seed_pair_covers
 from spatialplan.settings import SolverSettings
 
 __all__ = [
@@ -130,7 +130,7 @@ def _sigint(registry: dict) -> Iterator[None]:
         return
 
     def handler(signum: int, frame: object) -> None:
-        # The CP-SAT wait loop (schedule_cpsat.SubModel.solve) sees the flag within 50 ms
+        # The CP-SAT wait loop (cpsat.SubModel.solve) sees the flag within 50 ms
         # and calls the live solver's stop_search().
         registry["interrupted"] = True
 
@@ -338,7 +338,7 @@ def _offer_local(ctx: SearchCtx, period: np.ndarray) -> None:
 
 
 def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: bool) -> None:
-    """Simulated annealing from the best plan (:mod:`spatialplan.schedule_local`).
+    """Simulated annealing from the best plan (:mod:`spatialplan.schedule.anneal`).
 
     With ``repeat`` the search starts again from the best plan with longer rounds and the
     next seed whenever it stalls, until ``until``.
@@ -376,8 +376,8 @@ def _first_slice(prep) -> float:
 def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:
     """Which rule family makes a problem infeasible, and the smallest relaxation that works.
 
-    See :func:`spatialplan.schedule_diagnose.diagnose`.
+    See :func:`spatialplan.schedule.diagnosis.diagnose`.
     """
-    from spatialplan.schedule_diagnose import diagnose as _diagnose
+    from spatialplan.schedule.diagnosis import diagnose as _diagnose
 
     return _diagnose(problem, settings)

@@ -34,7 +34,6 @@ __all__ = [
     "check_plan",
     "extract_covers",
     "plan_npv",
-    "plan_volumes",
     "spatial_breaches",
 ]
 
@@ -172,16 +171,6 @@ def build_rows(problem: PlanProblem) -> list[Row]:
     return rows
 
 
-def plan_volumes(problem: PlanProblem, period: np.ndarray) -> np.ndarray:
-    """Harvest volume (m3) by period, shape ``(P,)``."""
-    P = problem.periods
-    out = np.zeros(P)
-    h = period > 0
-    if h.any():
-        idx = np.nonzero(h)[0]
-        v = problem.area_ha[idx] * problem.volume_m3_ha[idx, period[idx] - 1]
-        np.add.at(out, period[idx] - 1, v)
-    return out
 
 
 def plan_npv(problem: PlanProblem, period: np.ndarray) -> float:
@@ -416,87 +405,3 @@ def extract_covers(
                 members = rest
         out.append(frozenset(members))
     return list(dict.fromkeys(out))
-
-
-def enumerate_covers(
-    prep: Prep, roots: np.ndarray, allowed: np.ndarray, limit: int = 2_000_000
-) -> list[frozenset[int]]:
-    """All minimal over-size connected stand sets containing at least one of ``roots``.
-
-    A set ``S`` is a minimal cover when it is connected, its opening area exceeds the
-    maximum, and every connected proper subset is within it (the minimal infeasible sets
-    of the path formulation of McDill, Rebain & Braze 2002). It suffices to test the
-    subsets that drop one stand and stay connected: any over-size connected subset grows
-    inside ``S`` to such a subset. Sets are enumerated once each with the ESU scheme
-    (Wernicke 2006, from memory): extend only by stands of larger position than the set's
-    first stand that are not already neighbours of the set; only sets within the
-    maximum are extended.
-
-    Parameters
-    ----------
-    prep
-        Pre-computed problem (needs ``max_opening``).
-    roots
-        Stands of which every returned set holds at least one.
-    allowed
-        (n,) bool: stands that can be open at all (others block openings).
-    limit
-        Stop after this many sets (a guard against huge stands-per-opening ratios).
-    """
-    mx = prep.max_opening
-    if mx is None:
-        return []
-    area = prep.opening_area
-    nb = [prep.neighbours(i).tolist() for i in range(prep.n)]
-    is_root = np.zeros(prep.n, dtype=bool)
-    is_root[np.asarray(roots, dtype=np.int64)] = True
-    out: list[frozenset[int]] = []
-    # Every set S has a unique smallest member v; enumerate sets whose smallest member is
-    # any allowed stand v within reach of a root (a cover must contain a root).
-    cand_v: set[int] = set()
-    for r in np.nonzero(is_root & allowed)[0].tolist():
-        cand_v.add(r)
-        # members of a cover through r lie within a few hops; the smallest may be a neighbour
-        frontier = [r]
-        seen = {r}
-        dist_area = {r: area[r]}
-        while frontier:
-            nxt = []
-            for k in frontier:
-                for j in nb[k]:
-                    if j not in seen and allowed[j] and dist_area[k] <= mx:
-                        seen.add(j)
-                        dist_area[j] = dist_area[k] + area[j]
-                        nxt.append(j)
-            frontier = nxt
-        cand_v.update(seen)
-    for v in sorted(cand_v):
-        stack = [([v], area[v], [u for u in nb[v] if u > v and allowed[u]], {v} | set(nb[v]))]
-        if area[v] > mx:
-            continue
-        while stack:
-            members, a, ext, closed = stack.pop()
-            ext = list(ext)
-            while ext:
-                w = ext.pop()
-                na = a + area[w]
-                sset = [*members, w]
-                if na > mx:
-                    if any(is_root[i] for i in sset) and _minimal(prep, sset, mx):
-                        out.append(frozenset(sset))
-                        if len(out) >= limit:
-                            return out
-                    continue
-                new_ext = ext + [u for u in nb[w] if u > v and allowed[u] and u not in closed]
-                stack.append((sset, na, new_ext, closed | set(nb[w])))
-    return out
-
-
-def _minimal(prep: Prep, members: list[int], mx: float) -> bool:
-    tot = float(prep.opening_area[members].sum())
-    for i in members:
-        if tot - prep.opening_area[i] > mx:
-            rest = [j for j in members if j != i]
-            if _connected(prep, rest):
-                return False
-    return True

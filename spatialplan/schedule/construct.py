@@ -22,7 +22,7 @@ import time
 
 import numpy as np
 
-from spatialplan.schedule_model import Prep, check_plan
+from spatialplan.schedule.model import Prep, check_plan
 
 __all__ = ["SpatialState", "greedy_plan"]
 
@@ -260,7 +260,7 @@ def greedy_plan(
     lp_x
         (n, P) LP solution; its period volumes are the targets.
     lp_price
-        (n, P) LP cell prices (see :class:`~spatialplan.schedule_lp.LpResult`), or
+        (n, P) LP cell prices (see :class:`~spatialplan.schedule.bound.LpResult`), or
         ``None`` to rank by objective value.
     deadline
         ``time.perf_counter()`` value after which the heuristic stops adding stands.
@@ -275,7 +275,7 @@ def greedy_plan(
     -------
     (period, info)
         The plan (all-zero when nothing legal was found) and counts of what each phase
-        did. The plan is checked with :func:`~spatialplan.schedule_model.check_plan`;
+        did. The plan is checked with :func:`~spatialplan.schedule.model.check_plan`;
         ``info["legal"]`` says whether it passed.
     """
     n, P = prep.n, prep.P

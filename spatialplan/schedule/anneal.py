@@ -34,7 +34,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from spatialplan.schedule_model import Prep
+from spatialplan.schedule.model import Prep
 
 __all__ = ["AnnealResult", "anneal"]
 

@@ -1,0 +1,20 @@
+"""The spatial harvest scheduler: LP bound, construction, local search, CP-SAT.
+
+The public face is small: :func:`solve` returns the best plan found within the time
+limit as a :class:`PlanResult`; :func:`lp_bound` solves Model I without spatial rules as an
+LP (HiGHS); :func:`diagnose` names the rule family that makes a problem infeasible and the
+smallest relaxation that works. The modules inside are the parts of one job:
+
+* ``model`` - rule rows, openness, the float64 plan check, over-size covers;
+* ``bound`` - the LP relaxation (HiGHS);
+* ``construct`` - greedy construction of a first legal plan;
+* ``anneal`` - simulated-annealing local search;
+* ``cpsat`` and ``windows`` - CP-SAT models of the whole problem or of a window;
+* ``diagnosis`` - infeasibility diagnosis;
+* ``driver`` - :func:`solve`, which runs them in turn.
+"""
+
+from spatialplan.schedule.bound import LpResult, lp_bound
+from spatialplan.schedule.driver import PlanResult, SolveProgress, diagnose, solve
+
+__all__ = ["LpResult", "PlanResult", "SolveProgress", "diagnose", "lp_bound", "solve"]
