@@ -1,6 +1,6 @@
 """Timing of the growth/economics stage on many stands (run by hand, not by pytest).
 
-    /work/venv/bin/python bench/bench_growth_economics.py [n_stands] [periods]
+/work/venv/bin/python bench/bench_growth_economics.py [n_stands] [periods]
 """
 
 from __future__ import annotations
@@ -29,14 +29,20 @@ def main() -> None:
     for land in (False, True):
         s = Settings(
             horizon=Horizon(periods=periods, period_length_yr=5),
-            economics=Economics(price_schedule=sched, harvest_cost_per_m3=9,
-                                regeneration_cost_per_ha=1200, include_land_value=land),
+            economics=Economics(
+                price_schedule=sched,
+                harvest_cost_per_m3=9,
+                regeneration_cost_per_ha=1200,
+                include_land_value=land,
+            ),
         )
         t0 = time.perf_counter()
         hv = harvest_values(lab, age, g, s, harvest_cost_per_m3=rng.choice([9.0, 15.0], n))
         dt = time.perf_counter() - t0
-        print(f"harvest_values n={n} P={periods} land_value={land}: {dt:.2f} s "
-              f"(npv shape {hv.npv_per_ha.shape})")
+        print(
+            f"harvest_values n={n} P={periods} land_value={land}: {dt:.2f} s "
+            f"(npv shape {hv.npv_per_ha.shape})"
+        )
     t0 = time.perf_counter()
     rotation_table(g, strata, s)
     print(f"rotation_table 20 strata, ages 1..300: {time.perf_counter() - t0:.2f} s")

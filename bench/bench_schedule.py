@@ -47,8 +47,9 @@ def touching_edges(geoms: np.ndarray, min_shared_m: float = 1.0) -> np.ndarray:
     a, b = tree.query(geoms, predicate="intersects")
     keep = a < b
     a, b = a[keep], b[keep]
-    shared = shapely.length(shapely.intersection(shapely.boundary(geoms[a]),
-                                                 shapely.boundary(geoms[b])))
+    shared = shapely.length(
+        shapely.intersection(shapely.boundary(geoms[a]), shapely.boundary(geoms[b]))
+    )
     ok = shared > min_shared_m
     return np.column_stack([a[ok], b[ok]]).astype(np.int64)
 
@@ -89,12 +90,24 @@ def make_problem(n_stands: int, seed: int) -> PlanProblem:
         m = strata == s
         end_vol[m] = np.interp(end_age[m], ages, vols)
     return PlanProblem(
-        stand_ids=gdf["stand_id"].to_numpy(dtype=object), area_ha=area, opening_area_ha=area,
-        age_start_yr=age0, eligible=eligible, volume_m3_ha=vol, npv_per_ha=npv,
-        green_up_periods=green, initially_open=init_open, edges=touching_edges(geoms),
-        periods=PERIODS, period_length_yr=LENGTH, max_opening_ha=MAX_OPENING,
-        flow=FlowRules(flow_tolerance=TOL), ending_volume_m3_ha=end_vol,
-        ending_age_yr=end_age, eligible_no_min_age=eligible_any, min_age_yr=MIN_AGE,
+        stand_ids=gdf["stand_id"].to_numpy(dtype=object),
+        area_ha=area,
+        opening_area_ha=area,
+        age_start_yr=age0,
+        eligible=eligible,
+        volume_m3_ha=vol,
+        npv_per_ha=npv,
+        green_up_periods=green,
+        initially_open=init_open,
+        edges=touching_edges(geoms),
+        periods=PERIODS,
+        period_length_yr=LENGTH,
+        max_opening_ha=MAX_OPENING,
+        flow=FlowRules(flow_tolerance=TOL),
+        ending_volume_m3_ha=end_vol,
+        ending_age_yr=end_age,
+        eligible_no_min_age=eligible_any,
+        min_age_yr=MIN_AGE,
     )
 
 
@@ -103,8 +116,7 @@ def peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
-def run_one(n: int, seed: int, time_limit: float, workers: int, strategy: str,
-            trace: bool) -> dict:
+def run_one(n: int, seed: int, time_limit: float, workers: int, strategy: str, trace: bool) -> dict:
     """Build and solve one instance; return the measurements."""
     from spatialplan.schedule import solve
     from spatialplan.schedule.model import check_plan, prepare
@@ -117,8 +129,11 @@ def run_one(n: int, seed: int, time_limit: float, workers: int, strategy: str,
     def on_progress(pr) -> None:
         history.append((pr.elapsed_s, pr.best_npv))
         if trace:
-            print(f"  {pr.elapsed_s:7.1f}s npv={pr.best_npv:,.0f} bound={pr.bound:,.0f} "
-                  f"gap={pr.gap:.4f}", file=sys.stderr)
+            print(
+                f"  {pr.elapsed_s:7.1f}s npv={pr.best_npv:,.0f} bound={pr.bound:,.0f} "
+                f"gap={pr.gap:.4f}",
+                file=sys.stderr,
+            )
 
     settings = SolverSettings(time_limit_s=time_limit, workers=workers, seed=seed)
     res = solve(prob, settings, on_progress, _strategy=strategy)
@@ -133,11 +148,21 @@ def run_one(n: int, seed: int, time_limit: float, workers: int, strategy: str,
         return best / res.lp_bound if res.lp_bound else float("nan")
 
     return {
-        "stands": prob.n_stands, "seed": seed, "time_limit_s": time_limit, "workers": workers,
-        "strategy": strategy, "build_s": round(t_build, 1), "status": res.status,
-        "npv": res.npv, "lp_bound": res.lp_bound, "cpsat_bound": res.cpsat_bound,
-        "ratio_lp": ratio, "gap": res.gap, "solve_s": res.solve_time_s,
-        "violations": len(viol), "peak_rss_mb": round(peak_rss_mb()),
+        "stands": prob.n_stands,
+        "seed": seed,
+        "time_limit_s": time_limit,
+        "workers": workers,
+        "strategy": strategy,
+        "build_s": round(t_build, 1),
+        "status": res.status,
+        "npv": res.npv,
+        "lp_bound": res.lp_bound,
+        "cpsat_bound": res.cpsat_bound,
+        "ratio_lp": ratio,
+        "gap": res.gap,
+        "solve_s": res.solve_time_s,
+        "violations": len(viol),
+        "peak_rss_mb": round(peak_rss_mb()),
         "ratio_at": {t: ratio_at(t) for t in (5, 15, 30, 60, 120, 300, 600) if t <= time_limit},
         "local_search": res.stats.get("local_search"),
         **{k: v for k, v in res.stats.items() if not isinstance(v, list | dict)},

@@ -209,7 +209,9 @@ def main() -> None:
         results.append(r)
         print(json.dumps(r), flush=True)
     print()
-    print(f"machine: {platform.processor() or platform.machine()}, python {platform.python_version()}")
+    print(
+        f"machine: {platform.processor() or platform.machine()}, python {platform.python_version()}"
+    )
     print(
         f"{meta['n_stands']} stands, DEM {meta['cells']} x {meta['cells']} cells of "
         f"{meta['cell_m']:.2f} m ({meta['cells'] ** 2 / 1e6:.0f} M cells)"

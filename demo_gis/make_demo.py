@@ -53,8 +53,14 @@ def stream_y(x: np.ndarray, side: float) -> np.ndarray:
 def main() -> None:
     rng = np.random.default_rng(SEED)
     stands = voronoi_forest(
-        N_STANDS, seed=SEED, mean_area_ha=12.0, crs=CRS, origin=ORIGIN, n_strata=7,
-        max_age=140, reserve_share=0.035,
+        N_STANDS,
+        seed=SEED,
+        mean_area_ha=12.0,
+        crs=CRS,
+        origin=ORIGIN,
+        n_strata=7,
+        max_age=140,
+        reserve_share=0.035,
     )
     side = float(np.sqrt(N_STANDS * 12.0 * 10_000.0))
     xy = shapely.get_coordinates(stands.geometry.centroid)
@@ -66,7 +72,12 @@ def main() -> None:
     site = np.where((species == "PINE") & (site == "I"), "II", site)
     site = np.where((species == "HWD") & (site == "III"), "II", site)
     names = ["Alder Bench", "Corrie Flat", "Wren Slope", "Otter Run", "Mossgate", "Highfold"]
-    blocks = np.array(names)[np.floor(shapely.get_coordinates(stands.geometry.centroid)[:, 0] - ORIGIN[0]).astype(int) * len(names) // int(side) % len(names)]
+    blocks = np.array(names)[
+        np.floor(shapely.get_coordinates(stands.geometry.centroid)[:, 0] - ORIGIN[0]).astype(int)
+        * len(names)
+        // int(side)
+        % len(names)
+    ]
     out = gpd.GeoDataFrame(
         {
             "stand_no": [f"BH-{i + 1:04d}" for i in range(len(stands))],
@@ -86,7 +97,15 @@ def main() -> None:
         for age in range(10, 181, 10):
             vol = a * (1 - np.exp(-k * age)) ** c
             dia = dmax * (1 - np.exp(-kd * age)) ** 1.2
-            rows.append({"species": sp, "site": st, "age": age, "volume": round(vol, 1), "diameter": round(dia, 1)})
+            rows.append(
+                {
+                    "species": sp,
+                    "site": st,
+                    "age": age,
+                    "volume": round(vol, 1),
+                    "diameter": round(dia, 1),
+                }
+            )
     pd.DataFrame(rows).to_csv(HERE / "brennick_yields.csv", index=False)
 
     # DEM: a valley along the stream, rising hillsides, a steep escarpment and bumps.
@@ -107,9 +126,18 @@ def main() -> None:
         h, r = g.uniform(15, 60), g.uniform(300, 800)
         z += h * np.exp(-((X - cx) ** 2 + (Y - cy) ** 2) / (2 * r**2))
     profile = {
-        "driver": "GTiff", "height": nrow, "width": ncol, "count": 1, "dtype": "float32",
-        "crs": CRS, "transform": from_origin(ORIGIN[0] - cell, ORIGIN[1] + side + cell, cell, cell),
-        "nodata": -9999.0, "compress": "deflate", "tiled": True, "blockxsize": 256, "blockysize": 256,
+        "driver": "GTiff",
+        "height": nrow,
+        "width": ncol,
+        "count": 1,
+        "dtype": "float32",
+        "crs": CRS,
+        "transform": from_origin(ORIGIN[0] - cell, ORIGIN[1] + side + cell, cell, cell),
+        "nodata": -9999.0,
+        "compress": "deflate",
+        "tiled": True,
+        "blockxsize": 256,
+        "blockysize": 256,
     }
     with rasterio.open(HERE / "brennick_dem.tif", "w", **profile) as dst:
         dst.write(z.astype("float32"), 1)
@@ -125,12 +153,18 @@ def main() -> None:
         xw = x_t + 60 * np.sin(np.linspace(0, 3 * np.pi, 40))
         tribs.append(shapely.LineString(np.c_[xw, ys]))
     streams = gpd.GeoDataFrame(
-        {"stream_name": ["Brennick Water", "Tarn Gill", "Fernside Burn"], "stream_class": ["main", "minor", "minor"]},
+        {
+            "stream_name": ["Brennick Water", "Tarn Gill", "Fernside Burn"],
+            "stream_class": ["main", "minor", "minor"],
+        },
         geometry=[main_line, *tribs],
         crs=CRS,
     )
     streams.to_file(HERE / "brennick_streams.gpkg", layer="streams", driver="GPKG")
-    print(f"wrote {len(out)} stands, {len(rows)} yield rows, DEM {nrow}x{ncol}, {len(streams)} streams", file=sys.stderr)
+    print(
+        f"wrote {len(out)} stands, {len(rows)} yield rows, DEM {nrow}x{ncol}, {len(streams)} streams",
+        file=sys.stderr,
+    )
 
 
 if __name__ == "__main__":

@@ -61,8 +61,11 @@ def rotation_chart(curves: RotationCurves, path: str | Path, title: str | None =
     """
     c = curves
     r = c.discount_rate
-    marks = [v for v in (c.mai_max_age, c.fisher_age, c.faustmann_age, c.value_mai_max_age)
-             if np.isfinite(v)]
+    marks = [
+        v
+        for v in (c.mai_max_age, c.fisher_age, c.faustmann_age, c.value_mai_max_age)
+        if np.isfinite(v)
+    ]
     xmax = float(c.ages[-1])
     if marks:
         xmax = min(xmax, max(60.0, math.ceil(1.6 * max(marks) / 10.0) * 10.0))
@@ -71,13 +74,26 @@ def rotation_chart(curves: RotationCurves, path: str | Path, title: str | None =
     fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(8.5, 8.0), sharex=True, layout="constrained")
     fig.suptitle(title or f"Rotation ages of stratum {c.stratum}", fontsize=14)
 
-    ax1.plot(c.ages[show], c.mai[show], color="tab:blue", lw=2.2,
-             label="MAI (mean annual increment)")
-    ax1.plot(c.ages[show], c.cai[show], color="tab:orange", lw=1.6, ls="--",
-             label="CAI (current annual increment)")
+    ax1.plot(
+        c.ages[show], c.mai[show], color="tab:blue", lw=2.2, label="MAI (mean annual increment)"
+    )
+    ax1.plot(
+        c.ages[show],
+        c.cai[show],
+        color="tab:orange",
+        lw=1.6,
+        ls="--",
+        label="CAI (current annual increment)",
+    )
     ax1.axvline(c.mai_max_age, color="tab:blue", ls=":", lw=1.2)
-    ax1.plot([c.mai_max_age], [c.mai_max_m3_ha_yr], "o", color="tab:blue", ms=7,
-             label=f"MAI culmination: {c.mai_max_age:g} yr, {c.mai_max_m3_ha_yr:.1f} m³/ha/yr")
+    ax1.plot(
+        [c.mai_max_age],
+        [c.mai_max_m3_ha_yr],
+        "o",
+        color="tab:blue",
+        ms=7,
+        label=f"MAI culmination: {c.mai_max_age:g} yr, {c.mai_max_m3_ha_yr:.1f} m³/ha/yr",
+    )
     ax1.set_ylabel("Increment (m³/ha/yr)")
     ax1.set_ylim(bottom=0)
     ax1.grid(alpha=0.3)
@@ -85,23 +101,50 @@ def rotation_chart(curves: RotationCurves, path: str | Path, title: str | None =
     ax1.set_title("Volume increment", fontsize=11, loc="left")
 
     pct = 100.0
-    ax2.plot(c.ages[show], pct * c.value_growth[show], color="tab:green", lw=2.2,
-             label="Value growth rate S(t+1)/S(t) − 1")
+    ax2.plot(
+        c.ages[show],
+        pct * c.value_growth[show],
+        color="tab:green",
+        lw=2.2,
+        label="Value growth rate S(t+1)/S(t) − 1",
+    )
     ax2.axhline(pct * r, color="black", lw=1.2, label=f"Discount rate r = {pct * r:.2f} %/yr")
     if np.isfinite(c.faustmann_threshold).any():
-        ax2.plot(c.ages[show], pct * c.faustmann_threshold[show], color="tab:purple", lw=1.3,
-                 ls="-.", label="Faustmann threshold r (1 + LEV/S)")
+        ax2.plot(
+            c.ages[show],
+            pct * c.faustmann_threshold[show],
+            color="tab:purple",
+            lw=1.3,
+            ls="-.",
+            label="Faustmann threshold r (1 + LEV/S)",
+        )
     if np.isfinite(c.fisher_age):
         # drawn wide and pale so a Faustmann line at the same age stays visible on top
-        ax2.axvline(c.fisher_age, color="tab:red", ls="-", lw=4.0, alpha=0.45,
-                    label=f"Fisher (single rotation): {c.fisher_age:g} yr")
+        ax2.axvline(
+            c.fisher_age,
+            color="tab:red",
+            ls="-",
+            lw=4.0,
+            alpha=0.45,
+            label=f"Fisher (single rotation): {c.fisher_age:g} yr",
+        )
     if np.isfinite(c.faustmann_age):
         lev_txt = f", LEV {c.lev_per_ha:,.0f}/ha" if np.isfinite(c.lev_per_ha) else ""
-        ax2.axvline(c.faustmann_age, color="tab:purple", ls="--", lw=1.4,
-                    label=f"Faustmann: {c.faustmann_age:g} yr{lev_txt}")
+        ax2.axvline(
+            c.faustmann_age,
+            color="tab:purple",
+            ls="--",
+            lw=1.4,
+            label=f"Faustmann: {c.faustmann_age:g} yr{lev_txt}",
+        )
     if np.isfinite(c.value_mai_max_age):
-        ax2.axvline(c.value_mai_max_age, color="tab:gray", ls=":", lw=1.2,
-                    label=f"Max mean annual net value: {c.value_mai_max_age:g} yr")
+        ax2.axvline(
+            c.value_mai_max_age,
+            color="tab:gray",
+            ls=":",
+            lw=1.2,
+            label=f"Max mean annual net value: {c.value_mai_max_age:g} yr",
+        )
     top = max(4.0 * r, 0.05) * pct
     ax2.set_ylim(-0.1 * top, top)
     ax2.set_xlim(0, xmax)
@@ -193,16 +236,24 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
         for x, a, b in zip(p[band], lo_v[band], hi_v[band], strict=True):
             a = 0.0 if not np.isfinite(a) else a
             b = top if not np.isfinite(b) else b
-            ax1.fill_between([x - 0.45, x + 0.45], a, b, color="#f0a030", alpha=0.25, lw=0,
-                             label="Allowed range (flow rules)" if first else None)
+            ax1.fill_between(
+                [x - 0.45, x + 0.45],
+                a,
+                b,
+                color="#f0a030",
+                alpha=0.25,
+                lw=0,
+                label="Allowed range (flow rules)" if first else None,
+            )
             ax1.hlines([a, b], x - 0.45, x + 0.45, color="#c06000", lw=1.2)
             first = False
         ax1.set_ylim(0, top)
     ax1.set_ylabel("Volume (1000 m³)")
     ax1.grid(axis="y", alpha=0.3)
     ax1.legend(loc="upper center", ncol=2, fontsize=9)
-    ax1.set_title("Volume, with the range allowed given the previous period", fontsize=11,
-                  loc="left")
+    ax1.set_title(
+        "Volume, with the range allowed given the previous period", fontsize=11, loc="left"
+    )
     area = pdf["harvest_area_ha"].to_numpy(float)
     ax2.bar(p, area, color=bar_c, edgecolor="#333333", lw=0.6)
     for col, txt in (("area_lower_ha", "area target, min"), ("area_upper_ha", "area target, max")):
@@ -233,10 +284,21 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     x = np.arange(n_cls)
     fig, ax = plt.subplots(figsize=(9.5, 5.2), layout="constrained")
     ax.bar(x - 0.2, a0, width=0.4, color="#8a8a8a", label="Start of plan")
-    ax.bar(x + 0.2, a1, width=0.4, color=colours[-1] if P > 1 else "#3b528b",
-           edgecolor="#333333", lw=0.5, label=f"End of plan (after {horizon:g} years)")
-    ax.set_xticks(x, [f"{int(k * width)}–{int((k + 1) * width) - 1}" for k in x],
-                  rotation=45 if n_cls > 10 else 0, ha="right" if n_cls > 10 else "center")
+    ax.bar(
+        x + 0.2,
+        a1,
+        width=0.4,
+        color=colours[-1] if P > 1 else "#3b528b",
+        edgecolor="#333333",
+        lw=0.5,
+        label=f"End of plan (after {horizon:g} years)",
+    )
+    ax.set_xticks(
+        x,
+        [f"{int(k * width)}–{int((k + 1) * width) - 1}" for k in x],
+        rotation=45 if n_cls > 10 else 0,
+        ha="right" if n_cls > 10 else "center",
+    )
     ax.set_xlabel("Age class (years)")
     ax.set_ylabel("Area (ha)")
     ax.set_title("Area by age class", fontsize=14)
@@ -247,24 +309,37 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
     # 3. NPV by period -----------------------------------------------------------------
     disc = pdf["discounted_value"].to_numpy(float)
     fig, ax = plt.subplots(figsize=(8.5, 5.0), layout="constrained")
-    ax.bar(p, disc / 1000.0, color=bar_c, edgecolor="#333333", lw=0.6,
-           label="Discounted net value")
+    ax.bar(p, disc / 1000.0, color=bar_c, edgecolor="#333333", lw=0.6, label="Discounted net value")
     if "gross_value" in pdf and np.isfinite(pdf["gross_value"].to_numpy(float)).any():
-        ax.plot(p, pdf["gross_value"].to_numpy(float) / 1000.0, "o--", color="#555555",
-                label="Undiscounted net value")
+        ax.plot(
+            p,
+            pdf["gross_value"].to_numpy(float) / 1000.0,
+            "o--",
+            color="#555555",
+            label="Undiscounted net value",
+        )
     ax.set_xlabel("Period")
     ax.set_ylabel("Value (1000s)")
     ax.set_xticks(p)
     ax.grid(axis="y", alpha=0.3)
     ax3 = ax.twinx()
-    ax3.plot(p, np.cumsum(disc) / 1000.0, "-", color="#c06000", lw=2, marker="s", ms=4,
-             label="Running total (NPV)")
+    ax3.plot(
+        p,
+        np.cumsum(disc) / 1000.0,
+        "-",
+        color="#c06000",
+        lw=2,
+        marker="s",
+        ms=4,
+        label="Running total (NPV)",
+    )
     ax3.set_ylabel("Running total (1000s)")
     ax3.set_ylim(bottom=min(0.0, float(np.min(np.cumsum(disc))) / 1000.0))
     h1, l1 = ax.get_legend_handles_labels()
     h2, l2 = ax3.get_legend_handles_labels()
-    ax.set_ylim(min(0.0, float(np.nanmin(disc)) / 1000.0),
-                max(1e-9, float(np.nanmax(disc))) / 1000.0 * 1.3)
+    ax.set_ylim(
+        min(0.0, float(np.nanmin(disc)) / 1000.0), max(1e-9, float(np.nanmax(disc))) / 1000.0 * 1.3
+    )
     ax3.set_ylim(top=max(1e-9, float(np.max(np.cumsum(disc)))) / 1000.0 * 1.15)
     ax.legend(h1 + h2, l1 + l2, loc="upper center", ncol=3, fontsize=9)
     ax.set_title(f"Net present value by period (total {np.sum(disc):,.0f})", fontsize=14)
@@ -319,19 +394,39 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
     # 1. NPV and LP bound ---------------------------------------------------------------
     ax = axes[0, 0]
     colour = np.where(verified, "#3a7d44", "#d08c2a")
-    ax.bar(x[ran], npv[ran] / 1000.0, color=colour[ran], edgecolor="#333333", lw=0.6,
-           label="NPV of the plan")
+    ax.bar(
+        x[ran],
+        npv[ran] / 1000.0,
+        color=colour[ran],
+        edgecolor="#333333",
+        lw=0.6,
+        label="NPV of the plan",
+    )
     ok_lp = np.isfinite(lp)
-    ax.plot(x[ok_lp], lp[ok_lp] / 1000.0, "D", color="#222222", ms=6,
-            label="LP bound (no spatial rules)")
+    ax.plot(
+        x[ok_lp],
+        lp[ok_lp] / 1000.0,
+        "D",
+        color="#222222",
+        ms=6,
+        label="LP bound (no spatial rules)",
+    )
     top = np.nanmax(np.r_[npv[ran], lp[ok_lp], 0.0]) / 1000.0 or 1.0
     for i in x:
         if ran[i]:
             g = "" if not np.isfinite(gap[i]) else f"{100 * gap[i]:.1f}%"
             ax.text(i, npv[i] / 1000.0, g, ha="center", va="bottom", fontsize=8)
         else:
-            ax.text(i, 0.02 * top, str(df.loc[i, "status"]), rotation=90, ha="center",
-                    va="bottom", fontsize=9, color="#a02020")
+            ax.text(
+                i,
+                0.02 * top,
+                str(df.loc[i, "status"]),
+                rotation=90,
+                ha="center",
+                va="bottom",
+                fontsize=9,
+                color="#a02020",
+            )
     if (~verified & ran).any():
         ax.bar([], [], color="#d08c2a", label="failed verification")
     ax.set_ylabel("Value (1000s)")
@@ -347,8 +442,14 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
         for j, c in enumerate(cost_cols):
             v = pd.to_numeric(df[c], errors="coerce").to_numpy(float) / 1000.0
             lab = "spatial rules (LP bound - NPV)" if c == "cost_spatial_rules" else c[5:]
-            ax.bar(x - 0.4 + (j + 0.5) * w, np.nan_to_num(v), width=w, label=lab,
-                   edgecolor="#333333", lw=0.4)
+            ax.bar(
+                x - 0.4 + (j + 0.5) * w,
+                np.nan_to_num(v),
+                width=w,
+                label=lab,
+                edgecolor="#333333",
+                lw=0.4,
+            )
         ax.axhline(0, color="#333333", lw=0.8)
         ax.legend(fontsize=8)
     ax.set_ylabel("NPV given up (1000s)")
@@ -356,8 +457,9 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
 
     # 3. volume by period --------------------------------------------------------------
     ax = axes[1, 0]
-    vcols = sorted((c for c in df.columns if str(c).startswith("volume_m3_p")),
-                   key=lambda c: int(str(c)[11:]))
+    vcols = sorted(
+        (c for c in df.columns if str(c).startswith("volume_m3_p")), key=lambda c: int(str(c)[11:])
+    )
     periods = [int(str(c)[11:]) for c in vcols]
     cmap = plt.get_cmap("tab20" if n > 10 else "tab10")
     for i in x:
@@ -378,8 +480,14 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
     ax = axes[1, 1]
     area = pd.to_numeric(df["area_harvested_ha"], errors="coerce").to_numpy(float)
     largest = pd.to_numeric(df["largest_opening_ha"], errors="coerce").to_numpy(float)
-    ax.bar(x, np.nan_to_num(area), color="#6a8caf", edgecolor="#333333", lw=0.6,
-           label="Area harvested (ha)")
+    ax.bar(
+        x,
+        np.nan_to_num(area),
+        color="#6a8caf",
+        edgecolor="#333333",
+        lw=0.6,
+        label="Area harvested (ha)",
+    )
     ax.set_ylabel("Area harvested over the plan (ha)")
     # Head room above the bars and markers for the legend.
     ax.set_ylim(0, max(1e-9, float(np.nanmax(np.r_[area, 0.0]))) * 1.3)

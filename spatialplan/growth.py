@@ -299,8 +299,7 @@ def load_yield_table(
     try:
         df = pd.read_csv(p, dtype=str, keep_default_na=False, skipinitialspace=True)
     except UnicodeDecodeError:
-        bad = [i for i, ln in enumerate(p.read_bytes().split(b"\n"), start=1)
-               if not _is_utf8(ln)]
+        bad = [i for i, ln in enumerate(p.read_bytes().split(b"\n"), start=1) if not _is_utf8(ln)]
         where = f" (line {bad[0]})" if bad else ""
         msg = f"yield table {p} is not UTF-8 text{where}; save it as CSV UTF-8"
         raise InputError(msg) from None
@@ -413,9 +412,10 @@ def yield_table_from_frame(
     if dia is not None:
         for lab in pd.unique(labels):
             m = labels == lab
-            e = np.isnan(dia[m]) & (raw[columns.diameter_column].astype(str).str.strip() == "")[
-                m
-            ].to_numpy()
+            e = (
+                np.isnan(dia[m])
+                & (raw[columns.diameter_column].astype(str).str.strip() == "")[m].to_numpy()
+            )
             if e.any() and not e.all():
                 first = line[np.flatnonzero(m)[np.flatnonzero(e)[0]]]
                 problems.append(

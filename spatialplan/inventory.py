@@ -210,7 +210,9 @@ def read_vector_layer(
     if path.suffix.lower() == ".shp":
         missing = [ext for ext in (".dbf", ".shx") if not _sidecar(path, ext).exists()]
         if ".dbf" in missing:
-            msg = f"{path}: the Shapefile's attribute file {path.with_suffix('.dbf').name} is missing"
+            msg = (
+                f"{path}: the Shapefile's attribute file {path.with_suffix('.dbf').name} is missing"
+            )
             raise InputError(msg)
     try:
         gdf = pyogrio.read_dataframe(path, layer=layer)
@@ -243,7 +245,9 @@ def _resolve_field(columns: list[str], wanted: str, role: str, path: Path) -> st
     raise InputError(msg)
 
 
-def _working_crs(gdf: gpd.GeoDataFrame, crs_override: str | None, path: Path) -> tuple[CRS, CRS, list[Problem]]:
+def _working_crs(
+    gdf: gpd.GeoDataFrame, crs_override: str | None, path: Path
+) -> tuple[CRS, CRS, list[Problem]]:
     problems: list[Problem] = []
     if gdf.crs is None:
         if crs_override is None:
@@ -257,7 +261,9 @@ def _working_crs(gdf: gpd.GeoDataFrame, crs_override: str | None, path: Path) ->
         except Exception:
             msg = f"--crs / fields.crs value '{crs_override}' is not a CRS pyproj knows"
             raise InputError(msg) from None
-        problems.append(Problem("info", "crs_assigned", f"layer has no CRS; assumed {src.to_string()}"))
+        problems.append(
+            Problem("info", "crs_assigned", f"layer has no CRS; assumed {src.to_string()}")
+        )
     else:
         src = CRS.from_user_input(gdf.crs)
     if src.is_geographic:
@@ -326,14 +332,30 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
     id_f = _resolve_field(cols, fields.id_field, "id_field", path)
     age_f = _resolve_field(cols, fields.age_field, "age_field", path)
     key_fs = [_resolve_field(cols, k, "yield_keys", path) for k in fields.yield_keys]
-    reserve_f = _resolve_field(cols, fields.reserve_field, "reserve_field", path) if fields.reserve_field else None
-    cost_f = _resolve_field(cols, fields.cost_class_field, "cost_class_field", path) if fields.cost_class_field else None
-    unit_f = _resolve_field(cols, fields.unit_field, "unit_field", path) if fields.unit_field else None
+    reserve_f = (
+        _resolve_field(cols, fields.reserve_field, "reserve_field", path)
+        if fields.reserve_field
+        else None
+    )
+    cost_f = (
+        _resolve_field(cols, fields.cost_class_field, "cost_class_field", path)
+        if fields.cost_class_field
+        else None
+    )
+    unit_f = (
+        _resolve_field(cols, fields.unit_field, "unit_field", path) if fields.unit_field else None
+    )
 
     # Record the names as found (a case-insensitive match may differ from the mapping).
     fields = dataclasses.replace(
-        fields, id_field=id_f, age_field=age_f, yield_keys=tuple(key_fs), reserve_field=reserve_f,
-        cost_class_field=cost_f, unit_field=unit_f, layer=layer if layer is not None else fields.layer,
+        fields,
+        id_field=id_f,
+        age_field=age_f,
+        yield_keys=tuple(key_fs),
+        reserve_field=reserve_f,
+        cost_class_field=cost_f,
+        unit_field=unit_f,
+        layer=layer if layer is not None else fields.layer,
     )
     src_crs, work_crs, problems = _working_crs(gdf, fields.crs, path)
     gdf = gdf.set_crs(src_crs, allow_override=True)
@@ -345,14 +367,22 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
     missing_id = ids.isna()
     if missing_id.any():
         problems.append(
-            Problem("error", "missing_id", f"{int(missing_id.sum())} stand(s) have no id in '{id_f}'",
-                    tuple(label[missing_id]))
+            Problem(
+                "error",
+                "missing_id",
+                f"{int(missing_id.sum())} stand(s) have no id in '{id_f}'",
+                tuple(label[missing_id]),
+            )
         )
     dup = ids.notna() & ids.duplicated(keep=False)
     if dup.any():
         problems.append(
-            Problem("error", "duplicate_id", f"stand ids in '{id_f}' must be unique; repeated",
-                    tuple(sorted(set(ids[dup]))))
+            Problem(
+                "error",
+                "duplicate_id",
+                f"stand ids in '{id_f}' must be unique; repeated",
+                tuple(sorted(set(ids[dup]))),
+            )
         )
 
     # ---- geometry --------------------------------------------------------------------
@@ -394,22 +424,29 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
         work = work.to_crs(work_crs)
     unit_factor = unit_to_metre(work_crs)
     area_ha = pd.Series(
-        polygon_area_ha(geom, src_crs) if src_crs.is_geographic
+        polygon_area_ha(geom, src_crs)
+        if src_crs.is_geographic
         else polygon_area_ha(work.values, work_crs),
         index=gdf.index,
     )
     empty_now = ~null & ~wrong & (shapely.is_empty(work.values) | (area_ha <= 0))
     if null.any():
         problems.append(
-            Problem("warning", "empty_geometry",
-                    f"{int(null.sum())} stand(s) with null or empty geometry excluded",
-                    tuple(label[null]))
+            Problem(
+                "warning",
+                "empty_geometry",
+                f"{int(null.sum())} stand(s) with null or empty geometry excluded",
+                tuple(label[null]),
+            )
         )
     if empty_now.any():
         problems.append(
-            Problem("warning", "zero_area",
-                    f"{int(empty_now.sum())} stand(s) with zero area (after repair) excluded",
-                    tuple(label[empty_now]))
+            Problem(
+                "warning",
+                "zero_area",
+                f"{int(empty_now.sum())} stand(s) with zero area (after repair) excluded",
+                tuple(label[empty_now]),
+            )
         )
     valid_geo = work[~(null | wrong | empty_now)]
     if len(valid_geo):
@@ -427,21 +464,33 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
     non_num = age.isna() & raw_age.notna() & (raw_age.astype(str).str.strip() != "")
     miss_age = age.isna() & ~non_num
     if non_num.any():
-        problems.append(Problem("error", "age_not_numeric",
-                                f"age field '{age_f}' is not a number", tuple(label[non_num])))
+        problems.append(
+            Problem(
+                "error",
+                "age_not_numeric",
+                f"age field '{age_f}' is not a number",
+                tuple(label[non_num]),
+            )
+        )
     if miss_age.any():
-        problems.append(Problem("error", "age_missing", f"age field '{age_f}' is empty",
-                                tuple(label[miss_age])))
+        problems.append(
+            Problem("error", "age_missing", f"age field '{age_f}' is empty", tuple(label[miss_age]))
+        )
     neg = age < 0
     if neg.any():
-        problems.append(Problem("error", "age_negative", f"age field '{age_f}' is negative",
-                                tuple(label[neg])))
+        problems.append(
+            Problem("error", "age_negative", f"age field '{age_f}' is negative", tuple(label[neg]))
+        )
     absurd = age > MAX_PLAUSIBLE_AGE_YR
     if absurd.any():
         problems.append(
-            Problem("error", "age_absurd",
-                    f"age field '{age_f}' above {MAX_PLAUSIBLE_AGE_YR:.0f} years is not plausible "
-                    "(wrong field or unit?)", tuple(label[absurd]))
+            Problem(
+                "error",
+                "age_absurd",
+                f"age field '{age_f}' above {MAX_PLAUSIBLE_AGE_YR:.0f} years is not plausible "
+                "(wrong field or unit?)",
+                tuple(label[absurd]),
+            )
         )
 
     # ---- yield keys, reserve, cost class, unit -----------------------------------------
@@ -451,8 +500,12 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
         no_key |= v.isna()
     if no_key.any():
         problems.append(
-            Problem("error", "yield_key_missing",
-                    f"yield-key field(s) {', '.join(key_fs)} empty", tuple(label[no_key]))
+            Problem(
+                "error",
+                "yield_key_missing",
+                f"yield-key field(s) {', '.join(key_fs)} empty",
+                tuple(label[no_key]),
+            )
         )
     stratum = pd.Series(
         ["/".join(str(keys[k][i]) for k in key_fs) for i in gdf.index], index=gdf.index
@@ -462,12 +515,23 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
         reserve, bad = _parse_flags(gdf[reserve_f])
         if bad.any():
             problems.append(
-                Problem("error", "reserve_value",
-                        f"reserve field '{reserve_f}' must be yes/no, true/false or 1/0",
-                        tuple(label[bad]))
+                Problem(
+                    "error",
+                    "reserve_value",
+                    f"reserve field '{reserve_f}' must be yes/no, true/false or 1/0",
+                    tuple(label[bad]),
+                )
             )
-    cost = text_key(gdf[cost_f]) if cost_f else pd.Series([None] * len(gdf), index=gdf.index, dtype=object)
-    unit = text_key(gdf[unit_f]) if unit_f else pd.Series([None] * len(gdf), index=gdf.index, dtype=object)
+    cost = (
+        text_key(gdf[cost_f])
+        if cost_f
+        else pd.Series([None] * len(gdf), index=gdf.index, dtype=object)
+    )
+    unit = (
+        text_key(gdf[unit_f])
+        if unit_f
+        else pd.Series([None] * len(gdf), index=gdf.index, dtype=object)
+    )
 
     keep = ~(null | wrong | empty_now)
     stands = gpd.GeoDataFrame(
@@ -485,7 +549,9 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
         crs=work_crs,
         index=gdf.index,
     )[keep.values].reset_index(drop=True)
-    attributes = pd.DataFrame(gdf.drop(columns=gdf.geometry.name))[keep.values].reset_index(drop=True)
+    attributes = pd.DataFrame(gdf.drop(columns=gdf.geometry.name))[keep.values].reset_index(
+        drop=True
+    )
 
     if len(stands) == 0:
         problems.append(Problem("error", "no_stands", "no usable stands are left"))
@@ -495,9 +561,13 @@ def read_stands(path: str | Path, fields: FieldMap | None = None) -> InventoryRe
             pairs = tuple(f"{a}~{b} ({m2 / 1e4:.3f} ha)" for a, b, m2 in ov[:50])
             kind = "duplicate or overlapping"
             problems.append(
-                Problem("warning", "overlap",
-                        f"{len(ov)} pair(s) of {kind} stands (overlap > {OVERLAP_TOLERANCE_M2:g} m2); "
-                        "their shared area is counted twice", pairs)
+                Problem(
+                    "warning",
+                    "overlap",
+                    f"{len(ov)} pair(s) of {kind} stands (overlap > {OVERLAP_TOLERANCE_M2:g} m2); "
+                    "their shared area is counted twice",
+                    pairs,
+                )
             )
     problems.sort(key=lambda p: {"error": 0, "warning": 1, "info": 2}[p.severity])
     return InventoryResult(stands, attributes, src_crs, work_crs, path, layer, problems, fields)
@@ -542,7 +612,9 @@ def _polygonal(geoms: np.ndarray) -> np.ndarray:
             flat.extend(shapely.get_parts(p))
         flat = [p for p in flat if p.area > 0]
         out[i] = (
-            shapely.Polygon() if not flat else (flat[0] if len(flat) == 1 else shapely.MultiPolygon(flat))
+            shapely.Polygon()
+            if not flat
+            else (flat[0] if len(flat) == 1 else shapely.MultiPolygon(flat))
         )
     return out
 
@@ -573,12 +645,17 @@ def find_overlaps(
         return []
     inter = shapely.area(shapely.intersection(geoms[left], geoms[right]))
     big = inter > min_area_m2
-    out = [(str(ids[a]), str(ids[b]), float(m)) for a, b, m in zip(left[big], right[big], inter[big], strict=True)]
+    out = [
+        (str(ids[a]), str(ids[b]), float(m))
+        for a, b, m in zip(left[big], right[big], inter[big], strict=True)
+    ]
     out.sort(key=lambda t: -t[2])
     return out
 
 
-def match_strata(inv: InventoryResult, strata: set[str] | list[str], source: str, skip_unmatched: bool = False) -> InventoryResult:
+def match_strata(
+    inv: InventoryResult, strata: set[str] | list[str], source: str, skip_unmatched: bool = False
+) -> InventoryResult:
     """Check that every stand's stratum has a yield curve.
 
     Parameters
@@ -604,7 +681,11 @@ def match_strata(inv: InventoryResult, strata: set[str] | list[str], source: str
         unused = sorted(avail - set(st["stratum"]))
         if unused:
             inv.problems.append(
-                Problem("info", "unused_yield", f"yield curves with no stand in the layer: {', '.join(unused)}")
+                Problem(
+                    "info",
+                    "unused_yield",
+                    f"yield curves with no stand in the layer: {', '.join(unused)}",
+                )
             )
         return inv
     missing = sorted(set(st.loc[bad, "stratum"]))
@@ -614,20 +695,40 @@ def match_strata(inv: InventoryResult, strata: set[str] | list[str], source: str
         f" (yield keys {keys}; available: {', '.join(sorted(avail)[:10])})"
     )
     if skip_unmatched:
-        inv.problems.append(Problem("warning", "unmatched_excluded", msg + "; stands excluded",
-                                    tuple(st.loc[bad, "stand_id"])))
+        inv.problems.append(
+            Problem(
+                "warning",
+                "unmatched_excluded",
+                msg + "; stands excluded",
+                tuple(st.loc[bad, "stand_id"]),
+            )
+        )
         keep = ~bad.to_numpy()
         return InventoryResult(
             st[keep].reset_index(drop=True),
             inv.attributes[keep].reset_index(drop=True),
-            inv.source_crs, inv.working_crs, inv.path, inv.layer, inv.problems, inv.fields,
+            inv.source_crs,
+            inv.working_crs,
+            inv.path,
+            inv.layer,
+            inv.problems,
+            inv.fields,
         )
-    inv.problems.insert(0, Problem("error", "unmatched_stratum", msg + " (or pass --skip-unmatched)",
-                                   tuple(st.loc[bad, "stand_id"])))
+    inv.problems.insert(
+        0,
+        Problem(
+            "error",
+            "unmatched_stratum",
+            msg + " (or pass --skip-unmatched)",
+            tuple(st.loc[bad, "stand_id"]),
+        ),
+    )
     return inv
 
 
-def age_class_table(stands: pd.DataFrame, age: np.ndarray | None = None, width_yr: int = 20) -> pd.DataFrame:
+def age_class_table(
+    stands: pd.DataFrame, age: np.ndarray | None = None, width_yr: int = 20
+) -> pd.DataFrame:
     """Area (ha) by age class of ``width_yr`` years (``0-19``, ``20-39`` ...)."""
     a = np.asarray(stands["age"].to_numpy() if age is None else age, dtype=float)
     ok = np.isfinite(a)  # missing or junk ages are reported by read_stands, not classed here

@@ -117,7 +117,7 @@ def _legend_html(title: str, colours: list[str], n_by_period: list[int]) -> str:
     for p, (c, k) in enumerate(zip(colours, n_by_period, strict=True), start=1):
         rows.append(
             f'<div class="sp-row"><span class="sp-sw" style="background:{c}"></span>'
-            f"Period {p} <span class=\"sp-n\">({k})</span></div>"
+            f'Period {p} <span class="sp-n">({k})</span></div>'
         )
     rows.append(
         f'<div class="sp-row"><span class="sp-sw" style="background:{NOT_HARVESTED_COLOUR}">'
@@ -256,13 +256,11 @@ def write_map(
     root: Any = m.get_root()  # a branca Figure (header / html sections)
     root.header.add_child(folium.Element(f"<style>{css}</style>"), name="sp_leaflet_css")
     root.header.add_child(folium.Element(f"<script>{js}</script>"), name="sp_leaflet_js")
-    root.header.add_child(
-        folium.Element(f"<title>{html.escape(title)}</title>"), name="sp_title"
-    )
+    root.header.add_child(folium.Element(f"<title>{html.escape(title)}</title>"), name="sp_title")
     if basemap:
-        folium.TileLayer(
-            basemap, attr=html.escape(basemap), name="Basemap", overlay=False
-        ).add_to(m)
+        folium.TileLayer(basemap, attr=html.escape(basemap), name="Basemap", overlay=False).add_to(
+            m
+        )
 
     def stand_style(feature: dict[str, Any]) -> dict[str, Any]:
         k = feature["properties"]["sp_kind"]
@@ -279,8 +277,7 @@ def write_map(
         return {"color": OPENING_COLOUR, "weight": 2.2, "fill": False, "className": "sp-opening"}
 
     bind_tip = JsCode(
-        "function(feature, layer) {"
-        " layer.bindTooltip(feature.properties.sp_tip, {sticky: true}); }"
+        "function(feature, layer) { layer.bindTooltip(feature.properties.sp_tip, {sticky: true}); }"
     )
 
     def add_stands(group: folium.FeatureGroup, mask: np.ndarray, kind: list[str]) -> None:

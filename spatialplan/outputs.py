@@ -301,6 +301,7 @@ def period_table(
     age = _col(schedule, "age_at_harvest")
 
     idx = np.clip(per, 0, P)  # bincount slot 0 collects unharvested stands
+
     def by_period(x: np.ndarray) -> np.ndarray:
         return np.bincount(idx, weights=x, minlength=P + 1)[1:]
 
@@ -827,8 +828,7 @@ def write_period_raster(
     height = max(1, int(np.ceil((maxy - miny) / cell_m)))
     if width * height > 400_000_000:
         msg = (
-            f"raster {path} would have {width} x {height} cells; "
-            "use a larger output.raster_cell_m"
+            f"raster {path} would have {width} x {height} cells; use a larger output.raster_cell_m"
         )
         raise OutputError(msg)
     per = _period_array(schedule[period_col])

@@ -42,9 +42,21 @@ log = logging.getLogger(__name__)
 
 # Output columns added to the stand attributes in the `schedule` layer.
 PLAN_COLUMNS = (
-    "period", "harvest_year", "age_at_harvest", "volume_m3", "gross_value", "value",
-    "stratum", "area_ha", "net_area_ha", "reserve", "green_up_periods",
-    "slope_pct_mean", "steep_share", "harvest_system", "opening_id",
+    "period",
+    "harvest_year",
+    "age_at_harvest",
+    "volume_m3",
+    "gross_value",
+    "value",
+    "stratum",
+    "area_ha",
+    "net_area_ha",
+    "reserve",
+    "green_up_periods",
+    "slope_pct_mean",
+    "steep_share",
+    "harvest_system",
+    "opening_id",
 )
 
 
@@ -127,12 +139,19 @@ def load_inputs(
         # Stratum labels exactly as the growth stage forms them.
         if len(inv.stands):
             inv.stands["stratum"] = gr.stratum_labels(inv.stands, list(inv.fields.yield_keys))
-        inv = match_strata(inv, set(growth.strata), str(yields_path or "[growth]"),
-                           inv.fields.skip_unmatched)
+        inv = match_strata(
+            inv, set(growth.strata), str(yields_path or "[growth]"), inv.fields.skip_unmatched
+        )
     if strict:
         inv.raise_for_errors()
-    inputs = PlanInputs(settings, inv, growth, table, Path(stands_path),
-                        None if yields_path is None else Path(yields_path))
+    inputs = PlanInputs(
+        settings,
+        inv,
+        growth,
+        table,
+        Path(stands_path),
+        None if yields_path is None else Path(yields_path),
+    )
     t = settings.terrain
     if len(inv.stands) and not inv.errors:
         if t.dem:
@@ -187,8 +206,9 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
         net_area = np.minimum(area, inputs.net.stands["net_area_ha"].to_numpy(dtype=float))
     reserve = st["reserve"].to_numpy(dtype=bool) | (net_area <= 1e-6)
     cost_class = st["cost_class"].to_numpy(dtype=object) if s.fields.cost_class_field else None
-    values = economics.harvest_values(strata, age0, inputs.growth, s, harvest_cost_per_m3=hc,
-                                      cost_class=cost_class)
+    values = economics.harvest_values(
+        strata, age0, inputs.growth, s, harvest_cost_per_m3=hc, cost_class=cost_class
+    )
     green, gmsg = rules.green_up_periods_for_stands(strata, s, inputs.growth)
     messages.extend(gmsg)
     init_open = rules.initially_open(age0, green, P, L)
@@ -204,8 +224,11 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     if progress:
         progress("adjacency")
     adj = adjacency.build_adjacency(
-        st.geometry, s.adjacency.min_shared_edge_m, s.adjacency.gap_tolerance_m,
-        s.adjacency.corner_adjacency, ids=st["stand_id"].tolist(),
+        st.geometry,
+        s.adjacency.min_shared_edge_m,
+        s.adjacency.gap_tolerance_m,
+        s.adjacency.corner_adjacency,
+        ids=st["stand_id"].tolist(),
     )
     # Overlaps are already reported (with their areas) by the inventory check.
     messages.extend(w for w in adj.warnings if "overlap" not in w)
@@ -419,22 +442,35 @@ def write_plan(
     sched = schedule_frame(inputs, bundle, result.period)
     report = verify.verify_schedule(sched, verify_settings or s, inputs.growth)
     openings, stand_opening = outputs.opening_table(
-        sched, bundle.problem.edges, s.horizon.periods, bundle.problem.green_up_periods,
-        bundle.problem.initially_open, s.rules.max_opening_ha, bundle.problem.opening_area_ha,
+        sched,
+        bundle.problem.edges,
+        s.horizon.periods,
+        bundle.problem.green_up_periods,
+        bundle.problem.initially_open,
+        s.rules.max_opening_ha,
+        bundle.problem.opening_area_ha,
         id_col=s.fields.id_field,
     )
     sched["opening_id"] = stand_opening
     periods_df = outputs.period_table(sched, verify_settings or s, openings)
     strata_df = outputs.strata_table(sched, s)
-    run_df = run_table(inputs, result, report.verdict, {
-        "violations": str(len(report.violations)),
-        "max_opening_ha": str(s.rules.max_opening_ha),
-        **(run_extra or {}),
-    })
+    run_df = run_table(
+        inputs,
+        result,
+        report.verdict,
+        {
+            "violations": str(len(report.violations)),
+            "max_opening_ha": str(s.rules.max_opening_ha),
+            **(run_extra or {}),
+        },
+    )
     stage("writing outputs")
     layers: dict[str, Any] = {
-        "schedule": sched, "openings": openings, "periods": periods_df,
-        "strata": strata_df, "run": run_df,
+        "schedule": sched,
+        "openings": openings,
+        "periods": periods_df,
+        "strata": strata_df,
+        "run": run_df,
     }
     outputs.write_plan_geopackage(out_path, layers)
     extra: list[Path] = []
@@ -446,8 +482,15 @@ def write_plan(
 
         info = dict(zip(run_df["key"], run_df["value"], strict=True))
         views = write_review_files(
-            out_path, sched, openings, periods_df, strata_df, info, s,
-            basemap=s.output.basemap, id_col=s.fields.id_field,
+            out_path,
+            sched,
+            openings,
+            periods_df,
+            strata_df,
+            info,
+            s,
+            basemap=s.output.basemap,
+            id_col=s.fields.id_field,
         )
         extra.extend([Path(views["map"]), Path(views["report"]), *map(Path, views["charts"])])
     if s.output.write_back:

@@ -104,8 +104,7 @@ def _table(frame: pd.DataFrame, cols: Sequence[tuple[str, str, int]], cls: str =
         tds = "".join(f"<td>{html.escape(_num(rec[c], d))}</td>" for c, _l, d in use)
         body.append(f"<tr>{tds}</tr>")
     return (
-        f'<table class="{cls}"><thead><tr>{head}</tr></thead>'
-        f'<tbody>{"".join(body)}</tbody></table>'
+        f'<table class="{cls}"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
     )
 
 
@@ -130,8 +129,11 @@ def _strata_pivot(strata_df: pd.DataFrame) -> str:
                f"{html.escape(_num(area.loc[s].sum(), 1))} ha</small></td>")  # fmt: skip
         rows.append(f"<tr><th>{html.escape(str(s))}</th>{cells}{tot}</tr>")
     return (
-        '<table class="num"><thead><tr>' + head + "</tr></thead><tbody>" + "".join(rows)
-        + "</tbody></table><p class=\"note\">Cells: harvested volume (m³) and area.</p>"
+        '<table class="num"><thead><tr>'
+        + head
+        + "</tr></thead><tbody>"
+        + "".join(rows)
+        + '</tbody></table><p class="note">Cells: harvested volume (m³) and area.</p>'
     )
 
 
@@ -296,6 +298,7 @@ def write_review_files(
     charts = plan_charts(periods_df, schedule, settings, paths["charts"])
     href = os.path.relpath(paths["map"].resolve(), paths["report"].resolve().parent)
     info = {"title": name, **dict(run_info)}
-    write_report(paths["report"], info, periods_df, strata_df, charts, Path(href).as_posix(),
-                 cautions)
+    write_report(
+        paths["report"], info, periods_df, strata_df, charts, Path(href).as_posix(), cautions
+    )
     return {"map": paths["map"], "report": paths["report"], "charts": charts}

@@ -110,8 +110,10 @@ _REFUSED = {
 }
 # Per-period targets in absolute m3 / ha do not split across units (see plan_by_unit).
 _ABSOLUTE_TARGETS = (
-    "rules.period_volume_min_m3", "rules.period_volume_max_m3",
-    "rules.period_area_min_ha", "rules.period_area_max_ha",
+    "rules.period_volume_min_m3",
+    "rules.period_volume_max_m3",
+    "rules.period_area_min_ha",
+    "rules.period_area_max_ha",
 )
 
 #: Which direction of a setting relaxes the rule: +1 larger is looser (``None`` = rule off
@@ -184,8 +186,9 @@ class ScenarioSet:
         return [s.name for s in self.scenarios]
 
 
-def flatten_overrides(table: Mapping[str, Any], prefix: str = "", *,
-                      lists_are_leaves: bool = True) -> dict[str, Any]:
+def flatten_overrides(
+    table: Mapping[str, Any], prefix: str = "", *, lists_are_leaves: bool = True
+) -> dict[str, Any]:
     """Flatten nested TOML tables into dotted keys.
 
     ``{"rules": {"max_opening_ha": 40}}`` and ``{"rules.max_opening_ha": 40}`` (a quoted
@@ -352,8 +355,10 @@ def load_scenarios(path: str | Path, extra_base: Mapping[str, Any] | None = None
     if bad:
         near = difflib.get_close_matches(bad[0], _SECTIONS, n=1)
         hint = f"; did you mean '[{near[0]}]'?" if near else ""
-        msg = (f"{p}: unknown section(s) {', '.join(repr(b) for b in bad)}{hint}; "
-               f"allowed: {', '.join(_SECTIONS)}")
+        msg = (
+            f"{p}: unknown section(s) {', '.join(repr(b) for b in bad)}{hint}; "
+            f"allowed: {', '.join(_SECTIONS)}"
+        )
         raise SettingsError(msg)
 
     inputs = data.get("inputs", {})
@@ -399,8 +404,10 @@ def load_scenarios(path: str | Path, extra_base: Mapping[str, Any] | None = None
 
     def _add(name: str, layers: list[dict[str, Any]], varied: dict[str, Any], origin: str) -> None:
         if not _NAME_RE.match(name):
-            msg = (f"{p}: scenario name {name!r} may hold only letters, digits, '.', '_' and '-' "
-                   "(it becomes a file name)")
+            msg = (
+                f"{p}: scenario name {name!r} may hold only letters, digits, '.', '_' and '-' "
+                "(it becomes a file name)"
+            )
             raise SettingsError(msg)
         s = base_settings
         merged = dict(base)
@@ -448,7 +455,7 @@ def load_scenarios(path: str | Path, extra_base: Mapping[str, Any] | None = None
         labels = {k: str(v) for k, v in flatten_overrides(sw.get("labels", {})).items()}
         for k, d in flatten_overrides(sw.get("relaxed", {})).items():
             if d not in ("higher", "lower"):
-                msg = f"{where}: 'relaxed.{k}' must be \"higher\" or \"lower\", got {d!r}"
+                msg = f'{where}: \'relaxed.{k}\' must be "higher" or "lower", got {d!r}'
                 raise SettingsError(msg)
             relaxed[k] = +1 if d == "higher" else -1
         fixed = flatten_overrides(sw.get("set", {}))
@@ -476,16 +483,20 @@ def load_scenarios(path: str | Path, extra_base: Mapping[str, Any] | None = None
         raise SettingsError(msg)
 
     units_raw = _table(data, "units", p)
-    unit_overrides = {str(u): _resolve_path_keys(flatten_overrides(t), here)
-                      for u, t in units_raw.items() if isinstance(t, dict)}
+    unit_overrides = {
+        str(u): _resolve_path_keys(flatten_overrides(t), here)
+        for u, t in units_raw.items()
+        if isinstance(t, dict)
+    }
     for u, ov in unit_overrides.items():
         try:
             apply_overrides(base_settings, ov)
         except SettingsError as exc:
             msg = f"{p} [units.{u}]: {exc}"
             raise SettingsError(msg) from None
-    return ScenarioSet(p, stands, yields, settings_path, base, tuple(scenarios), unit_overrides,
-                       relaxed)
+    return ScenarioSet(
+        p, stands, yields, settings_path, base, tuple(scenarios), unit_overrides, relaxed
+    )
 
 
 def _table(data: dict[str, Any], key: str, p: Path) -> dict[str, Any]:
@@ -538,8 +549,10 @@ class InputFiles:
                 if v:
                     prev = paths.get(role)
                     if prev is not None and prev != Path(v):
-                        msg = (f"scenarios use different terrain.{role} files ({prev}, {v}); "
-                               "a comparison reads one of each")
+                        msg = (
+                            f"scenarios use different terrain.{role} files ({prev}, {v}); "
+                            "a comparison reads one of each"
+                        )
                         raise SettingsError(msg)
                     paths[role] = Path(v)
         return InputFiles(paths)
@@ -558,12 +571,16 @@ class InputFiles:
         """
         size = self.total_bytes()
         if size > limit_mb * 1e6:
-            msg = (f"inputs total {size / 1e6:.1f} MB, above the {limit_mb:g} MB limit for "
-                   "shipping them with the tasks; put them on a path every worker can read "
-                   "and use --shared-inputs")
+            msg = (
+                f"inputs total {size / 1e6:.1f} MB, above the {limit_mb:g} MB limit for "
+                "shipping them with the tasks; put them on a path every worker can read "
+                "and use --shared-inputs"
+            )
             raise InputError(msg)
-        blobs = {role: [(q.name, q.read_bytes()) for q in _with_sidecars(p)]
-                 for role, p in self.paths.items()}
+        blobs = {
+            role: [(q.name, q.read_bytes()) for q in _with_sidecars(p)]
+            for role, p in self.paths.items()
+        }
         return InputFiles(dict(self.paths), blobs)
 
     def materialize(self, folder: Path) -> dict[str, Path]:
@@ -592,7 +609,8 @@ def _settings_for_worker(settings: Settings, paths: Mapping[str, Path]) -> Setti
     streams = str(paths["streams"]) if t.streams and "streams" in paths else t.streams
     if (dem, streams) != (t.dem, t.streams):
         settings = dataclasses.replace(
-            settings, terrain=dataclasses.replace(t, dem=dem, streams=streams))
+            settings, terrain=dataclasses.replace(t, dem=dem, streams=streams)
+        )
     return settings
 
 
@@ -678,32 +696,45 @@ def _col(df: pd.DataFrame, *names: str) -> np.ndarray:
 
 
 def _period_summary(periods: pd.DataFrame) -> pd.DataFrame:
-    return pd.DataFrame({
-        "period": periods["period"].to_numpy(dtype=int),
-        "volume_m3": _col(periods, "volume_m3", "harvest_volume_m3"),
-        "area_ha": _col(periods, "area_ha", "harvest_area_ha"),
-        "largest_opening_ha": _col(periods, "largest_opening_ha", "max_opening_ha"),
-    })
+    return pd.DataFrame(
+        {
+            "period": periods["period"].to_numpy(dtype=int),
+            "volume_m3": _col(periods, "volume_m3", "harvest_volume_m3"),
+            "area_ha": _col(periods, "area_ha", "harvest_area_ha"),
+            "largest_opening_ha": _col(periods, "largest_opening_ha", "max_opening_ha"),
+        }
+    )
 
 
 def _failure(name: str, exc: BaseException, t0: float) -> ScenarioResult:
-    status = {InfeasibleError: "infeasible", NoSolutionError: "no_solution",
-              InputError: "input_error", SettingsError: "settings_error",
-              OutputError: "output_error"}.get(type(exc))
+    status = {
+        InfeasibleError: "infeasible",
+        NoSolutionError: "no_solution",
+        InputError: "input_error",
+        SettingsError: "settings_error",
+        OutputError: "output_error",
+    }.get(type(exc))
     if status is None:
         status = "failed" if isinstance(exc, SpatialPlanError) else "error"
     err = str(exc) if isinstance(exc, SpatialPlanError) else f"{type(exc).__name__}: {exc}"
-    res = ScenarioResult(name, False, status, error=err,
-                         diagnosis=list(getattr(exc, "diagnosis", []) or []),
-                         wall_s=time.perf_counter() - t0, worker=_where())
+    res = ScenarioResult(
+        name,
+        False,
+        status,
+        error=err,
+        diagnosis=list(getattr(exc, "diagnosis", []) or []),
+        wall_s=time.perf_counter() - t0,
+        worker=_where(),
+    )
     if not isinstance(exc, SpatialPlanError):
         res.messages.append(traceback.format_exc(limit=8))
     return res
 
 
 def _read_tree(folder: Path) -> dict[str, bytes]:
-    return {str(q.relative_to(folder)): q.read_bytes()
-            for q in sorted(folder.rglob("*")) if q.is_file()}
+    return {
+        str(q.relative_to(folder)): q.read_bytes() for q in sorted(folder.rglob("*")) if q.is_file()
+    }
 
 
 def run_scenario_task(task: ScenarioTask, files: InputFiles | None = None) -> ScenarioResult:
@@ -728,15 +759,23 @@ def run_scenario_task(task: ScenarioTask, files: InputFiles | None = None) -> Sc
             written = _read_tree(out_dir)
         r = outcome.result
         return ScenarioResult(
-            task.name, True, str(r.status), npv=float(r.npv), lp_bound=float(r.lp_bound),
+            task.name,
+            True,
+            str(r.status),
+            npv=float(r.npv),
+            lp_bound=float(r.lp_bound),
             cpsat_bound=None if r.cpsat_bound is None else float(r.cpsat_bound),
-            gap=float(r.gap), solve_time_s=float(r.solve_time_s),
-            verify_ok=bool(outcome.verify.ok), verify_verdict=str(outcome.verify.verdict),
+            gap=float(r.gap),
+            solve_time_s=float(r.solve_time_s),
+            verify_ok=bool(outcome.verify.ok),
+            verify_verdict=str(outcome.verify.verdict),
             periods=_period_summary(outcome.periods),
             stand_ids=inputs.inventory.stands["stand_id"].to_numpy(dtype=object),
-            period=np.asarray(r.period, dtype=np.int64), files=written,
+            period=np.asarray(r.period, dtype=np.int64),
+            files=written,
             messages=list(outcome.messages) + [str(w) for w in r.stats.get("warnings", [])],
-            wall_s=time.perf_counter() - t0, worker=_where(),
+            wall_s=time.perf_counter() - t0,
+            worker=_where(),
         )
     except Exception as exc:  # reported per scenario; the other scenarios go on
         return _failure(task.name, exc, t0)
@@ -774,16 +813,19 @@ def _subset_inputs(inputs: Any, mask: np.ndarray) -> Any:
     """The same inputs restricted to the stands in ``mask`` (positions renumbered)."""
     inv = inputs.inventory
     sub_inv = dataclasses.replace(
-        inv, stands=inv.stands[mask].reset_index(drop=True),
+        inv,
+        stands=inv.stands[mask].reset_index(drop=True),
         attributes=inv.attributes[mask].reset_index(drop=True),
     )
     out = dataclasses.replace(inputs, inventory=sub_inv, messages=list(inputs.messages))
     if inputs.terrain is not None:
         out.terrain = dataclasses.replace(
-            inputs.terrain, stands=inputs.terrain.stands[mask].reset_index(drop=True))
+            inputs.terrain, stands=inputs.terrain.stands[mask].reset_index(drop=True)
+        )
     if inputs.net is not None:
         out.net = dataclasses.replace(
-            inputs.net, stands=inputs.net.stands[mask].reset_index(drop=True))
+            inputs.net, stands=inputs.net.stands[mask].reset_index(drop=True)
+        )
     return out
 
 
@@ -812,16 +854,37 @@ def solve_unit_task(task: ScenarioTask, files: InputFiles | None = None) -> Unit
         r = schedule.solve(bundle.problem, settings.solver)
         sched = schedule_frame(sub, bundle, r.period)
         rep = verify.verify_schedule(sched, settings, sub.growth)
-        return UnitSolve(task.unit, True, str(r.status), positions,
-                         np.asarray(r.period, dtype=np.int64), float(r.npv), float(r.lp_bound),
-                         None if r.cpsat_bound is None else float(r.cpsat_bound),
-                         float(r.solve_time_s), bool(rep.ok), str(rep.verdict), worker=_where())
+        return UnitSolve(
+            task.unit,
+            True,
+            str(r.status),
+            positions,
+            np.asarray(r.period, dtype=np.int64),
+            float(r.npv),
+            float(r.lp_bound),
+            None if r.cpsat_bound is None else float(r.cpsat_bound),
+            float(r.solve_time_s),
+            bool(rep.ok),
+            str(rep.verdict),
+            worker=_where(),
+        )
     except Exception as exc:
         err = str(exc) if isinstance(exc, SpatialPlanError) else f"{type(exc).__name__}: {exc}"
-        status = "infeasible" if isinstance(exc, InfeasibleError) else (
-            "no_solution" if isinstance(exc, NoSolutionError) else "error")
-        return UnitSolve(task.unit, False, status, empty, empty, error=err,
-                         diagnosis=list(getattr(exc, "diagnosis", []) or []), worker=_where())
+        status = (
+            "infeasible"
+            if isinstance(exc, InfeasibleError)
+            else ("no_solution" if isinstance(exc, NoSolutionError) else "error")
+        )
+        return UnitSolve(
+            task.unit,
+            False,
+            status,
+            empty,
+            empty,
+            error=err,
+            diagnosis=list(getattr(exc, "diagnosis", []) or []),
+            worker=_where(),
+        )
 
 
 def cross_unit_edges(edges: np.ndarray, units: np.ndarray) -> np.ndarray:
@@ -837,13 +900,19 @@ _STATUS_RANK = ("optimal", "feasible", "time_limit", "interrupted")
 
 
 def _merge_status(statuses: list[str]) -> str:
-    ranks = [(_STATUS_RANK.index(s) if s in _STATUS_RANK else len(_STATUS_RANK), s)
-             for s in statuses]
+    ranks = [
+        (_STATUS_RANK.index(s) if s in _STATUS_RANK else len(_STATUS_RANK), s) for s in statuses
+    ]
     return max(ranks)[1] if ranks else "optimal"
 
 
-def unit_tasks(name: str, settings: Settings, files: InputFiles, units: list[str],
-               unit_overrides: Mapping[str, Mapping[str, Any]] | None = None) -> list[ScenarioTask]:
+def unit_tasks(
+    name: str,
+    settings: Settings,
+    files: InputFiles,
+    units: list[str],
+    unit_overrides: Mapping[str, Mapping[str, Any]] | None = None,
+) -> list[ScenarioTask]:
     """One task per unit, each with the unit's own overrides applied."""
     unit_overrides = unit_overrides or {}
     tasks = []
@@ -862,26 +931,34 @@ def unit_tasks(name: str, settings: Settings, files: InputFiles, units: list[str
 
 def check_units_settings(settings: Settings, where: str = "by-unit planning") -> None:
     """Refuse forest-wide absolute per-period targets, which do not split across units."""
-    bad = [k for k in _ABSOLUTE_TARGETS
-           if getattr(settings.rules, k.split(".")[1]) is not None]
+    bad = [k for k in _ABSOLUTE_TARGETS if getattr(settings.rules, k.split(".")[1]) is not None]
     if bad:
-        msg = (f"{where}: {', '.join(bad)} is a forest-wide amount per period and cannot be "
-               "split across units; give it per unit in [units.<name>] of a scenario file")
+        msg = (
+            f"{where}: {', '.join(bad)} is a forest-wide amount per period and cannot be "
+            "split across units; give it per unit in [units.<name>] of a scenario file"
+        )
         raise SettingsError(msg)
 
 
 def _without_flow_rules(s: Settings) -> Settings:
     """The settings with every rule of the flow family off (they apply per unit)."""
     r = dataclasses.replace(
-        s.rules, flow_tolerance=None, non_declining=False, period_volume_min_m3=None,
-        period_volume_max_m3=None, period_area_min_ha=None, period_area_max_ha=None,
-        ending_volume_fraction=None, ending_mean_age_yr=None,
+        s.rules,
+        flow_tolerance=None,
+        non_declining=False,
+        period_volume_min_m3=None,
+        period_volume_max_m3=None,
+        period_area_min_ha=None,
+        period_area_max_ha=None,
+        ending_volume_fraction=None,
+        ending_mean_age_yr=None,
     )
     return dataclasses.replace(s, rules=r)
 
 
-def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
-                     solves: list[UnitSolve], out_path: Path) -> tuple[Any, ScenarioResult]:
+def merge_unit_plans(
+    name: str, settings: Settings, files: InputFiles, solves: list[UnitSolve], out_path: Path
+) -> tuple[Any, ScenarioResult]:
     """Merge per-unit plans into one plan of the whole layer and write it.
 
     Builds the whole problem (adjacency included) to check for stands of different units
@@ -903,8 +980,15 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
         lines = [f"unit {u.unit}: {u.status}: {u.error}" for u in failed]
         diag = [f"unit {u.unit}: {d}" for u in failed for d in u.diagnosis]
         status = "infeasible" if any(u.status == "infeasible" for u in failed) else failed[0].status
-        return None, ScenarioResult(name, False, status, error="; ".join(lines), diagnosis=diag,
-                                    wall_s=time.perf_counter() - t0, worker=_where())
+        return None, ScenarioResult(
+            name,
+            False,
+            status,
+            error="; ".join(lines),
+            diagnosis=diag,
+            wall_s=time.perf_counter() - t0,
+            worker=_where(),
+        )
     # The inputs stay on disk until the run table (which fingerprints them) is written.
     td = tempfile.mkdtemp(prefix="spatialplan-")
     try:
@@ -925,34 +1009,51 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
             messages.append(
                 f"warning: {len(cross)} adjacent stand pair(s) lie in different units (e.g. "
                 f"{ex}); the opening rule across unit boundaries is not enforced by by-unit "
-                "planning, only checked by the verification of the merged plan")
+                "planning, only checked by the verification of the merged plan"
+            )
         npv = float(sum(u.npv for u in solves))
         lp = float(sum(u.lp_bound for u in solves))
-        cps = None if any(u.cpsat_bound is None for u in solves) else float(
-            sum(u.cpsat_bound for u in solves if u.cpsat_bound is not None))
-        bound = min(lp, cps) if cps is not None and math.isfinite(lp) else (
-            cps if cps is not None else lp)
+        cps = (
+            None
+            if any(u.cpsat_bound is None for u in solves)
+            else float(sum(u.cpsat_bound for u in solves if u.cpsat_bound is not None))
+        )
+        bound = (
+            min(lp, cps)
+            if cps is not None and math.isfinite(lp)
+            else (cps if cps is not None else lp)
+        )
         gap = max(0.0, (bound - npv) / max(abs(bound), 1e-9)) if math.isfinite(bound) else math.inf
         from spatialplan.schedule import PlanResult
 
         result = PlanResult(
-            period, _merge_status([u.status for u in solves]), npv, cps, lp, gap,
+            period,
+            _merge_status([u.status for u in solves]),
+            npv,
+            cps,
+            lp,
+            gap,
             float(max(u.solve_time_s for u in solves)) if solves else 0.0,
             {"units": len(solves), "cross_unit_edges": len(cross), "warnings": []},
         )
-        unit_info = "; ".join(f"{u.unit}: {u.status}, NPV {u.npv:.2f}, {u.verify_verdict}"
-                              for u in solves)
+        unit_info = "; ".join(
+            f"{u.unit}: {u.status}, NPV {u.npv:.2f}, {u.verify_verdict}" for u in solves
+        )
         # Flow rules belong to each unit (checked by each unit's own verification); the
         # merged plan is checked forest-wide for everything else, the spatial rules above all.
         outcome = write_plan(
-            inputs, bundle, result, out_path, verify_settings=_without_flow_rules(s),
+            inputs,
+            bundle,
+            result,
+            out_path,
+            verify_settings=_without_flow_rules(s),
             messages=messages,
             run_extra={
                 "planned_by_unit": "true",
                 "units": unit_info,
                 "cross_unit_edges": str(len(cross)),
                 "verification": "flow rules per unit (each unit verified on its own); all other "
-                                "rules on the merged plan",
+                "rules on the merged plan",
             },
         )
         rep, periods_df = outcome.verify, outcome.periods
@@ -960,11 +1061,22 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
         for u in unit_fail:
             messages.append(f"unit {u.unit} failed its own verification: {u.verify_verdict}")
         res = ScenarioResult(
-            name, True, result.status, npv=npv, lp_bound=lp, cpsat_bound=cps, gap=gap,
-            solve_time_s=result.solve_time_s, verify_ok=bool(rep.ok) and not unit_fail,
-            verify_verdict=str(rep.verdict), periods=_period_summary(periods_df),
+            name,
+            True,
+            result.status,
+            npv=npv,
+            lp_bound=lp,
+            cpsat_bound=cps,
+            gap=gap,
+            solve_time_s=result.solve_time_s,
+            verify_ok=bool(rep.ok) and not unit_fail,
+            verify_verdict=str(rep.verdict),
+            periods=_period_summary(periods_df),
             stand_ids=inputs.inventory.stands["stand_id"].to_numpy(dtype=object),
-            period=period, messages=messages, wall_s=time.perf_counter() - t0, worker=_where(),
+            period=period,
+            messages=messages,
+            wall_s=time.perf_counter() - t0,
+            worker=_where(),
         )
         return outcome, res
     except Exception as exc:
@@ -973,8 +1085,9 @@ def merge_unit_plans(name: str, settings: Settings, files: InputFiles,
         shutil.rmtree(td, ignore_errors=True)
 
 
-def _merge_task(name: str, settings: Settings, files: InputFiles,
-                *solves: UnitSolve) -> ScenarioResult:
+def _merge_task(
+    name: str, settings: Settings, files: InputFiles, *solves: UnitSolve
+) -> ScenarioResult:
     """Dask task: merge the unit plans of one scenario and return the files as bytes."""
     with tempfile.TemporaryDirectory(prefix="spatialplan-") as td:
         out_dir = Path(td) / "out"
@@ -1056,9 +1169,16 @@ def plan_by_unit(
 
         shared = client.scatter(files, broadcast=False, hash=False) if ship else files
         light = InputFiles(dict(files.paths))  # the bytes travel once, via ``shared``
-        futs = [client.submit(solve_unit_task, dataclasses.replace(t, files=light), shared,
-                              pure=False,
-                              key=f"unit-{t.unit}-{os.urandom(4).hex()}") for t in tasks]
+        futs = [
+            client.submit(
+                solve_unit_task,
+                dataclasses.replace(t, files=light),
+                shared,
+                pure=False,
+                key=f"unit-{t.unit}-{os.urandom(4).hex()}",
+            )
+            for t in tasks
+        ]
         for fut in as_completed(futs):
             u = fut.result()
             if on_unit:
@@ -1084,8 +1204,9 @@ def _cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def split_threads(n_tasks: int, cores: int | None = None,
-                  threads_per_task: int | None = None) -> tuple[int, int]:
+def split_threads(
+    n_tasks: int, cores: int | None = None, threads_per_task: int | None = None
+) -> tuple[int, int]:
     """How many single-threaded Dask workers and how many CP-SAT threads per task.
 
     Each Dask worker process runs one task at a time (``threads_per_worker=1``); CP-SAT
@@ -1149,8 +1270,9 @@ class dask_client:  # noqa: N801 - used like a function: ``with dask_client(...)
         How long to wait for the scheduler and its first worker.
     """
 
-    def __init__(self, scheduler: str | None = None, n_workers: int = 1,
-                 timeout_s: float = 60.0) -> None:
+    def __init__(
+        self, scheduler: str | None = None, n_workers: int = 1, timeout_s: float = 60.0
+    ) -> None:
         self.scheduler = scheduler
         self.n_workers = n_workers
         self.timeout_s = timeout_s
@@ -1174,8 +1296,12 @@ class dask_client:  # noqa: N801 - used like a function: ``with dask_client(...)
             # Loopback only; the scheduler's HTTP server takes a free port (not 8787, which a
             # user's own Dask dashboard may hold).
             self.cluster = LocalCluster(
-                n_workers=self.n_workers, threads_per_worker=1, processes=True,
-                host="127.0.0.1", dashboard_address=":0", silence_logs=logging.ERROR,
+                n_workers=self.n_workers,
+                threads_per_worker=1,
+                processes=True,
+                host="127.0.0.1",
+                dashboard_address=":0",
+                silence_logs=logging.ERROR,
             )
             self.client = Client(self.cluster)
         return self.client
@@ -1233,8 +1359,10 @@ def rule_costs(scen: ScenarioSet, results: Mapping[str, ScenarioResult]) -> pd.D
         Indexed by scenario name.
     """
     direction = {**RELAX_DIRECTION, **scen.relaxed}
-    flat = {s.name: {k: v for k, v in _flat_settings(s.settings).items()
-                     if not k.startswith("output.")} for s in scen.scenarios}
+    flat = {
+        s.name: {k: v for k, v in _flat_settings(s.settings).items() if not k.startswith("output.")}
+        for s in scen.scenarios
+    }
     names = scen.names
     keys = sorted({k for n in names for k in flat[n]})
     varying = [k for k in keys if len({repr(flat[n].get(k)) for n in names}) > 1]
@@ -1271,8 +1399,9 @@ def _flat_settings(s: Settings) -> dict[str, Any]:
     return flatten_overrides(s.to_dict())
 
 
-def comparison_table(scen: ScenarioSet, results: Mapping[str, ScenarioResult],
-                     out_dir: Path | None = None) -> pd.DataFrame:
+def comparison_table(
+    scen: ScenarioSet, results: Mapping[str, ScenarioResult], out_dir: Path | None = None
+) -> pd.DataFrame:
     """One row per scenario: what it set, how it ran, NPV, bounds, flows, cost of rules.
 
     Columns: ``scenario``, ``origin``, the varied settings (``set:<key>``), ``status``,
@@ -1295,13 +1424,21 @@ def comparison_table(scen: ScenarioSet, results: Mapping[str, ScenarioResult],
         for k in varied_keys:
             v = s.overrides.get(k, "")
             row[f"set:{k}"] = "off" if isinstance(v, str) and v == OFF else v
-        row.update({
-            "status": r.status, "error": r.error or "", "diagnosis": " | ".join(r.diagnosis),
-            "npv": r.npv, "lp_bound": r.lp_bound,
-            "cpsat_bound": math.nan if r.cpsat_bound is None else r.cpsat_bound,
-            "gap": r.gap, "solve_time_s": r.solve_time_s, "wall_s": r.wall_s,
-            "verify_ok": r.verify_ok if r.ok else False, "verify_verdict": r.verify_verdict,
-        })
+        row.update(
+            {
+                "status": r.status,
+                "error": r.error or "",
+                "diagnosis": " | ".join(r.diagnosis),
+                "npv": r.npv,
+                "lp_bound": r.lp_bound,
+                "cpsat_bound": math.nan if r.cpsat_bound is None else r.cpsat_bound,
+                "gap": r.gap,
+                "solve_time_s": r.solve_time_s,
+                "wall_s": r.wall_s,
+                "verify_ok": r.verify_ok if r.ok else False,
+                "verify_verdict": r.verify_verdict,
+            }
+        )
         pdf = r.periods
         vols = np.full(P, np.nan)
         areas = np.full(P, np.nan)
@@ -1340,7 +1477,8 @@ def _write_files(out_dir: Path, files: Mapping[str, bytes]) -> None:
 
 def _outputs_of(scen: ScenarioSet, out_dir: Path) -> list[Path]:
     return [out_dir / "comparison.csv", out_dir / "comparison.png"] + [
-        out_dir / f"{n}.gpkg" for n in scen.names]
+        out_dir / f"{n}.gpkg" for n in scen.names
+    ]
 
 
 def check_outputs(scen: ScenarioSet, out_dir: str | Path, overwrite: bool) -> Path:
@@ -1367,11 +1505,17 @@ def check_outputs(scen: ScenarioSet, out_dir: str | Path, overwrite: bool) -> Pa
         raise OutputError(msg)
     existing = [p for p in _outputs_of(scen, out) if p.exists()]
     if existing and not overwrite:
-        msg = (f"output folder {out} already holds {', '.join(p.name for p in existing[:5])}"
-               f"{' ...' if len(existing) > 5 else ''}; pass --overwrite to replace them")
+        msg = (
+            f"output folder {out} already holds {', '.join(p.name for p in existing[:5])}"
+            f"{' ...' if len(existing) > 5 else ''}; pass --overwrite to replace them"
+        )
         raise OutputError(msg)
-    inputs = {p.resolve() for p in InputFiles.collect(
-        scen.stands, scen.yields, [s.settings for s in scen.scenarios]).paths.values()}
+    inputs = {
+        p.resolve()
+        for p in InputFiles.collect(
+            scen.stands, scen.yields, [s.settings for s in scen.scenarios]
+        ).paths.values()
+    }
     clash = [p for p in _outputs_of(scen, out) if p.resolve() in inputs]
     if clash:
         msg = f"output {clash[0]} is an input file; choose another --out"
@@ -1436,8 +1580,9 @@ def run_comparison(
         if client is None:
             ship = False
         else:
-            sizes = {str(p): q.stat().st_size for p in files.paths.values()
-                     for q in _with_sidecars(p)}
+            sizes = {
+                str(p): q.stat().st_size for p in files.paths.values() for q in _with_sidecars(p)
+            }
             seen = client.run(_visible_on_worker, sizes)
             ship = not all(seen.values())
     mode = "shipped" if ship else "shared"
@@ -1464,8 +1609,10 @@ def run_comparison(
         for s in scen.scenarios:
             task = ScenarioTask(s.name, s.settings, files)
             if by_unit:
-                solves = [solve_unit_task(t) for t in
-                          unit_tasks(s.name, s.settings, files, units, scen.unit_overrides)]
+                solves = [
+                    solve_unit_task(t)
+                    for t in unit_tasks(s.name, s.settings, files, units, scen.unit_overrides)
+                ]
                 _done(_merge_task(s.name, s.settings, files, *solves))
             else:
                 _done(run_scenario_task(task))
@@ -1478,15 +1625,29 @@ def run_comparison(
         tag = os.urandom(4).hex()
         for s in scen.scenarios:
             if by_unit:
-                ufuts = [client.submit(solve_unit_task, t, shared,
-                                       pure=False, key=f"unit-{s.name}-{t.unit}-{tag}")
-                         for t in unit_tasks(s.name, s.settings, light, units,
-                                             scen.unit_overrides)]
-                f = client.submit(_merge_task, s.name, s.settings, shared, *ufuts, pure=False,
-                                  key=f"merge-{s.name}-{tag}")
+                ufuts = [
+                    client.submit(
+                        solve_unit_task, t, shared, pure=False, key=f"unit-{s.name}-{t.unit}-{tag}"
+                    )
+                    for t in unit_tasks(s.name, s.settings, light, units, scen.unit_overrides)
+                ]
+                f = client.submit(
+                    _merge_task,
+                    s.name,
+                    s.settings,
+                    shared,
+                    *ufuts,
+                    pure=False,
+                    key=f"merge-{s.name}-{tag}",
+                )
             else:
-                f = client.submit(run_scenario_task, ScenarioTask(s.name, s.settings, light),
-                                  shared, pure=False, key=f"scenario-{s.name}-{tag}")
+                f = client.submit(
+                    run_scenario_task,
+                    ScenarioTask(s.name, s.settings, light),
+                    shared,
+                    pure=False,
+                    key=f"scenario-{s.name}-{tag}",
+                )
             futs[f] = s.name
         try:
             for fut in as_completed(list(futs)):
@@ -1509,8 +1670,9 @@ def run_comparison(
     if chart:
         from spatialplan.charts import comparison_chart
 
-        chart_path = comparison_chart(table, out / "comparison.png",
-                                      title=f"Scenario comparison: {scen.path.name}")
+        chart_path = comparison_chart(
+            table, out / "comparison.png", title=f"Scenario comparison: {scen.path.name}"
+        )
     return ComparisonResult(table, results, csv_path, chart_path, mode)
 
 
@@ -1523,8 +1685,10 @@ def _read_units(stands: str | Path, fields: Any) -> tuple[Any, np.ndarray]:
     units = _unit_labels(inv.stands)
     missing = [str(i) for i, v in zip(inv.stands["stand_id"], units, strict=True) if v is None]
     if missing:
-        msg = (f"{stands}: {len(missing)} stand(s) have no value in unit field "
-               f"'{fields.unit_field}': {', '.join(missing[:20])}")
+        msg = (
+            f"{stands}: {len(missing)} stand(s) have no value in unit field "
+            f"'{fields.unit_field}': {', '.join(missing[:20])}"
+        )
         raise InputError(msg)
     return inv, units
 
@@ -1538,8 +1702,10 @@ def units_for(scen: ScenarioSet) -> list[str]:
         raise SettingsError(msg)
     f = next(iter(fields))
     if not f.unit_field:
-        msg = (f"{scen.path}: --by-unit needs fields.unit_field (the attribute naming each "
-               "stand's management unit)")
+        msg = (
+            f"{scen.path}: --by-unit needs fields.unit_field (the attribute naming each "
+            "stand's management unit)"
+        )
         raise SettingsError(msg)
     for s in scen.scenarios:
         check_units_settings(s.settings, f"{scen.path} scenario '{s.name}'")

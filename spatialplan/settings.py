@@ -519,7 +519,9 @@ def _resolve_paths(s: Settings, base: Path) -> Settings:
     return s
 
 
-def load_settings(path: str | Path | None = None, overrides: dict[str, Any] | None = None) -> Settings:
+def load_settings(
+    path: str | Path | None = None, overrides: dict[str, Any] | None = None
+) -> Settings:
     """Read settings from a TOML file (or defaults) and apply dotted-key overrides.
 
     Parameters

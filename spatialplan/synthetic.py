@@ -16,7 +16,9 @@ import shapely
 __all__ = ["smooth_field", "synthetic_yield_table", "voronoi_forest"]
 
 
-def smooth_field(xy: np.ndarray, rng: np.random.Generator, scale_m: float, n_bumps: int = 40) -> np.ndarray:
+def smooth_field(
+    xy: np.ndarray, rng: np.random.Generator, scale_m: float, n_bumps: int = 40
+) -> np.ndarray:
     """A smooth random field at points ``xy`` (sum of Gaussian bumps), rescaled to [0, 1].
 
     Parameters
@@ -133,7 +135,9 @@ def _voronoi_cells(pts: np.ndarray, box: shapely.Polygon) -> np.ndarray:
     return cells
 
 
-def synthetic_yield_table(strata: list[str] | None = None, max_age: int = 150, step: int = 10) -> pd.DataFrame:
+def synthetic_yield_table(
+    strata: list[str] | None = None, max_age: int = 150, step: int = 10
+) -> pd.DataFrame:
     """A long-format yield table (stratum, age, volume, diameter) from Chapman-Richards curves.
 
     The curves are invented for testing: asymptotes 300-700 m3/ha, with a mean diameter
@@ -148,5 +152,7 @@ def synthetic_yield_table(strata: list[str] | None = None, max_age: int = 150, s
         for age in range(step, max_age + 1, step):
             vol = a * (1 - np.exp(-k * age)) ** c
             dia = 60.0 * (1 - np.exp(-0.02 * age)) ** 1.1
-            rows.append({"stratum": s, "age": age, "volume": round(vol, 1), "diameter": round(dia, 1)})
+            rows.append(
+                {"stratum": s, "age": age, "volume": round(vol, 1), "diameter": round(dia, 1)}
+            )
     return pd.DataFrame(rows)

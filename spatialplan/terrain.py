@@ -826,8 +826,12 @@ def _read_streams(path: Path, layer: str | None) -> gpd.GeoDataFrame:
     from spatialplan.inventory import read_vector_layer
 
     gdf, _ = read_vector_layer(
-        path, layer, what="streams file", holds="the streams",
-        layer_hint="terrain.streams_layer", expect="a line layer is expected",
+        path,
+        layer,
+        what="streams file",
+        holds="the streams",
+        layer_hint="terrain.streams_layer",
+        expect="a line layer is expected",
     )
     if gdf.crs is None:
         msg = f"streams file {path} has no CRS; assign one in a GIS before using it"
@@ -849,9 +853,8 @@ def _buffer_widths(lines: gpd.GeoDataFrame, settings: TerrainSettings, path: Pat
     by_class = settings.stream_buffer_by_class
     neg = sorted(k for k, v in by_class.items() if not v >= 0)
     if neg:
-        msg = (
-            "terrain.stream_buffer_by_class: widths must be >= 0 m, got "
-            + ", ".join(f"{k} = {by_class[k]}" for k in neg)
+        msg = "terrain.stream_buffer_by_class: widths must be >= 0 m, got " + ", ".join(
+            f"{k} = {by_class[k]}" for k in neg
         )
         raise SettingsError(msg)
     if fld is None:

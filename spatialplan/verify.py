@@ -445,9 +445,18 @@ def verify_schedule(
     if schedule.crs is not None and schedule.crs.is_geographic:
         # Degrees: geodesic area on the ellipsoid (what a projection only approximates).
         geod = schedule.crs.get_geod()
-        gross_ha = np.array(
-            [abs(geod.geometry_area_perimeter(g)[0]) if g is not None and not g.is_empty else 0.0
-             for g in schedule.geometry], dtype=float) / 10_000.0
+        gross_ha = (
+            np.array(
+                [
+                    abs(geod.geometry_area_perimeter(g)[0])
+                    if g is not None and not g.is_empty
+                    else 0.0
+                    for g in schedule.geometry
+                ],
+                dtype=float,
+            )
+            / 10_000.0
+        )
     else:
         gross_ha = gdf.geometry.area.to_numpy(dtype=float) / 10_000.0
     if "net_area_ha" in gdf.columns:

@@ -15,20 +15,31 @@ from spatialplan.synthetic import synthetic_yield_table
 CRS = "EPSG:32610"
 
 
-def grid_stands(nx: int = 4, ny: int = 3, size_m: float = 200.0, crs: str | None = CRS,
-                origin: tuple[float, float] = (500_000.0, 5_000_000.0)) -> gpd.GeoDataFrame:
+def grid_stands(
+    nx: int = 4,
+    ny: int = 3,
+    size_m: float = 200.0,
+    crs: str | None = CRS,
+    origin: tuple[float, float] = (500_000.0, 5_000_000.0),
+) -> gpd.GeoDataFrame:
     """A grid of square stands (4 ha each at 200 m), ids S01.., ages 10, 20, ..."""
     x0, y0 = origin
     geoms, ids, ages, strata = [], [], [], []
     k = 0
     for j in range(ny):
         for i in range(nx):
-            geoms.append(shapely.box(x0 + i * size_m, y0 + j * size_m, x0 + (i + 1) * size_m, y0 + (j + 1) * size_m))
+            geoms.append(
+                shapely.box(
+                    x0 + i * size_m, y0 + j * size_m, x0 + (i + 1) * size_m, y0 + (j + 1) * size_m
+                )
+            )
             k += 1
             ids.append(f"S{k:02d}")
             ages.append(10 * k)
             strata.append("S1" if (i + j) % 2 == 0 else "S2")
-    return gpd.GeoDataFrame({"stand_id": ids, "age": ages, "stratum": strata}, geometry=geoms, crs=crs)
+    return gpd.GeoDataFrame(
+        {"stand_id": ids, "age": ages, "stratum": strata}, geometry=geoms, crs=crs
+    )
 
 
 def write_layer(gdf: gpd.GeoDataFrame, path: Path, layer: str = "stands") -> Path:

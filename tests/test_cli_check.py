@@ -17,8 +17,10 @@ from tests.conftest import grid_stands, sha256, write_layer
 def test_check_demo_exits_zero() -> None:
     f = demo_files()
     before = sha256(f["stands"])
-    res = CliRunner().invoke(cli, ["check", str(f["stands"]), "--yields", str(f["yields"]),
-                                   "--settings", str(f["settings"])])
+    res = CliRunner().invoke(
+        cli,
+        ["check", str(f["stands"]), "--yields", str(f["yields"]), "--settings", str(f["settings"])],
+    )
     assert res.exit_code == 0, res.output
     assert "Inputs are usable" in res.output
     assert "660" in res.output
@@ -45,7 +47,9 @@ def test_check_duplicate_ids_exits_one(tmp_path: Path, yields_csv: Path) -> None
 def test_check_self_intersection_names_stand(tmp_path: Path, yields_csv: Path) -> None:
     g = grid_stands(2, 1)
     x0, y0 = 500_000.0, 5_000_000.0
-    g.loc[1, "geometry"] = shapely.Polygon([(x0 + 200, y0), (x0 + 400, y0 + 200), (x0 + 400, y0), (x0 + 200, y0 + 200)])
+    g.loc[1, "geometry"] = shapely.Polygon(
+        [(x0 + 200, y0), (x0 + 400, y0 + 200), (x0 + 400, y0), (x0 + 200, y0 + 200)]
+    )
     p = write_layer(g, tmp_path / "bow.gpkg")
     res = CliRunner().invoke(cli, ["check", str(p), "--yields", str(yields_csv)])
     assert res.exit_code == 0, res.output
@@ -58,13 +62,19 @@ def test_check_unmatched_strata(tmp_path: Path, yields_csv: Path) -> None:
     p = write_layer(g, tmp_path / "um.gpkg")
     res = CliRunner().invoke(cli, ["check", str(p), "--yields", str(yields_csv)])
     assert res.exit_code == 1 and "'S9'" in res.output and "S01" in res.output
-    res = CliRunner().invoke(cli, ["check", str(p), "--yields", str(yields_csv), "--skip-unmatched"])
+    res = CliRunner().invoke(
+        cli, ["check", str(p), "--yields", str(yields_csv), "--skip-unmatched"]
+    )
     assert res.exit_code == 0, res.output
 
 
 def test_check_subprocess_no_traceback(tmp_path: Path) -> None:
-    res = subprocess.run([sys.executable, "-m", "spatialplan", "check", str(tmp_path / "missing.gpkg")],
-                         capture_output=True, text=True, check=False)
+    res = subprocess.run(
+        [sys.executable, "-m", "spatialplan", "check", str(tmp_path / "missing.gpkg")],
+        capture_output=True,
+        text=True,
+        check=False,
+    )
     assert res.returncode == 1
     assert "stand layer not found" in res.stderr
     assert "Traceback" not in res.stderr

@@ -37,8 +37,9 @@ labels = { "rules.max_opening_ha" = "open" }
 
 
 def _tiny(folder: Path, extra: str = "") -> Path:
-    voronoi_forest(20, seed=5, mean_area_ha=8).to_file(folder / "stands.gpkg", layer="stands",
-                                                       driver="GPKG")
+    voronoi_forest(20, seed=5, mean_area_ha=8).to_file(
+        folder / "stands.gpkg", layer="stands", driver="GPKG"
+    )
     synthetic_yield_table().to_csv(folder / "yields.csv", index=False)
     p = folder / "scenarios.toml"
     p.write_text(SCENARIOS + extra, encoding="utf-8")
@@ -104,8 +105,7 @@ def _free_port() -> int:
 
 
 def _worker_joined(distributed: object, addr: str) -> bool:
-    with contextlib.suppress(OSError, TimeoutError), \
-            distributed.Client(addr, timeout="5s") as c:  # type: ignore[attr-defined]
+    with contextlib.suppress(OSError, TimeoutError), distributed.Client(addr, timeout="5s") as c:  # type: ignore[attr-defined]
         c.wait_for_workers(1, timeout=10)
         return True
     return False
@@ -132,12 +132,36 @@ def test_compare_on_separately_started_scheduler(tmp_path: Path) -> None:
     with open(logs, "wb") as log:
         try:
             sched = subprocess.Popen(
-                [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
-                 "--port", str(port), "--no-dashboard"], stdout=log, stderr=log)
+                [
+                    sys.executable,
+                    "-m",
+                    "distributed.cli.dask_scheduler",
+                    "--host",
+                    "127.0.0.1",
+                    "--port",
+                    str(port),
+                    "--no-dashboard",
+                ],
+                stdout=log,
+                stderr=log,
+            )
             worker = subprocess.Popen(
-                [sys.executable, "-m", "distributed.cli.dask_worker", addr, "--nworkers", "1",
-                 "--nthreads", "1", "--no-dashboard", "--host", "127.0.0.1"],
-                stdout=log, stderr=log)
+                [
+                    sys.executable,
+                    "-m",
+                    "distributed.cli.dask_worker",
+                    addr,
+                    "--nworkers",
+                    "1",
+                    "--nthreads",
+                    "1",
+                    "--no-dashboard",
+                    "--host",
+                    "127.0.0.1",
+                ],
+                stdout=log,
+                stderr=log,
+            )
             deadline = time.monotonic() + 90
             while not _worker_joined(distributed, addr):  # bounded wait for the worker
                 assert time.monotonic() < deadline, logs.read_text(errors="replace")
@@ -145,8 +169,7 @@ def test_compare_on_separately_started_scheduler(tmp_path: Path) -> None:
                 assert worker.poll() is None, logs.read_text(errors="replace")
                 time.sleep(0.5)
             out = tmp_path / "cmp"
-            r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out),
-                                         "--scheduler", addr])
+            r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out), "--scheduler", addr])
             assert r.exit_code == 0, r.output
             assert "inputs: shared" in r.output  # the worker sees the same files
             t = _check_outputs(out, ["open15", "openoff"])
@@ -168,12 +191,16 @@ def test_compare_by_unit_cli(tmp_path: Path) -> None:
     a["stand_id"] = "N" + a["stand_id"]
     b["stand_id"] = "S" + b["stand_id"]
     a["block"], b["block"] = "North", "South"
-    pd.concat([a, b], ignore_index=True).to_file(tmp_path / "stands.gpkg", layer="stands",
-                                                 driver="GPKG")
+    pd.concat([a, b], ignore_index=True).to_file(
+        tmp_path / "stands.gpkg", layer="stands", driver="GPKG"
+    )
     synthetic_yield_table().to_csv(tmp_path / "yields.csv", index=False)
     p = tmp_path / "scenarios.toml"
-    p.write_text(SCENARIOS.replace('[base]\n', '[base]\n"fields.unit_field" = "block"\n')
-                 + '\n[units.South]\n"rules.flow_tolerance" = 0.3\n', encoding="utf-8")
+    p.write_text(
+        SCENARIOS.replace("[base]\n", '[base]\n"fields.unit_field" = "block"\n')
+        + '\n[units.South]\n"rules.flow_tolerance" = 0.3\n',
+        encoding="utf-8",
+    )
     out = tmp_path / "cmp"
     r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out), "--by-unit"])
     assert r.exit_code == 0, r.output

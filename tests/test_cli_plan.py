@@ -26,9 +26,26 @@ def small_forest(tmp_path: Path, yields_csv: Path) -> tuple[Path, Path]:
 
 
 def _plan_args(stands: Path, yields: Path, out: Path, *extra: str) -> list[str]:
-    return ["plan", str(stands), "--yields", str(yields), "--out", str(out), "--price", "40",
-            "--periods", "4", "--min-age", "30", "--time-limit", "8", "--workers", "2",
-            "--no-map", *extra]
+    return [
+        "plan",
+        str(stands),
+        "--yields",
+        str(yields),
+        "--out",
+        str(out),
+        "--price",
+        "40",
+        "--periods",
+        "4",
+        "--min-age",
+        "30",
+        "--time-limit",
+        "8",
+        "--workers",
+        "2",
+        "--no-map",
+        *extra,
+    ]
 
 
 def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Path, Path]) -> None:
@@ -41,14 +58,25 @@ def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Pat
     assert (sha256(stands), sha256(yields)) == before  # inputs untouched
     sched = pyogrio.read_dataframe(out, layer="schedule")
     assert len(sched) == 60
-    for col in ("stand_id", "age", "stratum", "period", "harvest_year", "age_at_harvest", "volume_m3", "value"):
+    for col in (
+        "stand_id",
+        "age",
+        "stratum",
+        "period",
+        "harvest_year",
+        "age_at_harvest",
+        "volume_m3",
+        "value",
+    ):
         assert col in sched.columns
     cut = sched["period"].notna()
     assert cut.any()
     # Objective with only a single price: area x volume x price x (1 + r)^-t (issue 9);
     # `value` is each stand's share of it.
     t = (sched.loc[cut, "period"].astype(float) - 0.5) * 5.0
-    assert np.allclose(sched.loc[cut, "value"], sched.loc[cut, "volume_m3"] * 40.0 * 1.04 ** -t, rtol=1e-9)
+    assert np.allclose(
+        sched.loc[cut, "value"], sched.loc[cut, "volume_m3"] * 40.0 * 1.04**-t, rtol=1e-9
+    )
     assert (sched.loc[cut, "age_at_harvest"] >= 30 - 1e-9).all()
     with sqlite3.connect(out) as con:
         run = dict(con.execute("select key, value from run").fetchall())
@@ -78,7 +106,9 @@ def test_plan_infeasible_rules_exit_two(tmp_path: Path, small_forest: tuple[Path
     stands, yields = small_forest
     settings = tmp_path / "s.toml"
     settings.write_text("[rules]\nperiod_volume_min_m3 = 1e9\n")
-    res = CliRunner().invoke(cli, [*_plan_args(stands, yields, tmp_path / "o.gpkg"), "--settings", str(settings)])
+    res = CliRunner().invoke(
+        cli, [*_plan_args(stands, yields, tmp_path / "o.gpkg"), "--settings", str(settings)]
+    )
     assert res.exit_code == 2, res.output
     assert not (tmp_path / "o.gpkg").exists()
 
@@ -86,8 +116,13 @@ def test_plan_infeasible_rules_exit_two(tmp_path: Path, small_forest: tuple[Path
 @pytest.mark.slow
 def test_demo_subprocess(tmp_path: Path) -> None:
     out = tmp_path / "demo"
-    res = subprocess.run([sys.executable, "-m", "spatialplan", "demo", "--out", str(out), "--time-limit", "15"],
-                         capture_output=True, text=True, check=False, timeout=600)
+    res = subprocess.run(
+        [sys.executable, "-m", "spatialplan", "demo", "--out", str(out), "--time-limit", "15"],
+        capture_output=True,
+        text=True,
+        check=False,
+        timeout=600,
+    )
     assert res.returncode == 0, res.stderr[-3000:]
     for name in ("brennick_plan.gpkg", "brennick_plan.map.html", "brennick_plan.report.html"):
         assert (out / name).is_file()
@@ -108,12 +143,25 @@ def test_plan_by_unit_merges_units(tmp_path: Path, yields_csv: Path) -> None:
     p = tmp_path / "units.gpkg"
     g.to_file(p, layer="stands", driver="GPKG")
     out = tmp_path / "units_plan.gpkg"
-    res = CliRunner().invoke(cli, [*_plan_args(p, yields_csv, out), "--by-unit", "--unit-field", "mu"])
+    res = CliRunner().invoke(
+        cli, [*_plan_args(p, yields_csv, out), "--by-unit", "--unit-field", "mu"]
+    )
     assert res.exit_code == 0, res.output
     sched = pyogrio.read_dataframe(out, layer="schedule")
     assert set(sched["mu"]) == {"north", "south"}
     with sqlite3.connect(out) as con:
         run = dict(con.execute("select key, value from run").fetchall())
     assert run["planned_by_unit"] == "true"
-    res = CliRunner().invoke(cli, ["plan", str(p), "--yields", str(yields_csv), "--out", str(tmp_path / "x.gpkg"), "--by-unit"])
+    res = CliRunner().invoke(
+        cli,
+        [
+            "plan",
+            str(p),
+            "--yields",
+            str(yields_csv),
+            "--out",
+            str(tmp_path / "x.gpkg"),
+            "--by-unit",
+        ],
+    )
     assert res.exit_code == 1 and "--unit-field" in res.output

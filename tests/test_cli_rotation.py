@@ -13,8 +13,14 @@ from spatialplan.settings import Economics, GrowthSettings, Settings, YieldColum
 from spatialplan.synthetic import synthetic_yield_table
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG file signature (ISO/IEC 15948, section 5.2)
-COLUMNS = ["mai_max_age", "mai_max_m3_ha_yr", "value_mai_max_age", "fisher_age",
-           "faustmann_age", "lev_per_ha"]
+COLUMNS = [
+    "mai_max_age",
+    "mai_max_m3_ha_yr",
+    "value_mai_max_age",
+    "fisher_age",
+    "faustmann_age",
+    "lev_per_ha",
+]
 
 
 @pytest.fixture
@@ -28,9 +34,21 @@ def yields(tmp_path):
 
 def test_rotation_writes_csv_and_charts(tmp_path, yields):
     out = tmp_path / "rotation.csv"
-    args = ["rotation", "--yields", str(yields), "--yield-keys", "species,site",
-            "--discount-rate", "0.03", "--price", "40", "--regeneration-cost", "1200",
-            "--out", str(out)]
+    args = [
+        "rotation",
+        "--yields",
+        str(yields),
+        "--yield-keys",
+        "species,site",
+        "--discount-rate",
+        "0.03",
+        "--price",
+        "40",
+        "--regeneration-cost",
+        "1200",
+        "--out",
+        str(out),
+    ]
     res = CliRunner().invoke(cli, args)
     assert res.exit_code == 0, res.output
     df = pd.read_csv(out, dtype={"site": str})
@@ -40,8 +58,9 @@ def test_rotation_writes_csv_and_charts(tmp_path, yields):
     # the CSV holds what the library computes for the same inputs
     tab = load_yield_table(yields, ["species", "site"], YieldColumns())
     g = build_growth_model(tab, GrowthSettings(), ["species", "site"])
-    st = Settings(economics=Economics(discount_rate=0.03, price_per_m3=40.0,
-                                      regeneration_cost_per_ha=1200.0))
+    st = Settings(
+        economics=Economics(discount_rate=0.03, price_per_m3=40.0, regeneration_cost_per_ha=1200.0)
+    )
     ref = rotation_table(g, g.strata, st)
     for c in COLUMNS:
         assert df[c].tolist() == pytest.approx(ref[c].tolist(), rel=1e-5)
@@ -64,8 +83,9 @@ def test_rotation_without_price_names_the_setting(tmp_path, yields, capsys):
 
     out = tmp_path / "r.csv"
     with pytest.raises(SystemExit) as ei:
-        main(["rotation", "--yields", str(yields), "--yield-keys", "species,site",
-              "--out", str(out)])
+        main(
+            ["rotation", "--yields", str(yields), "--yield-keys", "species,site", "--out", str(out)]
+        )
     assert ei.value.code == 1
     assert "economics.price_per_m3" in capsys.readouterr().err
     assert not out.exists()
@@ -81,8 +101,9 @@ def test_rotation_price_schedule_from_settings(tmp_path, yields):
         encoding="utf-8",
     )
     out = tmp_path / "r.csv"
-    res = CliRunner().invoke(cli, ["rotation", "--yields", str(yields), "--settings", str(toml),
-                                   "--out", str(out)])
+    res = CliRunner().invoke(
+        cli, ["rotation", "--yields", str(yields), "--settings", str(toml), "--out", str(out)]
+    )
     assert res.exit_code == 0, res.output
     df = pd.read_csv(out)
     assert (df["lev_per_ha"] > 0).all()
@@ -103,8 +124,9 @@ def test_rotation_parametric_strata_only(tmp_path):
         encoding="utf-8",
     )
     out = tmp_path / "cr.csv"
-    res = CliRunner().invoke(cli, ["rotation", "--settings", str(toml), "--out", str(out),
-                                   "--no-charts"])
+    res = CliRunner().invoke(
+        cli, ["rotation", "--settings", str(toml), "--out", str(out), "--no-charts"]
+    )
     assert res.exit_code == 0, res.output
     df = pd.read_csv(out)
     c = 2.8

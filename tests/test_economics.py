@@ -125,11 +125,14 @@ def test_harvest_cost_precedence_and_unknown_class():
 # ---------------------------------------------------------------------------------------
 # Faustmann LEV
 # ---------------------------------------------------------------------------------------
-@pytest.mark.parametrize(("S", "T", "r", "C", "a"), [
-    (12_000.0, 60, 0.03, 1_500.0, 0.0),
-    (30_000.0, 45, 0.05, 2_000.0, 15.0),
-    (5_000.0, 90, 0.02, 0.0, 5.0),
-])
+@pytest.mark.parametrize(
+    ("S", "T", "r", "C", "a"),
+    [
+        (12_000.0, 60, 0.03, 1_500.0, 0.0),
+        (30_000.0, 45, 0.05, 2_000.0, 15.0),
+        (5_000.0, 90, 0.02, 0.0, 5.0),
+    ],
+)
 def test_lev_closed_form_and_truncated_series(S, T, r, C, a):
     # Faustmann (1849): bare land worth the sum over rotations j = 0, 1, ... of
     # (-C + S (1+r)^-T) (1+r)^-(jT), minus annual costs a paid at the end of every year.
@@ -168,8 +171,9 @@ def test_faustmann_shorter_than_fisher_when_lev_positive(r, C):
     # Faustmann-Pressler-Ohlin: the optimal rotation with positive land value is shorter
     # than the single-rotation (Fisher 1930) age (Samuelson 1976, Economic Inquiry 14:466-492).
     g = _cr_model()
-    rc = rotation_curves(g, "X", _settings(discount_rate=r, price_per_m3=40.0,
-                                           regeneration_cost_per_ha=C))
+    rc = rotation_curves(
+        g, "X", _settings(discount_rate=r, price_per_m3=40.0, regeneration_cost_per_ha=C)
+    )
     if (r, C) == (0.07, 1500.0):
         # a negative land value reverses the order (same condition: the threshold
         # r (1 + LEV/S) is then below r)
@@ -227,21 +231,32 @@ def test_rotation_rules_on_brute_force_grid():
     # Each rule recomputed by brute force from its definition (Fisher 1930 single rotation:
     # max S(T)(1+r)^-T; Faustmann 1849: max LEV; forest rent: max (S - C)/T; MAI: max V/T).
     g = _table_model()
-    st_ = _settings(discount_rate=0.035, price_per_m3=50.0, harvest_cost_per_m3=12.0,
-                    regeneration_cost_per_ha=900.0, annual_cost_per_ha=8.0)
+    st_ = _settings(
+        discount_rate=0.035,
+        price_per_m3=50.0,
+        harvest_cost_per_m3=12.0,
+        regeneration_cost_per_ha=900.0,
+        annual_cost_per_ha=8.0,
+    )
     ages = np.arange(1, 301, dtype=float)
     df = rotation_table(g, ["S2", "S5"], st_)
-    assert list(df.columns) == ["stratum", "mai_max_age", "mai_max_m3_ha_yr", "mai_max_age_exact",
-                                "value_mai_max_age", "fisher_age", "faustmann_age", "lev_per_ha"]
+    assert list(df.columns) == [
+        "stratum",
+        "mai_max_age",
+        "mai_max_m3_ha_yr",
+        "mai_max_age_exact",
+        "value_mai_max_age",
+        "fisher_age",
+        "faustmann_age",
+        "lev_per_ha",
+    ]
     for row in df.itertuples(index=False):
         vol = g.volume(np.full(300, row.stratum, dtype=object), ages)
         S = (50.0 - 12.0) * vol
-        levs = [
-            (S[i] - 900 * 1.035**t) / (1.035**t - 1) - 8 / 0.035 for i, t in enumerate(ages)
-        ]
+        levs = [(S[i] - 900 * 1.035**t) / (1.035**t - 1) - 8 / 0.035 for i, t in enumerate(ages)]
         assert row.faustmann_age == ages[int(np.argmax(levs))]
         assert row.lev_per_ha == pytest.approx(max(levs), rel=1e-12)
-        assert row.fisher_age == ages[int(np.argmax(S * 1.035 ** -ages))]
+        assert row.fisher_age == ages[int(np.argmax(S * 1.035**-ages))]
         assert row.value_mai_max_age == ages[int(np.argmax((S - 900) / ages))]
         assert row.mai_max_age == ages[int(np.argmax(vol / ages))]
         assert math.isnan(row.mai_max_age_exact)
@@ -260,8 +275,9 @@ def test_rules_without_positive_value_and_zero_rate():
 
 
 def test_key_columns_in_rotation_table(tmp_path):
-    df = pd.DataFrame({"sp": ["DF"] * 3, "site": ["2"] * 3, "age": [20, 40, 60],
-                       "volume": [100, 300, 400]})
+    df = pd.DataFrame(
+        {"sp": ["DF"] * 3, "site": ["2"] * 3, "age": [20, 40, 60], "volume": [100, 300, 400]}
+    )
     tab = yield_table_from_frame(df, ["sp", "site"])
     g = build_growth_model(tab, GrowthSettings(), ["sp", "site"])
     out = rotation_table(g, g.strata, _settings(price_per_m3=30.0), max_age=120)
@@ -295,15 +311,21 @@ def test_harvest_values_single_price_exact_npv():
     assert hv.ending_age_yr[0, 1:].tolist() == [27.5, 22.5, 17.5, 12.5, 7.5, 2.5]
     assert np.array_equal(hv.ending_volume_m3_ha, g.volume(strata, hv.ending_age_yr))
     assert np.array_equal(hv.ending_value_per_ha, hv.ending_volume_m3_ha * 45.0)
-    assert hv.ending_discount == pytest.approx(1.04 ** -30)
+    assert hv.ending_discount == pytest.approx(1.04**-30)
     assert hv.annual_cost_pv_per_ha == 0.0
 
 
 def test_harvest_values_costs_schedule_and_land_value():
     g = _table_model()  # synthetic table has a diameter column
-    st_ = _settings(discount_rate=0.03, price_schedule=SCHEDULE, harvest_cost_per_m3=9.0,
-                    harvest_cost_by_class={"cable": 20.0}, regeneration_cost_per_ha=1200.0,
-                    annual_cost_per_ha=10.0, include_land_value=True)
+    st_ = _settings(
+        discount_rate=0.03,
+        price_schedule=SCHEDULE,
+        harvest_cost_per_m3=9.0,
+        harvest_cost_by_class={"cable": 20.0},
+        regeneration_cost_per_ha=1200.0,
+        annual_cost_per_ha=10.0,
+        include_land_value=True,
+    )
     strata = np.array(["S2", "S2", "S4"], dtype=object)
     a0 = np.array([30.0, 30.0, 60.0])
     cls = np.array([None, "cable", None], dtype=object)
@@ -320,10 +342,10 @@ def test_harvest_values_costs_schedule_and_land_value():
         S = (stumpage_price(g.diameter(lab, ages), st_.economics) - hv.harvest_cost_per_m3[i]) * (
             g.volume(lab, ages)
         )
-        best = max((S[j] - 1200 * 1.03 ** t) / (1.03 ** t - 1) for j, t in enumerate(ages))
+        best = max((S[j] - 1200 * 1.03**t) / (1.03**t - 1) for j, t in enumerate(ages))
         assert hv.land_value_per_ha[i] == pytest.approx(best + 1200.0, rel=1e-12)
     assert hv.land_value_per_ha[0] > hv.land_value_per_ha[1]  # costlier harvest, less land value
-    expect = (net + hv.land_value_per_ha[:, None]) * 1.03 ** -hv.times_yr
+    expect = (net + hv.land_value_per_ha[:, None]) * 1.03**-hv.times_yr
     assert np.allclose(hv.npv_per_ha, expect, rtol=1e-12)
     # annual costs over 30 years, end-of-year payments: numpy_financial.pv (reference library)
     assert hv.annual_cost_pv_per_ha == pytest.approx(-npf.pv(0.03, 30, 10.0), rel=1e-12)

@@ -40,12 +40,12 @@ def test_missing_crs_is_an_error_unless_given(tmp_path: Path) -> None:
 def test_geographic_area_matches_pyproj_geod(tmp_path: Path) -> None:
     # pyproj documentation example for Geod.geometry_area_perimeter: the square (1,1)-(10,10)
     # with a triangular hole has an area of 944,373,881,400.339 m2 on WGS84.
-    poly = shapely.Polygon(
-        [(1, 1), (10, 1), (10, 10), (1, 10)], holes=[[(1, 2), (3, 4), (5, 2)]]
-    )
+    poly = shapely.Polygon([(1, 1), (10, 1), (10, 10), (1, 10)], holes=[[(1, 2), (3, 4), (5, 2)]])
     ref_area, _ = Geod(ellps="WGS84").geometry_area_perimeter(poly)
     assert abs(abs(ref_area) - 944_373_881_400.339) < 1.0
-    gdf = gpd.GeoDataFrame({"stand_id": ["A"], "age": [50], "stratum": ["S1"]}, geometry=[poly], crs="EPSG:4326")
+    gdf = gpd.GeoDataFrame(
+        {"stand_id": ["A"], "age": [50], "stratum": ["S1"]}, geometry=[poly], crs="EPSG:4326"
+    )
     p = write_layer(gdf, tmp_path / "geo.gpkg")
     inv = read_stands(p)
     assert inv.source_crs.is_geographic
@@ -86,7 +86,9 @@ def test_self_intersecting_polygon_repaired_and_named(tmp_path: Path) -> None:
     g = grid_stands(2, 1)
     x0, y0 = 500_000.0, 5_000_000.0
     # A bow-tie (figure eight) drawn over stand S02's square.
-    g.loc[1, "geometry"] = shapely.Polygon([(x0 + 200, y0), (x0 + 400, y0 + 200), (x0 + 400, y0), (x0 + 200, y0 + 200)])
+    g.loc[1, "geometry"] = shapely.Polygon(
+        [(x0 + 200, y0), (x0 + 400, y0 + 200), (x0 + 400, y0), (x0 + 200, y0 + 200)]
+    )
     inv = read_stands(write_layer(g, tmp_path / "bow.gpkg"))
     rep = [p for p in inv.problems if p.kind == "repaired_geometry"]
     assert rep and rep[0].stand_ids == ("S02",)
@@ -115,7 +117,9 @@ def test_points_are_not_stands(tmp_path: Path) -> None:
 
 def test_missing_field_lists_existing_fields(tmp_path: Path) -> None:
     p = write_layer(grid_stands(), tmp_path / "s.gpkg")
-    with pytest.raises(InputError, match="field 'AGE_YR'.*fields in the layer: stand_id, age, stratum"):
+    with pytest.raises(
+        InputError, match="field 'AGE_YR'.*fields in the layer: stand_id, age, stratum"
+    ):
         read_stands(p, FieldMap(age_field="AGE_YR"))
 
 

@@ -121,8 +121,13 @@ class Browser:
                 msg, buf = buf.split(b"\0", 1)
                 self.inbox.put(json.loads(msg))
 
-    def call(self, method: str, params: dict | None = None, session: str | None = None,
-             timeout: float = 60.0) -> dict[str, Any]:
+    def call(
+        self,
+        method: str,
+        params: dict | None = None,
+        session: str | None = None,
+        timeout: float = 60.0,
+    ) -> dict[str, Any]:
         self._next += 1
         msg: dict[str, Any] = {"id": self._next, "method": method, "params": params or {}}
         if session:

@@ -157,9 +157,11 @@ def test_period_table_against_pandas():
         sub = cut[cut["period"] == p]
         if len(sub):  # area-weighted mean (numpy.average as reference)
             assert t.loc[p - 1, "mean_age_at_harvest_yr"] == pytest.approx(
-                np.average(sub["age_at_harvest"], weights=sub["area_ha"]))
+                np.average(sub["age_at_harvest"], weights=sub["area_ha"])
+            )
         assert t.loc[p - 1, "largest_opening_ha"] == pytest.approx(
-            op.loc[op["period"] == p, "area_ha"].max() if (op["period"] == p).any() else 0.0)
+            op.loc[op["period"] == p, "area_ha"].max() if (op["period"] == p).any() else 0.0
+        )
     # Flow band from the rule |V[p+1] - V[p]| <= tol V[p] (spatialplan.problem.FlowRules).
     v = ref["v"].to_numpy()
     assert np.isnan(t.loc[0, "flow_lower_m3"])
@@ -202,8 +204,18 @@ def test_run_table_round_trip():
 
 # ---------------------------------------------------------------------------------------
 LAYER_STYLES_COLUMNS = [  # the desktop-GIS layer_styles convention (QGIS documentation)
-    "id", "f_table_catalog", "f_table_schema", "f_table_name", "f_geometry_column",
-    "styleName", "styleQML", "styleSLD", "useAsDefault", "description", "owner", "ui",
+    "id",
+    "f_table_catalog",
+    "f_table_schema",
+    "f_table_name",
+    "f_geometry_column",
+    "styleName",
+    "styleQML",
+    "styleSLD",
+    "useAsDefault",
+    "description",
+    "owner",
+    "ui",
     "update_time",
 ]
 

@@ -59,10 +59,13 @@ def write_forest(folder: Path, n: int = 30, seed: int = 7) -> tuple[Path, Path]:
     return stands, yields
 
 
-def write_scenarios(folder: Path, scenarios: dict[str, dict], sweeps: list[str] = (),
-                    base: dict | None = None) -> Path:
-    parts = ['[inputs]\nstands = "stands.gpkg"\nyields = "yields.csv"\n',
-             "[base]\n" + _table({**BASE, **(base or {})}) + "\n"]
+def write_scenarios(
+    folder: Path, scenarios: dict[str, dict], sweeps: list[str] = (), base: dict | None = None
+) -> Path:
+    parts = [
+        '[inputs]\nstands = "stands.gpkg"\nyields = "yields.csv"\n',
+        "[base]\n" + _table({**BASE, **(base or {})}) + "\n",
+    ]
     for name, ov in scenarios.items():
         parts.append(f"[scenarios.{name}]\n{_table(ov)}\n")
     parts.extend(sweeps)
@@ -71,7 +74,9 @@ def write_scenarios(folder: Path, scenarios: dict[str, dict], sweeps: list[str] 
     return p
 
 
-def sequential(stands: Path, yields: Path, settings: Settings, out: Path) -> tuple[float, np.ndarray]:
+def sequential(
+    stands: Path, yields: Path, settings: Settings, out: Path
+) -> tuple[float, np.ndarray]:
     """The reference: the plain ``plan`` pipeline in this process."""
     outcome = run_plan(load_inputs(stands, yields, settings), out)
     return outcome.result.npv, np.asarray(outcome.result.period)
@@ -81,9 +86,14 @@ def sequential(stands: Path, yields: Path, settings: Settings, out: Path) -> tup
 def client():
     """A real dask.distributed LocalCluster: 2 worker processes, 1 thread each."""
     distributed = pytest.importorskip("distributed")
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=":0",
-                                       silence_logs=40)
+    cluster = distributed.LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        host="127.0.0.1",
+        dashboard_address=":0",
+        silence_logs=40,
+    )
     c = distributed.Client(cluster)
     try:
         yield c
@@ -97,10 +107,12 @@ def client():
 # ---------------------------------------------------------------------------------------
 def test_sweep_cross_is_cartesian_product(tmp_path: Path) -> None:
     write_forest(tmp_path, n=12)
-    sweep = ('[[sweep]]\nvary = { "rules.max_opening_ha" = [20, 40, 60], '
-             '"economics.discount_rate" = [0.03, 0.05] }\n'
-             'labels = { "rules.max_opening_ha" = "open", "economics.discount_rate" = "rate" }\n'
-             '[[sweep]]\nname = "flow"\nvary = { "rules.flow_tolerance" = [0.05, "off"] }\n')
+    sweep = (
+        '[[sweep]]\nvary = { "rules.max_opening_ha" = [20, 40, 60], '
+        '"economics.discount_rate" = [0.03, 0.05] }\n'
+        'labels = { "rules.max_opening_ha" = "open", "economics.discount_rate" = "rate" }\n'
+        '[[sweep]]\nname = "flow"\nvary = { "rules.flow_tolerance" = [0.05, "off"] }\n'
+    )
     p = write_scenarios(tmp_path, {"base": {}}, [sweep])
     scen = load_scenarios(p)
     # Cartesian product definition: |A x B| = |A| |B|, every pair once (itertools.product).
@@ -272,8 +284,10 @@ def _two_units(folder: Path, gap_m: float) -> tuple[Path, Path]:
 
 def test_plan_by_unit_equals_whole_plan_when_separable(tmp_path: Path, client) -> None:
     stands, yields = _two_units(tmp_path, gap_m=500.0)
-    s = load_settings(None, {**BASE, "fields.unit_field": "unit", "fields.layer": "stands",
-                             "rules.max_opening_ha": 10})
+    s = load_settings(
+        None,
+        {**BASE, "fields.unit_field": "unit", "fields.layer": "stands", "rules.max_opening_ha": 10},
+    )
     s = apply_overrides(s, {"rules.flow_tolerance": "off"})
     by_unit = plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg", client=client)
     whole = run_plan(load_inputs(stands, yields, s), tmp_path / "whole.gpkg")
@@ -290,8 +304,16 @@ def test_plan_by_unit_equals_whole_plan_when_separable(tmp_path: Path, client) -
 
 def test_plan_by_unit_per_unit_flow_and_adjacency_warning(tmp_path: Path) -> None:
     stands, yields = _two_units(tmp_path, gap_m=0.0)
-    s = load_settings(None, {**BASE, "fields.unit_field": "unit", "fields.layer": "stands",
-                             "rules.max_opening_ha": 10, "rules.flow_tolerance": 0.2})
+    s = load_settings(
+        None,
+        {
+            **BASE,
+            "fields.unit_field": "unit",
+            "fields.layer": "stands",
+            "rules.max_opening_ha": 10,
+            "rules.flow_tolerance": 0.2,
+        },
+    )
     out = plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")  # in-process
     # Cross-unit pairs, checked against networkx on the whole adjacency graph.
     from spatialplan.pipeline import build_problem
@@ -317,8 +339,15 @@ def test_plan_by_unit_per_unit_flow_and_adjacency_warning(tmp_path: Path) -> Non
 
 def test_plan_by_unit_refuses_forest_wide_targets(tmp_path: Path) -> None:
     stands, yields = _two_units(tmp_path, gap_m=500.0)
-    s = load_settings(None, {**BASE, "fields.unit_field": "unit", "fields.layer": "stands",
-                             "rules.period_volume_min_m3": 100.0})
+    s = load_settings(
+        None,
+        {
+            **BASE,
+            "fields.unit_field": "unit",
+            "fields.layer": "stands",
+            "rules.period_volume_min_m3": 100.0,
+        },
+    )
     with pytest.raises(SettingsError, match=r"rules\.period_volume_min_m3.*per unit"):
         plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")
     s = load_settings(None, {**BASE, "fields.layer": "stands"})
@@ -331,11 +360,21 @@ def test_compare_by_unit_merges_units(tmp_path: Path, client) -> None:
     p = tmp_path / "units.toml"
     p.write_text(
         '[inputs]\nstands = "units.gpkg"\nyields = "yields.csv"\n'
-        "[base]\n" + _table({**BASE, "fields.unit_field": "unit", "fields.layer": "stands",
-                             "rules.flow_tolerance": "off"}) + "\n"
+        "[base]\n"
+        + _table(
+            {
+                **BASE,
+                "fields.unit_field": "unit",
+                "fields.layer": "stands",
+                "rules.flow_tolerance": "off",
+            }
+        )
+        + "\n"
         '[scenarios.open10]\n"rules.max_opening_ha" = 10\n'
         '[scenarios.open12]\n"rules.max_opening_ha" = 12\n'
-        '[units.S]\n"rules.flow_tolerance" = 0.05\n', encoding="utf-8")
+        '[units.S]\n"rules.flow_tolerance" = 0.05\n',
+        encoding="utf-8",
+    )
     scen = load_scenarios(p)
     res = run_comparison(scen, tmp_path / "out", client=client, by_unit=True, ship=True)
     assert not res.failed, res.table[["scenario", "status", "error"]]

@@ -82,12 +82,23 @@ def make_problem(
     elig = age_mid >= min_age
     init_open = age_mid < green * length
     return PlanProblem(
-        stand_ids=np.array([f"S{i}" for i in range(n)], dtype=object), area_ha=area,
-        opening_area_ha=area, age_start_yr=age, eligible=elig, volume_m3_ha=vol,
-        npv_per_ha=npv, green_up_periods=np.full(n, green), initially_open=init_open,
-        edges=edges, periods=periods, period_length_yr=length, max_opening_ha=max_opening,
-        unit_restriction=unit, flow=flow or FlowRules(flow_tolerance=0.5),
-        eligible_no_min_age=np.ones_like(elig), min_age_yr=min_age,
+        stand_ids=np.array([f"S{i}" for i in range(n)], dtype=object),
+        area_ha=area,
+        opening_area_ha=area,
+        age_start_yr=age,
+        eligible=elig,
+        volume_m3_ha=vol,
+        npv_per_ha=npv,
+        green_up_periods=np.full(n, green),
+        initially_open=init_open,
+        edges=edges,
+        periods=periods,
+        period_length_yr=length,
+        max_opening_ha=max_opening,
+        unit_restriction=unit,
+        flow=flow or FlowRules(flow_tolerance=0.5),
+        eligible_no_min_age=np.ones_like(elig),
+        min_age_yr=min_age,
     )
 
 
@@ -122,7 +133,11 @@ def rule_breaks(pr: PlanProblem, period: np.ndarray) -> list[str]:
     g.add_edges_from(map(tuple, np.asarray(pr.edges)))
     for p in range(1, P + 1):
         # harvested in q -> open in q .. q + G - 1 (issue 4)
-        new = {i for i in range(n) if period[i] and period[i] <= p <= period[i] + pr.green_up_periods[i] - 1}
+        new = {
+            i
+            for i in range(n)
+            if period[i] and period[i] <= p <= period[i] + pr.green_up_periods[i] - 1
+        }
         opn = new | {i for i in range(n) if pr.initially_open[i, p - 1]}
         sub = g.subgraph(opn)
         if pr.max_opening_ha is not None:
@@ -184,31 +199,56 @@ def assert_matches_brute_force(pr: PlanProblem) -> None:
 @pytest.mark.parametrize("seed", [1, 2, 3])
 def test_grid_area_restriction_matches_brute_force(seed: int) -> None:
     # 3 x 3 grid, 3 periods: 4^9 = 262,144 schedules enumerated.
-    pr = make_problem(9, grid_edges(3, 3), seed, max_opening=22.0, green=2,
-                      flow=FlowRules(flow_tolerance=0.6))
+    pr = make_problem(
+        9, grid_edges(3, 3), seed, max_opening=22.0, green=2, flow=FlowRules(flow_tolerance=0.6)
+    )
     assert_matches_brute_force(pr)
 
 
 def test_voronoi_stands_match_brute_force() -> None:
     gdf = voronoi_forest(8, seed=4, mean_area_ha=10.0)
     area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
-    pr = make_problem(len(gdf), touch_edges(gdf), 5, area=area,
-                      age=gdf["age"].to_numpy(float), max_opening=20.0, green=2, min_age=20.0)
+    pr = make_problem(
+        len(gdf),
+        touch_edges(gdf),
+        5,
+        area=area,
+        age=gdf["age"].to_numpy(float),
+        max_opening=20.0,
+        green=2,
+        min_age=20.0,
+    )
     assert len(pr.edges) > 0
     assert_matches_brute_force(pr)
 
 
 def test_unit_restriction_matches_brute_force() -> None:
-    pr = make_problem(8, grid_edges(2, 4), 7, max_opening=None, unit=True, green=2,
-                      min_age=10.0, flow=FlowRules(flow_tolerance=None))
+    pr = make_problem(
+        8,
+        grid_edges(2, 4),
+        7,
+        max_opening=None,
+        unit=True,
+        green=2,
+        min_age=10.0,
+        flow=FlowRules(flow_tolerance=None),
+    )
     assert_matches_brute_force(pr)
 
 
 def test_green_up_with_initially_open_stands() -> None:
     # Young stands (age 1-4) are open in period 1 (age at mid-period < G L = 20).
     age = np.array([2, 95, 80, 3, 70, 85, 60, 1], float)
-    pr = make_problem(8, grid_edges(2, 4), 8, age=age, max_opening=25.0, green=2,
-                      min_age=0.0, flow=FlowRules(flow_tolerance=0.8))
+    pr = make_problem(
+        8,
+        grid_edges(2, 4),
+        8,
+        age=age,
+        max_opening=25.0,
+        green=2,
+        min_age=0.0,
+        flow=FlowRules(flow_tolerance=0.8),
+    )
     assert pr.initially_open[:, 0].sum() >= 3
     assert_matches_brute_force(pr)
 
@@ -217,15 +257,26 @@ def test_flow_and_volume_floor_match_brute_force() -> None:
     pr0 = make_problem(8, grid_edges(2, 4), 9, max_opening=30.0, green=1)
     lp = lp_bound(pr0)
     vmin = 0.3 * lp.period_volume_m3.min()
-    pr = make_problem(8, grid_edges(2, 4), 9, max_opening=30.0, green=1,
-                      flow=FlowRules(flow_tolerance=0.25, volume_min_m3=vmin))
+    pr = make_problem(
+        8,
+        grid_edges(2, 4),
+        9,
+        max_opening=30.0,
+        green=1,
+        flow=FlowRules(flow_tolerance=0.25, volume_min_m3=vmin),
+    )
     assert_matches_brute_force(pr)
 
 
 def test_lp_bound_matches_linprog() -> None:
-    pr = make_problem(10, grid_edges(2, 5), 11, periods=4, min_age=20.0,
-                      flow=FlowRules(flow_tolerance=0.15, volume_max_m3=9000.0,
-                                     area_min_ha=5.0))
+    pr = make_problem(
+        10,
+        grid_edges(2, 5),
+        11,
+        periods=4,
+        min_age=20.0,
+        flow=FlowRules(flow_tolerance=0.15, volume_max_m3=9000.0, area_min_ha=5.0),
+    )
     n, P = pr.n_stands, pr.periods
     cells = [(i, p) for i in range(n) for p in range(P) if pr.eligible[i, p]]
     c = np.array([-pr.area_ha[i] * pr.npv_per_ha[i, p] for i, p in cells])
@@ -236,10 +287,12 @@ def test_lp_bound_matches_linprog() -> None:
         rhs.append(1.0)
     t = pr.flow.flow_tolerance
     for p in range(P - 1):  # V[p+1] <= (1+t) V[p] and V[p+1] >= (1-t) V[p]
-        rows.append([vol[k] if k[1] == p + 1 else -(1 + t) * vol[k] if k[1] == p else 0.0
-                     for k in cells])
-        rows.append([(1 - t) * vol[k] if k[1] == p else -vol[k] if k[1] == p + 1 else 0.0
-                     for k in cells])
+        rows.append(
+            [vol[k] if k[1] == p + 1 else -(1 + t) * vol[k] if k[1] == p else 0.0 for k in cells]
+        )
+        rows.append(
+            [(1 - t) * vol[k] if k[1] == p else -vol[k] if k[1] == p + 1 else 0.0 for k in cells]
+        )
         rhs += [0.0, 0.0]
     for p in range(P):
         rows.append([vol[k] if k[1] == p else 0.0 for k in cells])
@@ -257,11 +310,24 @@ def test_lp_bound_matches_linprog() -> None:
 def test_infeasible_flow_is_diagnosed() -> None:
     # Stand 0 can only be cut in period 1 (100 m3), stand 1 only in period 2 (150 m3);
     # a 50 m3 floor forces both, so |150 - 100| <= t * 100 needs t >= 0.5.
-    pr = make_problem(2, np.array([[0, 1]]), 1, periods=2, area=np.array([1.0, 1.0]),
-                      max_opening=None, flow=FlowRules(flow_tolerance=0.10, volume_min_m3=50.0))
-    pr = PlanProblem(**{**pr.__dict__, "volume_m3_ha": np.array([[100.0, 0.0], [0.0, 150.0]]),
-                        "eligible": np.array([[True, False], [False, True]]),
-                        "eligible_no_min_age": None, "min_age_yr": None})
+    pr = make_problem(
+        2,
+        np.array([[0, 1]]),
+        1,
+        periods=2,
+        area=np.array([1.0, 1.0]),
+        max_opening=None,
+        flow=FlowRules(flow_tolerance=0.10, volume_min_m3=50.0),
+    )
+    pr = PlanProblem(
+        **{
+            **pr.__dict__,
+            "volume_m3_ha": np.array([[100.0, 0.0], [0.0, 150.0]]),
+            "eligible": np.array([[True, False], [False, True]]),
+            "eligible_no_min_age": None,
+            "min_age_yr": None,
+        }
+    )
     with pytest.raises(InfeasibleError) as ei:
         solve(pr, SolverSettings(time_limit_s=10.0, workers=2))
     diag = ei.value.diagnosis
@@ -270,8 +336,9 @@ def test_infeasible_flow_is_diagnosed() -> None:
     assert m, diag
     v = float(m.group(1))
     assert 0.5 <= v <= 0.52  # smallest feasible value, 1 % bisection resolution
-    relaxed = PlanProblem(**{**pr.__dict__, "flow": FlowRules(flow_tolerance=v,
-                                                               volume_min_m3=50.0)})
+    relaxed = PlanProblem(
+        **{**pr.__dict__, "flow": FlowRules(flow_tolerance=v, volume_min_m3=50.0)}
+    )
     assert rule_breaks(relaxed, np.array([1, 2])) == []
     assert diagnose(pr, SolverSettings(time_limit_s=10.0)) == diag
 
@@ -279,9 +346,18 @@ def test_infeasible_flow_is_diagnosed() -> None:
 def test_tiny_time_limit_gives_legal_plan_or_no_solution() -> None:
     gdf = voronoi_forest(80, seed=3)
     area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
-    pr = make_problem(len(gdf), touch_edges(gdf), 3, area=area, age=gdf["age"].to_numpy(float),
-                      periods=5, length=5.0, max_opening=40.0, green=2,
-                      flow=FlowRules(flow_tolerance=0.1))
+    pr = make_problem(
+        len(gdf),
+        touch_edges(gdf),
+        3,
+        area=area,
+        age=gdf["age"].to_numpy(float),
+        periods=5,
+        length=5.0,
+        max_opening=40.0,
+        green=2,
+        flow=FlowRules(flow_tolerance=0.1),
+    )
     for limit in (0.001, 0.2, 2.0):
         try:
             res = solve(pr, SolverSettings(time_limit_s=limit, workers=2))
@@ -294,8 +370,7 @@ def test_tiny_time_limit_gives_legal_plan_or_no_solution() -> None:
 
 def test_only_empty_plan_is_flagged() -> None:
     # Every stand is larger than the maximum opening: only the empty plan is legal.
-    pr = make_problem(4, grid_edges(2, 2), 2, area=np.full(4, 30.0), max_opening=25.0,
-                      min_age=0.0)
+    pr = make_problem(4, grid_edges(2, 2), 2, area=np.full(4, 30.0), max_opening=25.0, min_age=0.0)
     res = solve(pr, EXACT)
     assert not res.period.any()
     assert res.stats["empty_plan"]
@@ -306,9 +381,18 @@ def test_only_empty_plan_is_flagged() -> None:
 def test_ctrl_c_returns_best_plan_marked_interrupted() -> None:
     gdf = voronoi_forest(300, seed=5)
     area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
-    pr = make_problem(len(gdf), touch_edges(gdf), 5, area=area, age=gdf["age"].to_numpy(float),
-                      periods=6, length=5.0, max_opening=40.0, green=2,
-                      flow=FlowRules(flow_tolerance=0.1))
+    pr = make_problem(
+        len(gdf),
+        touch_edges(gdf),
+        5,
+        area=area,
+        age=gdf["age"].to_numpy(float),
+        periods=6,
+        length=5.0,
+        max_opening=40.0,
+        green=2,
+        flow=FlowRules(flow_tolerance=0.1),
+    )
     timer = threading.Timer(3.0, lambda: os.kill(os.getpid(), signal.SIGINT))
     before = signal.getsignal(signal.SIGINT)
     timer.start()
@@ -326,14 +410,37 @@ def _local_cases() -> list[PlanProblem]:
     gdf = voronoi_forest(8, seed=4, mean_area_ha=10.0)
     area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
     return [
-        make_problem(9, grid_edges(3, 3), 1, max_opening=22.0, green=2,
-                     flow=FlowRules(flow_tolerance=0.6)),
-        make_problem(len(gdf), touch_edges(gdf), 5, area=area, age=gdf["age"].to_numpy(float),
-                     max_opening=20.0, green=2, min_age=20.0),
-        make_problem(8, grid_edges(2, 4), 7, max_opening=None, unit=True, green=2,
-                     min_age=10.0, flow=FlowRules(flow_tolerance=None)),
-        make_problem(8, grid_edges(2, 4), 9, max_opening=30.0, green=1,
-                     flow=FlowRules(flow_tolerance=0.25, volume_min_m3=2000.0)),
+        make_problem(
+            9, grid_edges(3, 3), 1, max_opening=22.0, green=2, flow=FlowRules(flow_tolerance=0.6)
+        ),
+        make_problem(
+            len(gdf),
+            touch_edges(gdf),
+            5,
+            area=area,
+            age=gdf["age"].to_numpy(float),
+            max_opening=20.0,
+            green=2,
+            min_age=20.0,
+        ),
+        make_problem(
+            8,
+            grid_edges(2, 4),
+            7,
+            max_opening=None,
+            unit=True,
+            green=2,
+            min_age=10.0,
+            flow=FlowRules(flow_tolerance=None),
+        ),
+        make_problem(
+            8,
+            grid_edges(2, 4),
+            9,
+            max_opening=30.0,
+            green=1,
+            flow=FlowRules(flow_tolerance=0.25, volume_min_m3=2000.0),
+        ),
     ]
 
 
@@ -347,9 +454,15 @@ def test_local_search_plans_pass_independent_checker(soft: bool) -> None:
         best, _ = brute_force(pr)
         seen: list[np.ndarray] = []
         for seed in (1, 2):
-            res = anneal(prep, np.zeros(pr.n_stands, dtype=np.int64), seed=seed,
-                         round_moves=8_000, patience=2, soft=soft,
-                         on_best=lambda per, v, out=seen: out.append(per.copy()))
+            res = anneal(
+                prep,
+                np.zeros(pr.n_stands, dtype=np.int64),
+                seed=seed,
+                round_moves=8_000,
+                patience=2,
+                soft=soft,
+                on_best=lambda per, v, out=seen: out.append(per.copy()),
+            )
             assert rule_breaks(pr, res.period) == [], (k, seed)
             # The recorded NPV is the plan's NPV, and no legal plan beats the brute force.
             assert res.npv == pytest.approx(plan_npv(pr, res.period), rel=1e-9, abs=1e-6)
@@ -365,9 +478,18 @@ def test_local_search_plans_pass_independent_checker(soft: bool) -> None:
 def _voronoi_problem(n: int, seed: int, periods: int = 5) -> PlanProblem:
     gdf = voronoi_forest(n, seed=seed)
     area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
-    return make_problem(len(gdf), touch_edges(gdf), seed, area=area,
-                        age=gdf["age"].to_numpy(float), periods=periods, length=5.0,
-                        max_opening=40.0, green=2, flow=FlowRules(flow_tolerance=0.1))
+    return make_problem(
+        len(gdf),
+        touch_edges(gdf),
+        seed,
+        area=area,
+        age=gdf["age"].to_numpy(float),
+        periods=periods,
+        length=5.0,
+        max_opening=40.0,
+        green=2,
+        flow=FlowRules(flow_tolerance=0.1),
+    )
 
 
 def test_local_search_is_deterministic_for_a_seed() -> None:
@@ -400,8 +522,9 @@ def test_local_search_never_worsens_the_start() -> None:
     for seed in (1, 2, 3):
         # A cold search (tiny temperature, one short round) must still keep the start.
         for t0 in (1e-6, 0.5):
-            res = anneal(prep, start, seed=seed, round_moves=5_000, max_rounds=1,
-                         t_start=t0, t_end=t0 / 10)
+            res = anneal(
+                prep, start, seed=seed, round_moves=5_000, max_rounds=1, t_start=t0, t_end=t0 / 10
+            )
             assert res.npv >= start_npv - 1e-6 * abs(start_npv)
             assert rule_breaks(pr, res.period) == []
             assert res.npv <= lp.value * (1 + 1e-9)  # the aspatial LP bounds every plan
@@ -423,6 +546,7 @@ def test_solve_output_is_silent() -> None:
         " period_length_yr=5.0, flow=FlowRules(flow_tolerance=None))\n"
         "assert lp_bound(pr).status == 'optimal'\n"
     )
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         check=True, timeout=120)
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120
+    )
     assert out.stdout == ""

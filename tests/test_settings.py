@@ -29,13 +29,18 @@ def test_defaults_match_the_documented_rules() -> None:
 
 def test_unknown_key_suggests_nearest_and_line(tmp_path: Path) -> None:
     p = _toml(tmp_path, "[rules]\nmin_age_yr = 40\nmax_openng_ha = 60\n")
-    with pytest.raises(SettingsError, match=r"unknown setting 'rules.max_openng_ha' \(.*line 3\).*did you mean 'rules.max_opening_ha'"):
+    with pytest.raises(
+        SettingsError,
+        match=r"unknown setting 'rules.max_openng_ha' \(.*line 3\).*did you mean 'rules.max_opening_ha'",
+    ):
         load_settings(p)
 
 
 def test_out_of_range_names_key_line_and_range(tmp_path: Path) -> None:
     p = _toml(tmp_path, "[rules]\nflow_tolerance = 1.5\n")
-    with pytest.raises(SettingsError, match=r"rules.flow_tolerance' = 1.5 is out of range .*line 2.*\[0, 1\]"):
+    with pytest.raises(
+        SettingsError, match=r"rules.flow_tolerance' = 1.5 is out of range .*line 2.*\[0, 1\]"
+    ):
         load_settings(p)
     p = _toml(tmp_path, "[economics]\ndiscount_rate = -0.02\n")
     with pytest.raises(SettingsError, match="economics.discount_rate"):

@@ -59,7 +59,9 @@ def grid_xy(shape: tuple[int, int], cell: float) -> tuple[np.ndarray, np.ndarray
     return (cols + 0.5) * cell, -(rows + 0.5) * cell
 
 
-def stands_frame(boxes: list[tuple[float, float, float, float]], crs: str = UTM) -> gpd.GeoDataFrame:
+def stands_frame(
+    boxes: list[tuple[float, float, float, float]], crs: str = UTM
+) -> gpd.GeoDataFrame:
     """Stands from (xmin, ymin, xmax, ymax) boxes given relative to the DEM's upper-left corner."""
     geoms = [shapely.box(X0 + a, Y0 + b, X0 + c, Y0 + d) for a, b, c, d in boxes]
     gdf = gpd.GeoDataFrame(
@@ -141,7 +143,9 @@ def test_horn_nodata_blanks_the_cell_and_its_neighbours():
     assert np.allclose(s[~blank], 30.0)
 
 
-@pytest.mark.skipif(shutil.which("gdaldem") is None, reason="gdaldem (GDAL utilities) not installed")
+@pytest.mark.skipif(
+    shutil.which("gdaldem") is None, reason="gdaldem (GDAL utilities) not installed"
+)
 def test_horn_matches_gdaldem(tmp_path):
     # Reference: GDAL's own `gdaldem slope -p` (Horn's method is its default algorithm).
     rng = np.random.default_rng(3)

@@ -40,21 +40,49 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     "layer": ("fields.layer", str, "Layer name inside a multi-layer file (GeoPackage)."),
     "id-field": ("fields.id_field", str, "Attribute holding the stand id."),
     "age-field": ("fields.age_field", str, "Attribute holding stand age (years) at the start."),
-    "yield-keys": ("fields.yield_keys", str, "Comma-separated attributes that select the yield table."),
-    "reserve-field": ("fields.reserve_field", str, "Attribute flagging reserve stands (never harvested)."),
-    "cost-class-field": ("fields.cost_class_field", str, "Attribute holding the harvest-cost class."),
-    "unit-field": ("fields.unit_field", str, "Attribute holding the management unit (with --by-unit)."),
+    "yield-keys": (
+        "fields.yield_keys",
+        str,
+        "Comma-separated attributes that select the yield table.",
+    ),
+    "reserve-field": (
+        "fields.reserve_field",
+        str,
+        "Attribute flagging reserve stands (never harvested).",
+    ),
+    "cost-class-field": (
+        "fields.cost_class_field",
+        str,
+        "Attribute holding the harvest-cost class.",
+    ),
+    "unit-field": (
+        "fields.unit_field",
+        str,
+        "Attribute holding the management unit (with --by-unit).",
+    ),
     "crs": ("fields.crs", str, "CRS to assume when the layer has none, e.g. EPSG:32610."),
     "periods": ("horizon.periods", int, "Number of planning periods."),
     "period-length": ("horizon.period_length_yr", float, "Length of one period in years."),
     "max-opening": ("rules.max_opening_ha", float, "Maximum opening (clearcut) size in ha."),
     "green-up": ("rules.green_up_periods", int, "Green-up delay in periods."),
     "min-age": ("rules.min_age_yr", float, "Minimum age at harvest (years, at mid-period)."),
-    "flow-tolerance": ("rules.flow_tolerance", float, "Allowed change of volume between periods (fraction)."),
+    "flow-tolerance": (
+        "rules.flow_tolerance",
+        float,
+        "Allowed change of volume between periods (fraction).",
+    ),
     "discount-rate": ("economics.discount_rate", float, "Annual discount rate (fraction)."),
     "price": ("economics.price_per_m3", float, "Single stumpage price per m3."),
-    "gap-tolerance": ("adjacency.gap_tolerance_m", float, "Stands closer than this (m) count as touching."),
-    "min-shared-edge": ("adjacency.min_shared_edge_m", float, "Shared boundary (m) that makes stands adjacent."),
+    "gap-tolerance": (
+        "adjacency.gap_tolerance_m",
+        float,
+        "Stands closer than this (m) count as touching.",
+    ),
+    "min-shared-edge": (
+        "adjacency.min_shared_edge_m",
+        float,
+        "Shared boundary (m) that makes stands adjacent.",
+    ),
     "time-limit": ("solver.time_limit_s", float, "Solver time limit in seconds."),
     "workers": ("solver.workers", int, "CP-SAT search workers."),
     "seed": ("solver.seed", int, "Random seed of the solver."),
@@ -66,9 +94,18 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
 
 _BOOL_FLAGS: dict[str, tuple[str, str]] = {
     "skip-unmatched": ("fields.skip_unmatched", "Exclude stands whose yield keys have no table."),
-    "corner-adjacency": ("adjacency.corner_adjacency", "Stands touching only at a corner are adjacent."),
-    "unit-restriction": ("rules.unit_restriction", "No two adjacent stands open in the same period."),
-    "non-declining": ("rules.non_declining", "Harvest volume may not fall from one period to the next."),
+    "corner-adjacency": (
+        "adjacency.corner_adjacency",
+        "Stands touching only at a corner are adjacent.",
+    ),
+    "unit-restriction": (
+        "rules.unit_restriction",
+        "No two adjacent stands open in the same period.",
+    ),
+    "non-declining": (
+        "rules.non_declining",
+        "Harvest volume may not fall from one period to the next.",
+    ),
 }
 
 
@@ -165,8 +202,11 @@ def handle_errors(ctx: click.Context) -> Iterator[None]:
             for line in exc.diagnosis:
                 click.echo(f"  diagnosis: {line}", err=True)
             if not exc.diagnosis:
-                click.echo("  relax the volume/area flow, minimum-age or ending-inventory rules "
-                           "and try again", err=True)
+                click.echo(
+                    "  relax the volume/area flow, minimum-age or ending-inventory rules "
+                    "and try again",
+                    err=True,
+                )
         if exc.exit_code in (2, 3):
             click.echo("No plan was written.", err=True)
         ctx.exit(exc.exit_code)
@@ -214,8 +254,10 @@ def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool, flag: str
 
     out_r = out.resolve()
     for p in inputs:
-        if p is not None and Path(p).exists() and (
-            Path(p).resolve() == out_r or (out.exists() and os.path.samefile(p, out))
+        if (
+            p is not None
+            and Path(p).exists()
+            and (Path(p).resolve() == out_r or (out.exists() and os.path.samefile(p, out)))
         ):
             msg = f"output {out} is the same file as input {p}; choose another {flag}"
             raise OutputError(msg)
@@ -234,6 +276,7 @@ def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool, flag: str
         with tempfile.TemporaryFile(dir=parent):
             pass
     except OSError as exc:
-        msg = (f"output folder {parent} is not writable ({exc.strerror or exc}); "
-               f"choose another {flag}")
+        msg = (
+            f"output folder {parent} is not writable ({exc.strerror or exc}); choose another {flag}"
+        )
         raise OutputError(msg) from None

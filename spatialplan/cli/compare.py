@@ -14,32 +14,67 @@ __all__ = ["command"]
 
 @click.command("compare")
 @click.argument("scenarios", type=click.Path(dir_okay=False))
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), required=True,
-              help="Folder for <scenario>.gpkg, comparison.csv and comparison.png "
-                   "(created if missing).")
-@click.option("--scheduler", default=None, metavar="tcp://HOST:PORT",
-              help="Send the scenarios to this running Dask scheduler instead of starting a "
-                   "local cluster.")
-@click.option("--workers-per-scenario", type=click.IntRange(1, 256), default=None,
-              help="CP-SAT threads per scenario (sets solver.workers). Default on the local "
-                   "cluster: the cores divided among the scenarios running at once; with "
-                   "--scheduler: 1. Without this flag a solver.workers set in the scenario "
-                   "file wins.")
-@click.option("--ship-inputs/--shared-inputs", "ship", default=None,
-              help="Send the input files with the tasks (up to --ship-limit-mb) or let the "
-                   "workers read them from the same paths. Default: shared when every worker "
-                   "sees the files, else shipped.")
-@click.option("--ship-limit-mb", type=click.FloatRange(0, None, min_open=True), default=200.0,
-              show_default=True, help="Largest total input size shipped with the tasks.")
-@click.option("--by-unit", is_flag=True,
-              help="Plan every management unit (fields.unit_field) of every scenario as its "
-                   "own task and merge the unit plans into the scenario's GeoPackage.")
-@click.option("--maps/--no-maps", default=False, show_default=True,
-              help="Also write each scenario's HTML map, report and charts.")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    required=True,
+    help="Folder for <scenario>.gpkg, comparison.csv and comparison.png (created if missing).",
+)
+@click.option(
+    "--scheduler",
+    default=None,
+    metavar="tcp://HOST:PORT",
+    help="Send the scenarios to this running Dask scheduler instead of starting a local cluster.",
+)
+@click.option(
+    "--workers-per-scenario",
+    type=click.IntRange(1, 256),
+    default=None,
+    help="CP-SAT threads per scenario (sets solver.workers). Default on the local "
+    "cluster: the cores divided among the scenarios running at once; with "
+    "--scheduler: 1. Without this flag a solver.workers set in the scenario "
+    "file wins.",
+)
+@click.option(
+    "--ship-inputs/--shared-inputs",
+    "ship",
+    default=None,
+    help="Send the input files with the tasks (up to --ship-limit-mb) or let the "
+    "workers read them from the same paths. Default: shared when every worker "
+    "sees the files, else shipped.",
+)
+@click.option(
+    "--ship-limit-mb",
+    type=click.FloatRange(0, None, min_open=True),
+    default=200.0,
+    show_default=True,
+    help="Largest total input size shipped with the tasks.",
+)
+@click.option(
+    "--by-unit",
+    is_flag=True,
+    help="Plan every management unit (fields.unit_field) of every scenario as its "
+    "own task and merge the unit plans into the scenario's GeoPackage.",
+)
+@click.option(
+    "--maps/--no-maps",
+    default=False,
+    show_default=True,
+    help="Also write each scenario's HTML map, report and charts.",
+)
 @click.option("--overwrite", is_flag=True, help="Replace earlier outputs in the folder.")
-def command(scenarios: str, out_dir: str, scheduler: str | None,
-            workers_per_scenario: int | None, ship: bool | None, ship_limit_mb: float,
-            by_unit: bool, maps: bool, overwrite: bool) -> None:
+def command(
+    scenarios: str,
+    out_dir: str,
+    scheduler: str | None,
+    workers_per_scenario: int | None,
+    ship: bool | None,
+    ship_limit_mb: float,
+    by_unit: bool,
+    maps: bool,
+    overwrite: bool,
+) -> None:
     """Plan every scenario of SCENARIOS.toml and compare NPV and the cost of each rule.
 
     Each scenario runs through the same pipeline as `plan` as one Dask task (with
@@ -64,10 +99,12 @@ def command(scenarios: str, out_dir: str, scheduler: str | None,
     scen = load_scenarios(scenarios, extra)
     check_outputs(scen, out_dir, overwrite)  # before starting any cluster
     n = len(scen.scenarios)
-    if scheduler and not scheduler.startswith(("tcp://", "tls://", "ws://", "wss://",
-                                               "inproc://", "ucx://")):
-        raise click.BadParameter(f"expected tcp://HOST:PORT, got {scheduler!r}",
-                                 param_hint="--scheduler")
+    if scheduler and not scheduler.startswith(
+        ("tcp://", "tls://", "ws://", "wss://", "inproc://", "ucx://")
+    ):
+        raise click.BadParameter(
+            f"expected tcp://HOST:PORT, got {scheduler!r}", param_hint="--scheduler"
+        )
     if scheduler:
         n_workers, threads = 1, workers_per_scenario or 1
         where = f"Dask scheduler {scheduler}"
@@ -77,8 +114,11 @@ def command(scenarios: str, out_dir: str, scheduler: str | None,
         n_workers, threads = split_threads(n_tasks, threads_per_task=workers_per_scenario)
         where = f"local cluster: {n_workers} worker process(es) x 1 task"
     scen = _with_threads(scen, threads, force=workers_per_scenario is not None)
-    con.err.print(f"{n} scenario(s) from {scen.path.name} on the {where}; CP-SAT threads per "
-                  f"scenario: {threads} (unless the scenario sets solver.workers)", markup=False)
+    con.err.print(
+        f"{n} scenario(s) from {scen.path.name} on the {where}; CP-SAT threads per "
+        f"scenario: {threads} (unless the scenario sets solver.workers)",
+        markup=False,
+    )
     with dask_client(scheduler, n_workers) as client:
         result = _run(con, scen, out_dir, client, ship, ship_limit_mb, by_unit, overwrite)
     _summary(con, result)
@@ -99,22 +139,39 @@ def _with_threads(scen: Any, threads: int, force: bool) -> Any:
             continue
         ov = dict(s.overrides)
         ov["solver.workers"] = threads
-        out.append(dataclasses.replace(
-            s, overrides=ov, settings=apply_overrides(s.settings, {"solver.workers": threads})))
+        out.append(
+            dataclasses.replace(
+                s, overrides=ov, settings=apply_overrides(s.settings, {"solver.workers": threads})
+            )
+        )
     return dataclasses.replace(scen, scenarios=tuple(out))
 
 
-def _run(con: Any, scen: Any, out_dir: str, client: Any, ship: bool | None,
-         ship_limit_mb: float, by_unit: bool, overwrite: bool) -> Any:
+def _run(
+    con: Any,
+    scen: Any,
+    out_dir: str,
+    client: Any,
+    ship: bool | None,
+    ship_limit_mb: float,
+    by_unit: bool,
+    overwrite: bool,
+) -> Any:
     from rich.markup import escape
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
     from spatialplan.scenarios import run_comparison
 
     t0 = time.perf_counter()
-    progress = Progress(TextColumn("[bold]scenarios[/bold]"), BarColumn(), MofNCompleteColumn(),
-                        TimeElapsedColumn(), TextColumn("{task.description}"),
-                        console=con.err, transient=True)
+    progress = Progress(
+        TextColumn("[bold]scenarios[/bold]"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        TimeElapsedColumn(),
+        TextColumn("{task.description}"),
+        console=con.err,
+        transient=True,
+    )
     state: dict[str, Any] = {"task": None}
 
     def on_submit(names: list[str], mode: str) -> None:
@@ -129,15 +186,17 @@ def _run(con: Any, scen: Any, out_dir: str, client: Any, ship: bool | None,
             progress.console.print(
                 f"{mark} {escape(r.name)}: {escape(r.status)}, NPV {r.npv:,.0f}, "
                 f"LP bound {r.lp_bound:,.0f}, gap {gap}, {r.wall_s:.1f} s "
-                f"[dim](at {dt:.0f} s on {escape(r.worker)})[/dim]")
+                f"[dim](at {dt:.0f} s on {escape(r.worker)})[/dim]"
+            )
             if not r.verify_ok:
                 progress.console.print(f"    {escape(r.verify_verdict)}")
             for m in r.messages:
                 if str(m).lower().startswith("warning"):
                     progress.console.print(f"    {m}", markup=False)
         else:
-            progress.console.print(f"[red]failed[/red] {escape(r.name)}: {escape(r.status)}: "
-                                   f"{escape(r.error or '')}")
+            progress.console.print(
+                f"[red]failed[/red] {escape(r.name)}: {escape(r.status)}: {escape(r.error or '')}"
+            )
             for d in r.diagnosis:
                 progress.console.print(f"    diagnosis: {escape(str(d))}")
             for m in r.messages:
@@ -146,9 +205,17 @@ def _run(con: Any, scen: Any, out_dir: str, client: Any, ship: bool | None,
             progress.advance(state["task"])
 
     with progress:
-        return run_comparison(scen, out_dir, client=client, ship=ship,
-                              ship_limit_mb=ship_limit_mb, by_unit=by_unit, overwrite=overwrite,
-                              on_submit=on_submit, on_result=on_result)
+        return run_comparison(
+            scen,
+            out_dir,
+            client=client,
+            ship=ship,
+            ship_limit_mb=ship_limit_mb,
+            by_unit=by_unit,
+            overwrite=overwrite,
+            on_submit=on_submit,
+            on_result=on_result,
+        )
 
 
 def _summary(con: Any, result: Any) -> None:
@@ -171,15 +238,20 @@ def _summary(con: Any, result: Any) -> None:
         return "-" if math.isnan(f) else fmt.format(f)
 
     for _, row in tab.iterrows():
-        t.add_row(str(row["scenario"]), str(row["status"]), num(row["npv"]),
-                  num(row["lp_bound"]), num(100 * float(row["gap"]), "{:.2f} %")
-                  if row["gap"] == row["gap"] else "-",
-                  num(row["cost_spatial_rules"]),
-                  "pass" if bool(row["verify_ok"]) else ("FAIL" if row["output"] else "-"))
+        t.add_row(
+            str(row["scenario"]),
+            str(row["status"]),
+            num(row["npv"]),
+            num(row["lp_bound"]),
+            num(100 * float(row["gap"]), "{:.2f} %") if row["gap"] == row["gap"] else "-",
+            num(row["cost_spatial_rules"]),
+            "pass" if bool(row["verify_ok"]) else ("FAIL" if row["output"] else "-"),
+        )
     con.out.print(t)
     con.out.print(f"wrote {result.csv_path}", markup=False)
     if result.chart_path:
         con.out.print(f"wrote {result.chart_path}", markup=False)
     if result.failed:
-        con.err.print(f"{len(result.failed)} scenario(s) failed: {', '.join(result.failed)}",
-                      markup=False)
+        con.err.print(
+            f"{len(result.failed)} scenario(s) failed: {', '.join(result.failed)}", markup=False
+        )

@@ -27,8 +27,14 @@ def demo_files() -> dict[str, Path]:
 
 
 @click.command("demo")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), default="spatialplan-demo",
-              show_default=True, help="Folder to write the demo plan into (created if missing).")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    default="spatialplan-demo",
+    show_default=True,
+    help="Folder to write the demo plan into (created if missing).",
+)
 @click.option("--time-limit", type=float, default=None, help="Solver time limit in seconds.")
 @click.option("--overwrite", is_flag=True, help="Replace an earlier demo plan in the folder.")
 @output_options
@@ -47,7 +53,11 @@ def command(out_dir: str, time_limit: float | None, overwrite: bool, **kwargs: A
     settings = load_settings(files["settings"], overrides)
     con = console()
     con.out.print(f"Brennick Hollow Forest demo (invented data) -> {out.resolve()}", markup=False)
-    code = run_and_report(files["stands"], files["yields"], out / "brennick_plan.gpkg", overwrite, settings)
-    con.out.print(f"Open {out / 'brennick_plan.map.html'} in a browser to review the plan.", markup=False)
+    code = run_and_report(
+        files["stands"], files["yields"], out / "brennick_plan.gpkg", overwrite, settings
+    )
+    con.out.print(
+        f"Open {out / 'brennick_plan.map.html'} in a browser to review the plan.", markup=False
+    )
     if code:
         raise SystemExit(code)

@@ -97,10 +97,17 @@ def render_from_geopackage(
 
 @click.command("map")
 @click.argument("gpkg", type=click.Path(dir_okay=False))
-@click.option("--out-html", type=click.Path(dir_okay=False), default=None,
-              help="Map file (default: NAME.map.html beside the GeoPackage).")
-@click.option("--basemap", default=None,
-              help="Tile URL template for a background; off by default so the map works offline.")
+@click.option(
+    "--out-html",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Map file (default: NAME.map.html beside the GeoPackage).",
+)
+@click.option(
+    "--basemap",
+    default=None,
+    help="Tile URL template for a background; off by default so the map works offline.",
+)
 @click.option("--overwrite", is_flag=True, help="Replace an existing map, report and charts.")
 def command(gpkg: str, out_html: str | None, basemap: str | None, overwrite: bool) -> None:
     """Re-render the map, charts and report of a plan GeoPackage (GPKG)."""

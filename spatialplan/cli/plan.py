@@ -16,24 +16,63 @@ from spatialplan.cli._common import (
 from spatialplan.errors import OutputError
 
 PLAN_FLAGS = [
-    "layer", "id-field", "age-field", "yield-keys", "reserve-field", "cost-class-field", "crs",
-    "unit-field", "skip-unmatched", "periods", "period-length", "max-opening", "green-up", "min-age",
-    "flow-tolerance", "non-declining", "unit-restriction", "discount-rate", "price",
-    "gap-tolerance", "min-shared-edge", "corner-adjacency", "time-limit", "workers", "seed", "gap",
-    "dem", "streams", "stream-buffer",
+    "layer",
+    "id-field",
+    "age-field",
+    "yield-keys",
+    "reserve-field",
+    "cost-class-field",
+    "crs",
+    "unit-field",
+    "skip-unmatched",
+    "periods",
+    "period-length",
+    "max-opening",
+    "green-up",
+    "min-age",
+    "flow-tolerance",
+    "non-declining",
+    "unit-restriction",
+    "discount-rate",
+    "price",
+    "gap-tolerance",
+    "min-shared-edge",
+    "corner-adjacency",
+    "time-limit",
+    "workers",
+    "seed",
+    "gap",
+    "dem",
+    "streams",
+    "stream-buffer",
 ]
 
 
 def output_options(f: Any) -> Any:
     """Options shared by ``plan`` and ``demo`` for the extra outputs."""
-    f = click.option("--write-back", is_flag=True, default=None,
-                     help="Also add the result layers (prefixed plan_) to the input GeoPackage.")(f)
-    f = click.option("--raster-out", type=click.Path(dir_okay=False), default=None,
-                     help="Also write a GeoTIFF of harvest period.")(f)
-    f = click.option("--raster-cell", type=float, default=None, help="Cell size (m) of --raster-out.")(f)
-    f = click.option("--basemap", default=None,
-                     help="Tile URL template for a map background (off by default: maps work offline).")(f)
-    f = click.option("--no-map", is_flag=True, default=None, help="Skip the HTML map, report and charts.")(f)
+    f = click.option(
+        "--write-back",
+        is_flag=True,
+        default=None,
+        help="Also add the result layers (prefixed plan_) to the input GeoPackage.",
+    )(f)
+    f = click.option(
+        "--raster-out",
+        type=click.Path(dir_okay=False),
+        default=None,
+        help="Also write a GeoTIFF of harvest period.",
+    )(f)
+    f = click.option(
+        "--raster-cell", type=float, default=None, help="Cell size (m) of --raster-out."
+    )(f)
+    f = click.option(
+        "--basemap",
+        default=None,
+        help="Tile URL template for a map background (off by default: maps work offline).",
+    )(f)
+    f = click.option(
+        "--no-map", is_flag=True, default=None, help="Skip the HTML map, report and charts."
+    )(f)
     return f
 
 
@@ -50,18 +89,38 @@ def output_overrides(kwargs: dict[str, Any]) -> dict[str, Any]:
 
 @click.command("plan")
 @click.argument("stands", type=click.Path(dir_okay=False))
-@click.option("--yields", "yields_path", type=click.Path(dir_okay=False), default=None,
-              help="Yield-table CSV (long format: key columns, age, volume).")
-@click.option("--out", "out", type=click.Path(dir_okay=False), required=True,
-              help="Output GeoPackage (map, report and charts are written beside it).")
+@click.option(
+    "--yields",
+    "yields_path",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Yield-table CSV (long format: key columns, age, volume).",
+)
+@click.option(
+    "--out",
+    "out",
+    type=click.Path(dir_okay=False),
+    required=True,
+    help="Output GeoPackage (map, report and charts are written beside it).",
+)
 @click.option("--overwrite", is_flag=True, help="Replace an existing output.")
-@click.option("--by-unit", is_flag=True,
-              help="Plan each management unit (--unit-field) on its own, with its own flow "
-                   "rules, and merge the plans.")
+@click.option(
+    "--by-unit",
+    is_flag=True,
+    help="Plan each management unit (--unit-field) on its own, with its own flow "
+    "rules, and merge the plans.",
+)
 @output_options
 @settings_options(PLAN_FLAGS)
-def command(stands: str, yields_path: str | None, out: str, overwrite: bool, by_unit: bool,
-            settings_path: str | None, **kwargs: Any) -> None:
+def command(
+    stands: str,
+    yields_path: str | None,
+    out: str,
+    overwrite: bool,
+    by_unit: bool,
+    settings_path: str | None,
+    **kwargs: Any,
+) -> None:
     """Plan which stands to clear-cut in each period to maximise NPV under the rules.
 
     Exit codes: 0 verified plan written; 1 bad input or a plan that failed verification;
@@ -78,8 +137,15 @@ def command(stands: str, yields_path: str | None, out: str, overwrite: bool, by_
         raise SystemExit(code)
 
 
-def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path, overwrite: bool,
-                   settings: Any, *, by_unit: bool = False) -> int:
+def run_and_report(
+    stands: str | Path,
+    yields_path: str | Path | None,
+    out: Path,
+    overwrite: bool,
+    settings: Any,
+    *,
+    by_unit: bool = False,
+) -> int:
     """Run the plan pipeline with a live progress display; print the summary."""
     from rich.live import Live
     from rich.markup import escape
@@ -99,8 +165,9 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
     ensure_output_path(out, inputs_list, overwrite)
     if settings.output.raster_out:
         # Checked before solving: a bad raster path must not cost a solve, nor hit an input.
-        ensure_output_path(Path(settings.output.raster_out), [*inputs_list, out], overwrite,
-                           flag="--raster-out")
+        ensure_output_path(
+            Path(settings.output.raster_out), [*inputs_list, out], overwrite, flag="--raster-out"
+        )
     if not settings.output.no_map and not overwrite:
         from spatialplan.report import review_paths
 
@@ -121,8 +188,10 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
         best = "-" if p.best_npv is None else f"{p.best_npv:,.0f}"
         bound = "-" if p.bound is None else f"{p.bound:,.0f}"
         gap = "-" if p.gap is None else f"{100 * p.gap:.2f} %"
-        return (f"[bold]{state['stage']}[/bold]  elapsed {p.elapsed_s:6.1f} s  best NPV {best}  "
-                f"bound {bound}  gap {gap}")
+        return (
+            f"[bold]{state['stage']}[/bold]  elapsed {p.elapsed_s:6.1f} s  best NPV {best}  "
+            f"bound {bound}  gap {gap}"
+        )
 
     live = Live(render(), console=con.err, refresh_per_second=4, transient=True)
 
@@ -148,7 +217,10 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
     t = Table(title=f"Plan written to {out}")
     t.add_column("item")
     t.add_column("value", justify="right")
-    t.add_row("solver status", r.status + (" (best plan so far)" if r.status in ("interrupted", "time_limit") else ""))
+    t.add_row(
+        "solver status",
+        r.status + (" (best plan so far)" if r.status in ("interrupted", "time_limit") else ""),
+    )
     t.add_row("NPV", f"{r.npv:,.0f}")
     t.add_row("LP upper bound (no spatial rules)", f"{r.lp_bound:,.0f}")
     if r.cpsat_bound is not None:
@@ -163,19 +235,28 @@ def run_and_report(stands: str | Path, yields_path: str | Path | None, out: Path
         pt.add_column(c, justify="right")
     pdf = outcome.periods
     for _, row in pdf.iterrows():
-        pt.add_row(f"{int(row['period'])}", f"{row['harvest_area_ha']:,.1f}", f"{row['harvest_volume_m3']:,.0f}",
-                   f"{row['discounted_value']:,.0f}", f"{row['largest_opening_ha']:,.1f}")
+        pt.add_row(
+            f"{int(row['period'])}",
+            f"{row['harvest_area_ha']:,.1f}",
+            f"{row['harvest_volume_m3']:,.0f}",
+            f"{row['discounted_value']:,.0f}",
+            f"{row['largest_opening_ha']:,.1f}",
+        )
     con.out.print(pt)
     for f in outcome.extra_files:
         con.out.print(f"wrote {f}", markup=False)
     if not outcome.verify.ok:
         for v in outcome.verify.violations[:50]:
             con.err.print(f"violation: {escape(str(v.message))}")
-        con.err.print("[bold red]The plan failed independent verification; do not use it.[/bold red]")
+        con.err.print(
+            "[bold red]The plan failed independent verification; do not use it.[/bold red]"
+        )
         return 1
     if r.status == "interrupted":
-        con.err.print(f"Interrupted: {out} holds the best plan found before Ctrl-C "
-                      "(solver_status = interrupted in its run table); run again to finish.",
-                      markup=False)
+        con.err.print(
+            f"Interrupted: {out} holds the best plan found before Ctrl-C "
+            "(solver_status = interrupted in its run table); run again to finish.",
+            markup=False,
+        )
         return 130  # 128 + SIGINT, the shell convention for a run stopped by Ctrl-C
     return 0

@@ -132,11 +132,14 @@ def command(
     for row in df.itertuples(index=False):
         tab.add_row(
             str(row.stratum),
-            *(f"{getattr(row, c):g}" for c in
-              ("mai_max_age", "value_mai_max_age", "fisher_age", "faustmann_age")),
+            *(
+                f"{getattr(row, c):g}"
+                for c in ("mai_max_age", "value_mai_max_age", "fisher_age", "faustmann_age")
+            ),
             f"{row.lev_per_ha:,.0f}",
         )
     con = console()
     con.out.print(tab)
-    con.out.print(f"wrote {out}" + (f" and {len(chart_paths)} chart(s) in {chart_dir}"
-                                   if chart_paths else ""))
+    con.out.print(
+        f"wrote {out}" + (f" and {len(chart_paths)} chart(s) in {chart_dir}" if chart_paths else "")
+    )

@@ -64,12 +64,10 @@ class _State:
     def __init__(self, prep: Prep, period: np.ndarray) -> None:
         n, P = prep.n, prep.P
         self.n, self.P = n, P
-        self.nbrs = [prep.indices[prep.indptr[i] : prep.indptr[i + 1]].tolist()
-                     for i in range(n)]
+        self.nbrs = [prep.indices[prep.indptr[i] : prep.indptr[i + 1]].tolist() for i in range(n)]
         self.area = prep.opening_area.astype(float).tolist()
         self.green = prep.green.astype(int).tolist()
-        self.fixed = [bytearray(prep.fixed_open[:, p].astype(np.uint8).tobytes())
-                      for p in range(P)]
+        self.fixed = [bytearray(prep.fixed_open[:, p].astype(np.uint8).tobytes()) for p in range(P)]
         self.open = [bytearray(b) for b in self.fixed]
         self.hop = [bytearray(n) for _ in range(P)]  # harvest-open
         mx = prep.max_opening
@@ -296,14 +294,14 @@ def anneal(
     n = st.n
     movable = [i for i in range(n) if len(st.options[i]) > 1]
     start_npv = st.npv()
-    res = AnnealResult(period=np.asarray(start, dtype=np.int64).copy(), npv=start_npv,
-                       start_npv=start_npv)
+    res = AnnealResult(
+        period=np.asarray(start, dtype=np.int64).copy(), npv=start_npv, start_npv=start_npv
+    )
     if not movable:
         return res
     rng = np.random.default_rng(seed)
     best_vals = [max(st.val[i]) for i in movable]
-    unit = float(np.mean([v for v in best_vals if v > 0])) if any(
-        v > 0 for v in best_vals) else 1.0
+    unit = float(np.mean([v for v in best_vals if v > 0])) if any(v > 0 for v in best_vals) else 1.0
     moves_per_round = int(round_moves or max(50_000, 400 * n))
     D, cap, k = st.D, st.cap, st.k
     soft = bool(soft and prep.max_opening is not None and not prep.unit)
@@ -330,7 +328,8 @@ def anneal(
         done = 0
         while done < moves_per_round:
             if (deadline is not None and time.perf_counter() >= deadline) or (
-                    stop is not None and stop()):
+                stop is not None and stop()
+            ):
                 stopped = True
                 break
             frac = done / moves_per_round
@@ -390,8 +389,7 @@ def anneal(
                 else:
                     npen = 0.0
                     delta = dv
-                if (bad == 0 or not soft) and delta < 0.0 and r_acc[b] >= math.exp(
-                        delta * inv_t):
+                if (bad == 0 or not soft) and delta < 0.0 and r_acc[b] >= math.exp(delta * inv_t):
                     # With no over-size opening the spatial change can only add penalty,
                     # so the move fails the test whatever it does to the openings.
                     continue

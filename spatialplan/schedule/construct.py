@@ -32,8 +32,9 @@ class SpatialState:
 
     def __init__(self, prep: Prep, period: np.ndarray | None = None) -> None:
         self.prep = prep
-        self.nbrs = [prep.indices[prep.indptr[i] : prep.indptr[i + 1]].tolist()
-                     for i in range(prep.n)]
+        self.nbrs = [
+            prep.indices[prep.indptr[i] : prep.indptr[i + 1]].tolist() for i in range(prep.n)
+        ]
         self.area = prep.opening_area.tolist()
         self.fixed = prep.fixed_open
         self.open = prep.fixed_open.copy()
@@ -120,8 +121,9 @@ class _RowState:
         return np.nonzero(self.lhs > self.rhs - self.margin)[0]
 
 
-def _assign_regret(st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray,
-                   lp_x: np.ndarray) -> int:
+def _assign_regret(
+    st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray, lp_x: np.ndarray
+) -> int:
     n, P = price.shape
     order_p = np.argsort(-price, axis=1)  # best period first
     srt = np.take_along_axis(price, order_p, axis=1)
@@ -156,8 +158,9 @@ def _loss(price: np.ndarray) -> np.ndarray:
     return np.where(fin, best[:, None] - np.where(fin, price, 0.0), np.inf)
 
 
-def _assign_balanced(st: SpatialState, price: np.ndarray, vol: np.ndarray,
-                     target: np.ndarray) -> int:
+def _assign_balanced(
+    st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray
+) -> int:
     """Water-filling: always top up the period furthest below its LP volume."""
     P = price.shape[1]
     loss = _loss(price)
@@ -193,8 +196,9 @@ def _assign_balanced(st: SpatialState, price: np.ndarray, vol: np.ndarray,
     return skips
 
 
-def _assign_sequential(st: SpatialState, price: np.ndarray, vol: np.ndarray,
-                       target: np.ndarray, backward: bool = False) -> int:
+def _assign_sequential(
+    st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray, backward: bool = False
+) -> int:
     P = price.shape[1]
     loss = _loss(price)
     skips = 0

@@ -91,8 +91,9 @@ class CoverPool:
 
 
 class _Callback(cp_model.CpSolverSolutionCallback):
-    def __init__(self, on_solution: Callable[[float, float], None] | None,
-                 registry: dict | None = None) -> None:
+    def __init__(
+        self, on_solution: Callable[[float, float], None] | None, registry: dict | None = None
+    ) -> None:
         super().__init__()
         self.on_solution = on_solution
         self.registry = registry
@@ -133,8 +134,14 @@ class SubModel:
         Add the unit-restriction clauses eagerly (all edges touching ``free``).
     """
 
-    def __init__(self, prep: Prep, free: np.ndarray, base: np.ndarray, scaling: Scaling,
-                 unit_edges: bool = True) -> None:
+    def __init__(
+        self,
+        prep: Prep,
+        free: np.ndarray,
+        base: np.ndarray,
+        scaling: Scaling,
+        unit_edges: bool = True,
+    ) -> None:
         self.prep = prep
         n, P = prep.n, prep.P
         self.m = cp_model.CpModel()
@@ -186,16 +193,20 @@ class SubModel:
             rhs = math.floor(rhs_real * s)
             self.row_tightening = max(
                 self.row_tightening,
-                float(((coefs - dv[nz] * s).sum() + (rhs_real * s - rhs)) / s / max(r.scale_ref, 1)),
+                float(
+                    ((coefs - dv[nz] * s).sum() + (rhs_real * s - rhs)) / s / max(r.scale_ref, 1)
+                ),
             )
-            m.add(cp_model.LinearExpr.weighted_sum([self.xvars[k] for k in nz], coefs.tolist())
-                  <= rhs)
+            m.add(
+                cp_model.LinearExpr.weighted_sum([self.xvars[k] for k in nz], coefs.tolist()) <= rhs
+            )
             self.n_rows += 1
         # objective
         coef = scaling.int_value[si, fp]
         nzo = np.nonzero(coef)[0]
-        m.maximize(cp_model.LinearExpr.weighted_sum([self.xvars[k] for k in nzo],
-                                                   coef[nzo].tolist()))
+        m.maximize(
+            cp_model.LinearExpr.weighted_sum([self.xvars[k] for k in nzo], coef[nzo].tolist())
+        )
         if prep.unit and unit_edges:
             self._unit_clauses()
 
@@ -206,8 +217,9 @@ class SubModel:
         if key in self.ovars:
             return self.ovars[key]
         g = int(self.prep.green[i])
-        ks = [self.cell_of[(i, q)] for q in range(max(0, p - g + 1), p + 1)
-              if (i, q) in self.cell_of]
+        ks = [
+            self.cell_of[(i, q)] for q in range(max(0, p - g + 1), p + 1) if (i, q) in self.cell_of
+        ]
         if not ks:
             return None
         if len(ks) == 1:
@@ -310,13 +322,23 @@ class SubModel:
     def size(self) -> dict:
         """Model size: variables and constraints."""
         proto = self.m.proto
-        return {"variables": len(proto.variables), "constraints": len(proto.constraints),
-                "x_vars": len(self.xvars), "rows": self.n_rows,
-                "cover_clauses": self.n_cover_clauses}
+        return {
+            "variables": len(proto.variables),
+            "constraints": len(proto.constraints),
+            "x_vars": len(self.xvars),
+            "rows": self.n_rows,
+            "cover_clauses": self.n_cover_clauses,
+        }
 
-    def solve(self, time_limit_s: float, workers: int, seed: int, gap: float = 0.0,
-              registry: dict | None = None,
-              on_solution: Callable[[float, float], None] | None = None) -> SolveOut:
+    def solve(
+        self,
+        time_limit_s: float,
+        workers: int,
+        seed: int,
+        gap: float = 0.0,
+        registry: dict | None = None,
+        on_solution: Callable[[float, float], None] | None = None,
+    ) -> SolveOut:
         """Run CP-SAT; ``registry["solver"]`` holds the live solver (for Ctrl-C)."""
         solver = cp_model.CpSolver()
         prm = solver.parameters
@@ -353,8 +375,13 @@ class SubModel:
                     th.join(0.05)
                     # stop_search() is only safe once the search runs (OR-Tools aborts on a
                     # call in the first instants of Solve), hence the short delay.
-                    if (not stopped and registry is not None and registry.get("interrupted")
-                            and time.perf_counter() - t0 > 0.25 and th.is_alive()):
+                    if (
+                        not stopped
+                        and registry is not None
+                        and registry.get("interrupted")
+                        and time.perf_counter() - t0 > 0.25
+                        and th.is_alive()
+                    ):
                         solver.stop_search()
                         stopped = True
                 if "exc" in box:
@@ -366,15 +393,17 @@ class SubModel:
             if registry is not None:
                 registry["solver"] = None
         wall = time.perf_counter() - t0
-        name = {cp_model.OPTIMAL: "optimal", cp_model.FEASIBLE: "feasible",
-                cp_model.INFEASIBLE: "infeasible", cp_model.MODEL_INVALID: "invalid"}.get(
-            st, "unknown")
+        name = {
+            cp_model.OPTIMAL: "optimal",
+            cp_model.FEASIBLE: "feasible",
+            cp_model.INFEASIBLE: "infeasible",
+            cp_model.MODEL_INVALID: "invalid",
+        }.get(st, "unknown")
         if name in ("optimal", "feasible"):
             sol = np.asarray(solver.response_proto.solution, dtype=np.int64)
             on = sol[self.xidx] > 0
             per = self.base.copy()
             per[self.cell_i[on]] = self.cell_p[on] + 1
-            return SolveOut(name, per, solver.objective_value, solver.best_objective_bound,
-                            wall)
+            return SolveOut(name, per, solver.objective_value, solver.best_objective_bound, wall)
         bound = solver.best_objective_bound if name == "unknown" else None
         return SolveOut(name, None, None, bound, wall)

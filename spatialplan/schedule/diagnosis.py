@@ -35,8 +35,9 @@ def is_feasible(problem: PlanProblem, time_limit_s: float = 5.0, workers: int = 
     t0 = time.perf_counter()
     prep = prepare(problem)
     zero = np.zeros((prep.n, prep.P))
-    lp = solve_lp(problem, rows=prep.rows, eligible=prep.eligible, objective=zero,
-                  time_limit_s=time_limit_s)
+    lp = solve_lp(
+        problem, rows=prep.rows, eligible=prep.eligible, objective=zero, time_limit_s=time_limit_s
+    )
     if lp.status == "infeasible":
         return False
     if not check_plan(prep, np.zeros(prep.n, dtype=np.int64)):
@@ -54,10 +55,19 @@ def is_feasible(problem: PlanProblem, time_limit_s: float = 5.0, workers: int = 
     scaling.int_value[:] = 0
     pool = CoverPool()
     seed_pair_covers(prep, pool)
-    ctx = SearchCtx(prep=prep, scaling=scaling, pool=pool, workers=workers, seed=0,
-                    deadline=time.perf_counter() + left, t0=t0, lp_value=float("inf"))
-    sub = SubModel(prep, np.nonzero(prep.eligible.any(axis=1))[0],
-                   np.zeros(prep.n, dtype=np.int64), scaling)
+    ctx = SearchCtx(
+        prep=prep,
+        scaling=scaling,
+        pool=pool,
+        workers=workers,
+        seed=0,
+        deadline=time.perf_counter() + left,
+        t0=t0,
+        lp_value=float("inf"),
+    )
+    sub = SubModel(
+        prep, np.nonzero(prep.eligible.any(axis=1))[0], np.zeros(prep.n, dtype=np.int64), scaling
+    )
     res = lazy_rounds(ctx, sub, left, "diagnose", first_slice_s=max(left / 4, 0.2))
     if res == "infeasible":
         return False
@@ -77,14 +87,18 @@ def _with_min_age(problem: PlanProblem, age: float) -> PlanProblem:
     return dataclasses.replace(problem, eligible=base & old, min_age_yr=age)
 
 
-def _flow_check(feas: Callable[[PlanProblem], bool | None], pr: PlanProblem,
-                key: str) -> Callable[[float], bool | None]:
+def _flow_check(
+    feas: Callable[[PlanProblem], bool | None], pr: PlanProblem, key: str
+) -> Callable[[float], bool | None]:
     """Feasibility of ``pr`` with flow setting ``key`` at a value."""
     return lambda x: feas(_flow(pr, **{key: x}))
 
 
 def _bisect(
-    check: Callable[[float], bool | None], bad: float, good: float, steps: int = 7,
+    check: Callable[[float], bool | None],
+    bad: float,
+    good: float,
+    steps: int = 7,
     integer: bool = False,
 ) -> float:
     """Closest value to ``bad`` that ``check`` accepts, between ``bad`` and ``good``."""
@@ -138,17 +152,33 @@ def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:
     if fr.flow_tolerance is not None or fr.non_declining:
         families.append(("flow", _flow(problem, flow_tolerance=None, non_declining=False)))
     if problem.max_opening_ha is not None or problem.unit_restriction:
-        families.append(("openings", dataclasses.replace(problem, max_opening_ha=None,
-                                                         unit_restriction=False)))
+        families.append(
+            ("openings", dataclasses.replace(problem, max_opening_ha=None, unit_restriction=False))
+        )
     if problem.eligible_no_min_age is not None and (problem.min_age_yr or 0) > 0:
         families.append(("minimum age", _with_min_age(problem, 0.0)))
     if fr.ending_volume_min_m3 is not None or fr.ending_mean_age_min_yr is not None:
-        families.append(("ending inventory", _flow(problem, ending_volume_min_m3=None,
-                                                   ending_mean_age_min_yr=None)))
-    if any(v is not None for v in (fr.volume_min_m3, fr.volume_max_m3, fr.area_min_ha,
-                                   fr.area_max_ha)):
-        families.append(("targets", _flow(problem, volume_min_m3=None, volume_max_m3=None,
-                                          area_min_ha=None, area_max_ha=None)))
+        families.append(
+            (
+                "ending inventory",
+                _flow(problem, ending_volume_min_m3=None, ending_mean_age_min_yr=None),
+            )
+        )
+    if any(
+        v is not None for v in (fr.volume_min_m3, fr.volume_max_m3, fr.area_min_ha, fr.area_max_ha)
+    ):
+        families.append(
+            (
+                "targets",
+                _flow(
+                    problem,
+                    volume_min_m3=None,
+                    volume_max_m3=None,
+                    area_min_ha=None,
+                    area_max_ha=None,
+                ),
+            )
+        )
     for name, relaxed in families:
         ok = feas(relaxed)
         if ok:
@@ -160,8 +190,11 @@ def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:
             fails.append(name + " (undecided in time)")
     if not works:
         out.append("no single rule family, relaxed alone, makes the rules feasible")
-        both = _flow(problem, **{f.name: None for f in dataclasses.fields(FlowRules)
-                                  if f.name != "non_declining"}, non_declining=False)
+        both = _flow(
+            problem,
+            **{f.name: None for f in dataclasses.fields(FlowRules) if f.name != "non_declining"},
+            non_declining=False,
+        )
         if feas(both):
             out.append("dropping flow, targets and ending inventory together makes it feasible")
     for name in fails:
@@ -169,8 +202,9 @@ def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:
     return out
 
 
-def _detail(name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool | None]
-            ) -> list[str]:
+def _detail(
+    name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool | None]
+) -> list[str]:
     fr = problem.flow
     msgs: list[str] = []
     if name == "flow":
@@ -182,15 +216,19 @@ def _detail(name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool 
                 v = _bisect(lambda x: feas(_flow(nd, flow_tolerance=x)), t, hi)
                 msgs.append(f"flow tolerance {t:.2f} is infeasible, {v:.2f} is feasible")
             else:
-                msgs.append(f"flow tolerance {t:.2f} is infeasible; even 1.00 is not enough, "
-                            "drop the even-flow rule")
+                msgs.append(
+                    f"flow tolerance {t:.2f} is infeasible; even 1.00 is not enough, "
+                    "drop the even-flow rule"
+                )
         if fr.non_declining:
-            msgs.append("or drop the non-declining rule" if msgs else
-                        "non-declining flow is infeasible; drop it")
+            msgs.append(
+                "or drop the non-declining rule"
+                if msgs
+                else "non-declining flow is infeasible; drop it"
+            )
         return msgs or ["drop the flow rules"]
     if name == "openings":
-        if problem.unit_restriction and feas(dataclasses.replace(problem,
-                                                                 unit_restriction=False)):
+        if problem.unit_restriction and feas(dataclasses.replace(problem, unit_restriction=False)):
             msgs.append("the unit restriction is infeasible; without it the rules are feasible")
         if problem.max_opening_ha is not None:
             m = float(problem.max_opening_ha)
@@ -210,8 +248,9 @@ def _detail(name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool 
             pr = _flow(problem, ending_mean_age_min_yr=None)
             if feas(_flow(pr, ending_volume_min_m3=0.0)):
                 v = _bisect(lambda x: feas(_flow(pr, ending_volume_min_m3=x)), e, 0.0)
-                msgs.append(f"ending volume floor {_fmt(e)} m3 is infeasible, "
-                            f"{_fmt(v)} m3 is feasible")
+                msgs.append(
+                    f"ending volume floor {_fmt(e)} m3 is infeasible, {_fmt(v)} m3 is feasible"
+                )
         if fr.ending_mean_age_min_yr is not None:
             e = float(fr.ending_mean_age_min_yr)
             pr = _flow(problem, ending_volume_min_m3=None)
@@ -220,10 +259,14 @@ def _detail(name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool 
                 msgs.append(f"ending mean age {_fmt(e)} yr is infeasible, {_fmt(v)} yr is feasible")
         return msgs or ["drop the ending-inventory rules"]
     # targets
-    pairs = [("volume_min_m3", "period volume minimum", "m3", 0.0),
-             ("area_min_ha", "period area minimum", "ha", 0.0)]
-    tops = [("volume_max_m3", "period volume maximum", "m3"),
-            ("area_max_ha", "period area maximum", "ha")]
+    pairs = [
+        ("volume_min_m3", "period volume minimum", "m3", 0.0),
+        ("area_min_ha", "period area minimum", "ha", 0.0),
+    ]
+    tops = [
+        ("volume_max_m3", "period volume maximum", "m3"),
+        ("area_max_ha", "period area maximum", "ha"),
+    ]
     for key, label, unit, lo in pairs:
         cur = getattr(fr, key)
         if cur is None:
@@ -240,8 +283,9 @@ def _detail(name: str, problem: PlanProblem, feas: Callable[[PlanProblem], bool 
         others = {k: None for k, *_ in pairs + tops if k != key}
         pr = _flow(problem, **others)
         a_ha = np.asarray(problem.area_ha, float)[:, None]
-        total = (a_ha * problem.volume_m3_ha).sum() if unit == "m3" else (
-            a_ha.sum() * problem.periods)
+        total = (
+            (a_ha * problem.volume_m3_ha).sum() if unit == "m3" else (a_ha.sum() * problem.periods)
+        )
         big = float(total) + 1.0
         if feas(_flow(pr, **{key: big})):
             v = _bisect(_flow_check(feas, pr, key), float(cur), big)

@@ -192,10 +192,19 @@ def solve(
     pool = CoverPool()
     stats["pair_covers"] = seed_pair_covers(prep, pool)
     registry: dict = {"solver": None, "interrupted": False}
-    ctx = SearchCtx(prep=prep, scaling=scaling, pool=pool, workers=int(settings.workers),
-                    seed=int(settings.seed), deadline=deadline, t0=t0, lp_value=lp_value,
-                    registry=registry, stats=stats,
-                    gap_stop=float(settings.gap))
+    ctx = SearchCtx(
+        prep=prep,
+        scaling=scaling,
+        pool=pool,
+        workers=int(settings.workers),
+        seed=int(settings.seed),
+        deadline=deadline,
+        t0=t0,
+        lp_value=lp_value,
+        registry=registry,
+        stats=stats,
+        gap_stop=float(settings.gap),
+    )
 
     def report(c: SearchCtx) -> None:
         if on_progress is None:
@@ -217,8 +226,9 @@ def solve(
             if lp.status == "optimal":
                 period, info = greedy_plan(prep, lp.x, lp.price, deadline, order=order)
             else:
-                period, info = greedy_plan(prep, np.ones((prep.n, prep.P)) / prep.P, None,
-                                           deadline, order=order)
+                period, info = greedy_plan(
+                    prep, np.ones((prep.n, prep.P)) / prep.P, None, deadline, order=order
+                )
             info["npv"] = plan_npv(problem, period) if info.get("legal") else None
             hinfo[order] = info
             if info.get("legal") and (best_h is None or info["npv"] > best_h[1]):
@@ -248,9 +258,13 @@ def solve(
                 # the result (and proves optimality on small instances); large models: the
                 # local search runs to the deadline.
                 share = LOCAL_SHARE_FULL if strategy == "full" else 1.0
-                _local(ctx, stats, time.perf_counter() + share * max(ctx.left(), 0.0),
-                       patience=3 if strategy == "full" else 2,
-                       repeat=strategy != "full")
+                _local(
+                    ctx,
+                    stats,
+                    time.perf_counter() + share * max(ctx.left(), 0.0),
+                    patience=3 if strategy == "full" else 2,
+                    repeat=strategy != "full",
+                )
             if strategy == "full" and not infeasible and not ctx.stopped():
                 infeasible = _full(ctx, settings, stats, until_first=False)
             if strategy == "lns" and not infeasible and ctx.best is not None:
@@ -269,8 +283,10 @@ def solve(
         msg = "the planning rules admit no harvest plan"
         raise InfeasibleError(msg, diag)
     if ctx.best is None:
-        msg = (f"no legal plan found within {settings.time_limit_s:g} s; "
-               "raise the time limit (--time-limit)")
+        msg = (
+            f"no legal plan found within {settings.time_limit_s:g} s; "
+            "raise the time limit (--time-limit)"
+        )
         raise NoSolutionError(msg)
     final = ctx.best
     problems = check_plan(prep, final)
@@ -285,7 +301,8 @@ def solve(
     if empty_plan and lp_value > 0:
         stats["warnings"].append(
             "the best plan found harvests nothing although the LP bound is positive; "
-            "raise the time limit or check the rules")
+            "raise the time limit or check the rules"
+        )
     if registry["interrupted"]:
         status = "interrupted"
     elif ctx.proven or (gap <= settings.gap and not (empty_plan and lp_value > 0)):
@@ -294,9 +311,16 @@ def solve(
         status = "time_limit"
     else:
         status = "feasible"
-    return PlanResult(period=final.copy(), status=status, npv=npv, cpsat_bound=ctx.cpsat_bound,
-                      lp_bound=float(lp.value) if lp.status == "optimal" else float("nan"),
-                      gap=gap, solve_time_s=elapsed, stats=stats)
+    return PlanResult(
+        period=final.copy(),
+        status=status,
+        npv=npv,
+        cpsat_bound=ctx.cpsat_bound,
+        lp_bound=float(lp.value) if lp.status == "optimal" else float("nan"),
+        gap=gap,
+        solve_time_s=elapsed,
+        stats=stats,
+    )
 
 
 def _bound(ctx: SearchCtx) -> float:
@@ -317,19 +341,35 @@ def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bo
     sub = SubModel(prep, free, base, ctx.scaling)
     stats["model_build_s"] = round(time.perf_counter() - tb, 3)
     while not ctx.stopped():
-        res = lazy_rounds(ctx, sub, ctx.left(), "cpsat", first_slice_s=_first_slice(prep),
-                          gap=settings.gap, repair=True, full=True)
+        res = lazy_rounds(
+            ctx,
+            sub,
+            ctx.left(),
+            "cpsat",
+            first_slice_s=_first_slice(prep),
+            gap=settings.gap,
+            repair=True,
+            full=True,
+        )
         if res == "infeasible":
             return True
         if res == "optimal" or (until_first and ctx.best is not None and ctx.best.any()):
             break
-        if ctx.best is not None and ctx.cpsat_bound is not None and \
-                _gap(ctx.best_npv, _bound(ctx)) <= settings.gap:
+        if (
+            ctx.best is not None
+            and ctx.cpsat_bound is not None
+            and _gap(ctx.best_npv, _bound(ctx)) <= settings.gap
+        ):
             break
     size = sub.size()
-    stats.update({"variables": size["variables"], "constraints": size["constraints"],
-                  "area_restriction_constraints": size["cover_clauses"],
-                  "row_tightening_rel": sub.row_tightening})
+    stats.update(
+        {
+            "variables": size["variables"],
+            "constraints": size["constraints"],
+            "area_restriction_constraints": size["cover_clauses"],
+            "row_tightening_rel": sub.row_tightening,
+        }
+    )
     return False
 
 
@@ -351,9 +391,16 @@ def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: boo
     info: dict = {"runs": 0, "moves": 0, "rounds": 0, "improving_rounds": 0}
     start_npv = ctx.best_npv
     while ctx.best is not None and not ctx.stopped() and time.perf_counter() < until:
-        res = anneal(prep, ctx.best, seed=ctx.seed + 7919 * k, deadline=until,
-                     round_moves=round_moves, patience=patience, stop=ctx.stopped,
-                     on_best=lambda per, v: _offer_local(ctx, per))
+        res = anneal(
+            prep,
+            ctx.best,
+            seed=ctx.seed + 7919 * k,
+            deadline=until,
+            round_moves=round_moves,
+            patience=patience,
+            stop=ctx.stopped,
+            on_best=lambda per, v: _offer_local(ctx, per),
+        )
         info["runs"] += 1
         info["moves"] += res.moves
         info["rounds"] += res.rounds

@@ -127,23 +127,43 @@ def build_rows(problem: PlanProblem) -> list[Row]:
     for p in range(1, P + 1):
         if fr.volume_max_m3 is not None:
             rows.append(
-                Row(f"period {p} volume <= {fr.volume_max_m3:g} m3", "targets",
-                    {p: vol[:, p - 1]}, float(fr.volume_max_m3), vref)
+                Row(
+                    f"period {p} volume <= {fr.volume_max_m3:g} m3",
+                    "targets",
+                    {p: vol[:, p - 1]},
+                    float(fr.volume_max_m3),
+                    vref,
+                )
             )
         if fr.volume_min_m3 is not None:
             rows.append(
-                Row(f"period {p} volume >= {fr.volume_min_m3:g} m3", "targets",
-                    {p: -vol[:, p - 1]}, -float(fr.volume_min_m3), vref)
+                Row(
+                    f"period {p} volume >= {fr.volume_min_m3:g} m3",
+                    "targets",
+                    {p: -vol[:, p - 1]},
+                    -float(fr.volume_min_m3),
+                    vref,
+                )
             )
         if fr.area_max_ha is not None:
             rows.append(
-                Row(f"period {p} area <= {fr.area_max_ha:g} ha", "targets",
-                    {p: area[:, p - 1]}, float(fr.area_max_ha), aref)
+                Row(
+                    f"period {p} area <= {fr.area_max_ha:g} ha",
+                    "targets",
+                    {p: area[:, p - 1]},
+                    float(fr.area_max_ha),
+                    aref,
+                )
             )
         if fr.area_min_ha is not None:
             rows.append(
-                Row(f"period {p} area >= {fr.area_min_ha:g} ha", "targets",
-                    {p: -area[:, p - 1]}, -float(fr.area_min_ha), aref)
+                Row(
+                    f"period {p} area >= {fr.area_min_ha:g} ha",
+                    "targets",
+                    {p: -area[:, p - 1]},
+                    -float(fr.area_min_ha),
+                    aref,
+                )
             )
     if fr.ending_volume_min_m3 is not None:
         ev = problem.ending_volume_m3_ha
@@ -152,9 +172,13 @@ def build_rows(problem: PlanProblem) -> list[Row]:
             raise ValueError(msg)
         ev = a[:, None] * np.asarray(ev, dtype=np.float64)
         rows.append(
-            Row(f"ending volume >= {fr.ending_volume_min_m3:g} m3", "ending",
-                {c: -ev[:, c] for c in range(P + 1)}, -float(fr.ending_volume_min_m3),
-                max(float(ev[:, 0].sum()), 1.0))
+            Row(
+                f"ending volume >= {fr.ending_volume_min_m3:g} m3",
+                "ending",
+                {c: -ev[:, c] for c in range(P + 1)},
+                -float(fr.ending_volume_min_m3),
+                max(float(ev[:, 0].sum()), 1.0),
+            )
         )
     if fr.ending_mean_age_min_yr is not None:
         eage = problem.ending_age_yr
@@ -164,13 +188,15 @@ def build_rows(problem: PlanProblem) -> list[Row]:
         m = float(fr.ending_mean_age_min_yr)
         w = a[:, None] * (np.asarray(eage, dtype=np.float64) - m)
         rows.append(
-            Row(f"ending mean age >= {m:g} yr", "ending",
-                {c: -w[:, c] for c in range(P + 1)}, 0.0,
-                max(float(np.abs(a[:, None] * eage).sum()) / max(n, 1), 1.0))
+            Row(
+                f"ending mean age >= {m:g} yr",
+                "ending",
+                {c: -w[:, c] for c in range(P + 1)},
+                0.0,
+                max(float(np.abs(a[:, None] * eage).sum()) / max(n, 1), 1.0),
+            )
         )
     return rows
-
-
 
 
 def plan_npv(problem: PlanProblem, period: np.ndarray) -> float:
@@ -178,9 +204,10 @@ def plan_npv(problem: PlanProblem, period: np.ndarray) -> float:
     idx = np.nonzero(period > 0)[0]
     if idx.size == 0:
         return 0.0
-    vals = np.asarray(problem.area_ha, dtype=np.float64)[idx] * np.asarray(
-        problem.npv_per_ha, dtype=np.float64
-    )[idx, period[idx] - 1]
+    vals = (
+        np.asarray(problem.area_ha, dtype=np.float64)[idx]
+        * np.asarray(problem.npv_per_ha, dtype=np.float64)[idx, period[idx] - 1]
+    )
     return float(np.sum(vals))
 
 
@@ -232,8 +259,9 @@ def prepare(problem: PlanProblem) -> Prep:
     if e.size:
         e = e[e[:, 0] != e[:, 1]]
         both = np.concatenate([e, e[:, ::-1]])
-        adj = sp.coo_matrix((np.ones(len(both), dtype=np.int8), (both[:, 0], both[:, 1])),
-                            shape=(n, n)).tocsr()
+        adj = sp.coo_matrix(
+            (np.ones(len(both), dtype=np.int8), (both[:, 0], both[:, 1])), shape=(n, n)
+        ).tocsr()
         adj.sum_duplicates()
         indptr, indices = adj.indptr.astype(np.int64), adj.indices.astype(np.int64)
     else:
@@ -251,11 +279,19 @@ def prepare(problem: PlanProblem) -> Prep:
     )
     value = np.where(elig, value, 0.0)
     return Prep(
-        problem=problem, n=n, P=P, indptr=indptr, indices=indices, green=green,
-        eligible=elig, value=value,
+        problem=problem,
+        n=n,
+        P=P,
+        indptr=indptr,
+        indices=indices,
+        green=green,
+        eligible=elig,
+        value=value,
         fixed_open=np.asarray(problem.initially_open, dtype=bool),
-        opening_area=oa, max_opening=problem.max_opening_ha,
-        unit=bool(problem.unit_restriction), rows=build_rows(problem),
+        opening_area=oa,
+        max_opening=problem.max_opening_ha,
+        unit=bool(problem.unit_restriction),
+        rows=build_rows(problem),
     )
 
 
@@ -321,9 +357,13 @@ def check_plan(prep: Prep, period: np.ndarray) -> list[str]:
         if lhs > r.rhs + ROW_RTOL * max(abs(r.rhs), r.scale_ref):
             msgs.append(f"{r.name}: broken by {lhs - r.rhs:.6g}")
     for p, grp in spatial_breaches(prep, period):
-        kind = "unit restriction" if prep.unit and len(grp) == 2 and (
-            prep.max_opening is None or prep.opening_area[grp].sum() <= prep.max_opening
-        ) else "opening size"
+        kind = (
+            "unit restriction"
+            if prep.unit
+            and len(grp) == 2
+            and (prep.max_opening is None or prep.opening_area[grp].sum() <= prep.max_opening)
+            else "opening size"
+        )
         msgs.append(
             f"{kind}: period {p + 1}, stands {list(pr.stand_ids[grp][:10])}, "
             f"{prep.opening_area[grp].sum():.2f} ha"

@@ -104,8 +104,11 @@ def seed_pair_covers(prep: Prep, pool: CoverPool) -> int:
     if e.size == 0:
         return 0
     a = prep.opening_area
-    big = (a[e[:, 0]] + a[e[:, 1]] > prep.max_opening) & (a[e[:, 0]] <= prep.max_opening) & (
-        a[e[:, 1]] <= prep.max_opening)
+    big = (
+        (a[e[:, 0]] + a[e[:, 1]] > prep.max_opening)
+        & (a[e[:, 0]] <= prep.max_opening)
+        & (a[e[:, 1]] <= prep.max_opening)
+    )
     k = 0
     for i, j in e[big]:
         k += pool.add(frozenset((int(i), int(j))))
@@ -243,8 +246,9 @@ def lns(ctx: SearchCtx, window: int = 250, window_time_s: float = 4.0) -> None:
         sub = SubModel(prep, free, ctx.best, ctx.scaling)
         before = ctx.best_npv
         t0 = time.perf_counter()
-        res = lazy_rounds(ctx, sub, min(window_time_s, ctx.left()), "lns",
-                          first_slice_s=window_time_s)
+        res = lazy_rounds(
+            ctx, sub, min(window_time_s, ctx.left()), "lns", first_slice_s=window_time_s
+        )
         dt = time.perf_counter() - t0
         ctx.bump("lns_windows")
         if ctx.best_npv > before:

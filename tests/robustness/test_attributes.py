@@ -23,22 +23,32 @@ def map_tooltips(html_path: Path) -> list[str]:
     return [json.loads(m) for m in _TIP.findall(html_path.read_text(encoding="utf-8"))]
 
 
-@pytest.mark.parametrize(('flag', 'value', 'role'), [
-    ("--id-field", "STAND_NO", "id_field"),
-    ("--age-field", "AGE_2024", "age_field"),
-    ("--yield-keys", "species,site", "yield_keys"),
-])
-def test_mapped_field_missing_lists_fields(run: GuardedCli, stands: Path, yields: Path,
-                                           flag: str, value: str, role: str) -> None:
+@pytest.mark.parametrize(
+    ("flag", "value", "role"),
+    [
+        ("--id-field", "STAND_NO", "id_field"),
+        ("--age-field", "AGE_2024", "age_field"),
+        ("--yield-keys", "species,site", "yield_keys"),
+    ],
+)
+def test_mapped_field_missing_lists_fields(
+    run: GuardedCli, stands: Path, yields: Path, flag: str, value: str, role: str
+) -> None:
     run.guard(stands, yields)
     res = run("check", stands, "--yields", yields, flag, value)
     wanted = value.split(",")[0]
-    assert_user_error(res, 1, f"'{wanted}' ({role}) not found",
-                      "fields in the layer: stand_id, age, stratum", flag)
+    assert_user_error(
+        res,
+        1,
+        f"'{wanted}' ({role}) not found",
+        "fields in the layer: stand_id, age, stratum",
+        flag,
+    )
 
 
-def test_field_names_match_case_insensitively(run: GuardedCli, tmp_path: Path,
-                                              yields: Path) -> None:
+def test_field_names_match_case_insensitively(
+    run: GuardedCli, tmp_path: Path, yields: Path
+) -> None:
     g = grid_stands().rename(columns={"stand_id": "STAND_ID", "age": "Age"})
     p = write_layer(g, tmp_path / "caps.gpkg")
     run.guard(p, yields)
@@ -81,8 +91,7 @@ def test_bad_ages_each_named(run: GuardedCli, tmp_path: Path, yields: Path) -> N
     assert_user_error(res, 1, "4 problem(s)", "S01", "S02", "S03", "S04")
 
 
-def test_non_finite_ages_in_a_numeric_field(run: GuardedCli, tmp_path: Path,
-                                            yields: Path) -> None:
+def test_non_finite_ages_in_a_numeric_field(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     g = grid_stands().astype({"age": float})
     g.loc[0, "age"] = np.nan
     g.loc[1, "age"] = np.inf
@@ -139,10 +148,9 @@ def test_shapefile_in_latin1_is_decoded(run: GuardedCli, tmp_path: Path, yields:
     assert list(sched["stand_id"]) == ["Forêt-1", "Forêt-2"]
 
 
-def test_markup_in_values_is_escaped_in_map(run: GuardedCli, tmp_path: Path,
-                                            yields: Path) -> None:
+def test_markup_in_values_is_escaped_in_map(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     g = grid_stands(3, 1)
-    evil = ['<script>alert("x")</script>', '<img src=x onerror=alert(1)>', 'A&B "quoted"']
+    evil = ['<script>alert("x")</script>', "<img src=x onerror=alert(1)>", 'A&B "quoted"']
     g["stand_id"] = evil
     g["note"] = ["</table><b>bold</b>", "javascript:alert(2)", "<!-- comment -->"]
     p = write_layer(g, tmp_path / "evil.gpkg")

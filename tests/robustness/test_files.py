@@ -19,19 +19,25 @@ from tests.robustness.conftest import (
 def test_missing_stand_file(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     run.guard(yields)
     missing = tmp_path / "nowhere" / "stands.gpkg"
-    for cmd in (["check", missing, "--yields", yields],
-                ["plan", missing, "--yields", yields, "--out", tmp_path / "o.gpkg", *FAST]):
+    for cmd in (
+        ["check", missing, "--yields", yields],
+        ["plan", missing, "--yields", yields, "--out", tmp_path / "o.gpkg", *FAST],
+    ):
         res = run(*cmd)
         assert_user_error(res, 1, "not found", str(missing))
     assert not (tmp_path / "o.gpkg").exists()
 
 
-@pytest.mark.parametrize(("name", "content"), [
-    ("junk.gpkg", b"this is not a GeoPackage\x00\x01"),
-    ("notes.txt", b"Stand notes written by hand\nnothing spatial here\n"),
-])
-def test_not_a_vector_file(run: GuardedCli, tmp_path: Path, yields: Path, name: str,
-                           content: bytes) -> None:
+@pytest.mark.parametrize(
+    ("name", "content"),
+    [
+        ("junk.gpkg", b"this is not a GeoPackage\x00\x01"),
+        ("notes.txt", b"Stand notes written by hand\nnothing spatial here\n"),
+    ],
+)
+def test_not_a_vector_file(
+    run: GuardedCli, tmp_path: Path, yields: Path, name: str, content: bytes
+) -> None:
     p = tmp_path / name
     p.write_bytes(content)
     run.guard(p, yields)
@@ -91,8 +97,12 @@ def test_bad_crs_flag(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     grid_stands().to_file(p)
     p.with_suffix(".prj").unlink()
     run.guard(p, yields)
-    assert_user_error(run("check", p, "--yields", yields, "--crs", "EPSG:nonsense"), 1,
-                      "EPSG:nonsense", "not a CRS")
+    assert_user_error(
+        run("check", p, "--yields", yields, "--crs", "EPSG:nonsense"),
+        1,
+        "EPSG:nonsense",
+        "not a CRS",
+    )
 
 
 def test_empty_layer(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
@@ -104,19 +114,28 @@ def test_empty_layer(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     assert not (tmp_path / "o.gpkg").exists()
 
 
-def test_missing_settings_and_yields_files(run: GuardedCli, stands: Path, tmp_path: Path,
-                                           yields: Path) -> None:
+def test_missing_settings_and_yields_files(
+    run: GuardedCli, stands: Path, tmp_path: Path, yields: Path
+) -> None:
     run.guard(stands, yields)
-    assert_user_error(run("check", stands, "--yields", tmp_path / "no.csv"), 1,
-                      "yield table not found", "no.csv")
-    assert_user_error(run("check", stands, "--yields", yields, "--settings", tmp_path / "no.toml"),
-                      1, "settings file not found", "no.toml")
+    assert_user_error(
+        run("check", stands, "--yields", tmp_path / "no.csv"), 1, "yield table not found", "no.csv"
+    )
+    assert_user_error(
+        run("check", stands, "--yields", yields, "--settings", tmp_path / "no.toml"),
+        1,
+        "settings file not found",
+        "no.toml",
+    )
 
 
 @pytest.mark.parametrize("make", ["missing", "garbage", "stand layer"])
 def test_verify_bad_plan_file(run: GuardedCli, tmp_path: Path, stands: Path, make: str) -> None:
-    p = {"missing": tmp_path / "nope.gpkg", "garbage": tmp_path / "junk.gpkg",
-         "stand layer": stands}[make]
+    p = {
+        "missing": tmp_path / "nope.gpkg",
+        "garbage": tmp_path / "junk.gpkg",
+        "stand layer": stands,
+    }[make]
     if make == "garbage":
         p.write_bytes(b"\x00" * 200)
     run.guard(stands)

@@ -32,10 +32,26 @@ def geometry(draw: st.DrawFn, k: int, previous: list) -> shapely.Geometry | None
     """Stand ``k``'s geometry: usually its grid cell, sometimes broken in one of many ways."""
     c = _cell(k)
     x, y, x1, y1 = c.bounds
-    kind = draw(st.sampled_from([
-        "cell", "cell", "cell", "cell", "bowtie", "sliver", "duplicate", "overlap", "hole",
-        "multi", "empty", "null", "collinear", "spike",
-    ]))
+    kind = draw(
+        st.sampled_from(
+            [
+                "cell",
+                "cell",
+                "cell",
+                "cell",
+                "bowtie",
+                "sliver",
+                "duplicate",
+                "overlap",
+                "hole",
+                "multi",
+                "empty",
+                "null",
+                "collinear",
+                "spike",
+            ]
+        )
+    )
     if kind == "bowtie":
         return shapely.Polygon([(x, y), (x1, y1), (x1, y), (x, y1)])
     if kind == "sliver":
@@ -49,8 +65,9 @@ def geometry(draw: st.DrawFn, k: int, previous: list) -> shapely.Geometry | None
     if kind == "hole":
         return c.difference(shapely.box(x + 50, y + 50, x1 - 50, y1 - 50))
     if kind == "multi":
-        return shapely.MultiPolygon([shapely.box(x, y, x + 80, y + 80),
-                                     shapely.box(x + 120, y + 120, x1, y1)])
+        return shapely.MultiPolygon(
+            [shapely.box(x, y, x + 80, y + 80), shapely.box(x + 120, y + 120, x1, y1)]
+        )
     if kind == "empty":
         return shapely.Polygon()
     if kind == "null":
@@ -63,9 +80,16 @@ def geometry(draw: st.DrawFn, k: int, previous: list) -> shapely.Geometry | None
 
 
 AGES = st.one_of(
-    st.integers(0, 200), st.integers(0, 200), st.integers(0, 200),
-    st.floats(0, 200, allow_nan=False), st.just(None), st.just(-5), st.just(5000),
-    st.just("old"), st.just(""), st.just(" 45 "),
+    st.integers(0, 200),
+    st.integers(0, 200),
+    st.integers(0, 200),
+    st.floats(0, 200, allow_nan=False),
+    st.just(None),
+    st.just(-5),
+    st.just(5000),
+    st.just("old"),
+    st.just(""),
+    st.just(" 45 "),
 )
 IDS = st.one_of(st.just(None), st.sampled_from(["S01", "Å-1", "森", "<b>x</b>", "7", "7.0"]))
 
@@ -89,13 +113,20 @@ def stand_layer(draw: st.DrawFn) -> gpd.GeoDataFrame:
     )  # fmt: skip
 
 
-@settings(max_examples=20, deadline=None,
-          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
-@given(layer=stand_layer(), skip_unmatched=st.booleans(), no_map=st.booleans(),
-       max_opening=st.sampled_from(["5", "10", "40"]))
-def test_check_and_plan_never_crash(tmp_path_factory, layer: gpd.GeoDataFrame,
-                                    skip_unmatched: bool, no_map: bool,
-                                    max_opening: str) -> None:
+@settings(
+    max_examples=20,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(
+    layer=stand_layer(),
+    skip_unmatched=st.booleans(),
+    no_map=st.booleans(),
+    max_opening=st.sampled_from(["5", "10", "40"]),
+)
+def test_check_and_plan_never_crash(
+    tmp_path_factory, layer: gpd.GeoDataFrame, skip_unmatched: bool, no_map: bool, max_opening: str
+) -> None:
     d = tmp_path_factory.mktemp("fuzz")
     stands = d / "stands.gpkg"
     layer.to_file(stands, layer="stands", driver="GPKG")
@@ -107,9 +138,26 @@ def test_check_and_plan_never_crash(tmp_path_factory, layer: gpd.GeoDataFrame,
     res = run("check", stands, "--yields", yields, *extra)
     assert res.exit_code in (0, 1), res.output
     out = d / "plan.gpkg"
-    res = run("plan", stands, "--yields", yields, "--out", out, "--price", "40",
-              "--periods", "2", "--time-limit", "1", "--workers", "1",
-              "--max-opening", max_opening, *extra, *(["--no-map"] if no_map else []))
+    res = run(
+        "plan",
+        stands,
+        "--yields",
+        yields,
+        "--out",
+        out,
+        "--price",
+        "40",
+        "--periods",
+        "2",
+        "--time-limit",
+        "1",
+        "--workers",
+        "1",
+        "--max-opening",
+        max_opening,
+        *extra,
+        *(["--no-map"] if no_map else []),
+    )
     assert res.exit_code in (0, 1, 2, 3), res.output
     event(f"plan exit code {res.exit_code}")  # --hypothesis-show-statistics shows the mix
     assert "failed independent verification" not in res.output, res.output
@@ -122,23 +170,39 @@ def test_check_and_plan_never_crash(tmp_path_factory, layer: gpd.GeoDataFrame,
         assert not out.exists()
 
 
-@settings(max_examples=15, deadline=None,
-          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
-@given(periods=st.integers(1, 4), period_length=st.sampled_from(["1", "5", "10"]),
-       max_opening=st.floats(0.5, 50.0), green_up=st.integers(1, 4),
-       min_age=st.sampled_from(["0", "30", "80", "200"]),
-       flow=st.sampled_from(["0", "0.05", "0.5", "1"]), non_declining=st.booleans(),
-       volume_min=st.sampled_from([None, None, 1500.0, 1e8]), seed=st.integers(0, 3))
+@settings(
+    max_examples=15,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(
+    periods=st.integers(1, 4),
+    period_length=st.sampled_from(["1", "5", "10"]),
+    max_opening=st.floats(0.5, 50.0),
+    green_up=st.integers(1, 4),
+    min_age=st.sampled_from(["0", "30", "80", "200"]),
+    flow=st.sampled_from(["0", "0.05", "0.5", "1"]),
+    non_declining=st.booleans(),
+    volume_min=st.sampled_from([None, None, 1500.0, 1e8]),
+    seed=st.integers(0, 3),
+)
 def test_random_rules_give_verified_plans_or_clear_errors(
-    tmp_path_factory, periods: int, period_length: str, max_opening: float, green_up: int,
-    min_age: str, flow: str, non_declining: bool, volume_min: float | None, seed: int,
+    tmp_path_factory,
+    periods: int,
+    period_length: str,
+    max_opening: float,
+    green_up: int,
+    min_age: str,
+    flow: str,
+    non_declining: bool,
+    volume_min: float | None,
+    seed: int,
 ) -> None:
     from spatialplan.synthetic import voronoi_forest
 
     d = tmp_path_factory.mktemp("rules")
     stands = d / "stands.gpkg"
-    voronoi_forest(15, seed=seed, mean_area_ha=8.0).to_file(stands, layer="stands",
-                                                            driver="GPKG")
+    voronoi_forest(15, seed=seed, mean_area_ha=8.0).to_file(stands, layer="stands", driver="GPKG")
     yields = d / "yields.csv"
     synthetic_yield_table().to_csv(yields, index=False)
     toml = d / "rules.toml"
@@ -146,12 +210,36 @@ def test_random_rules_give_verified_plans_or_clear_errors(
     run = GuardedCli()
     run.guard(stands, yields, toml)
     out = d / "plan.gpkg"
-    res = run("plan", stands, "--yields", yields, "--out", out, "--price", "40", "--no-map",
-              "--settings", toml,
-              "--periods", periods, "--period-length", period_length,
-              "--max-opening", f"{max_opening:.3f}", "--green-up", green_up,
-              "--min-age", min_age, "--flow-tolerance", flow, "--time-limit", "1",
-              "--workers", "1", *(["--non-declining"] if non_declining else []))
+    res = run(
+        "plan",
+        stands,
+        "--yields",
+        yields,
+        "--out",
+        out,
+        "--price",
+        "40",
+        "--no-map",
+        "--settings",
+        toml,
+        "--periods",
+        periods,
+        "--period-length",
+        period_length,
+        "--max-opening",
+        f"{max_opening:.3f}",
+        "--green-up",
+        green_up,
+        "--min-age",
+        min_age,
+        "--flow-tolerance",
+        flow,
+        "--time-limit",
+        "1",
+        "--workers",
+        "1",
+        *(["--non-declining"] if non_declining else []),
+    )
     event(f"plan exit code {res.exit_code}")
     assert res.exit_code in (0, 2, 3), res.output  # the inputs themselves are valid
     if res.exit_code == 0:

@@ -25,8 +25,9 @@ def test_points_instead_of_polygons(run: GuardedCli, tmp_path: Path, yields: Pat
     g.geometry = g.centroid
     p = write_layer(g, tmp_path / "points.gpkg")
     run.guard(p, yields)
-    assert_user_error(run("check", p, "--yields", yields), 1, "must be polygons", "Point",
-                      "right layer")
+    assert_user_error(
+        run("check", p, "--yields", yields), 1, "must be polygons", "Point", "right layer"
+    )
 
 
 def test_lines_instead_of_polygons(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
@@ -37,8 +38,9 @@ def test_lines_instead_of_polygons(run: GuardedCli, tmp_path: Path, yields: Path
     assert_user_error(run("check", p, "--yields", yields), 1, "must be polygons", "LineString")
 
 
-def test_some_points_among_polygons_are_named(run: GuardedCli, tmp_path: Path,
-                                              yields: Path) -> None:
+def test_some_points_among_polygons_are_named(
+    run: GuardedCli, tmp_path: Path, yields: Path
+) -> None:
     g = grid_stands()
     g.loc[4, "geometry"] = shapely.Point(X0, Y0)
     p = tmp_path / "mixed.geojson"  # GeoPackage layers hold one geometry type; GeoJSON mixes
@@ -61,12 +63,15 @@ def broken_layer() -> tuple[object, dict[str, float]]:
     g.loc[1, "geometry"] = None  # S02 -> excluded
     g.loc[2, "geometry"] = shapely.Polygon()  # S03 -> excluded
     g.loc[3, "geometry"] = shapely.Polygon([(X0 + 600, Y0), (X0 + 700, Y0), (X0 + 800, Y0)])  # S04
-    g.loc[4, "geometry"] = shapely.MultiPolygon([
-        shapely.box(X0, Y0 + 200, X0 + 50, Y0 + 250),
-        shapely.box(X0 + 100, Y0 + 300, X0 + 150, Y0 + 350),
-    ])  # S05 multipolygon
+    g.loc[4, "geometry"] = shapely.MultiPolygon(
+        [
+            shapely.box(X0, Y0 + 200, X0 + 50, Y0 + 250),
+            shapely.box(X0 + 100, Y0 + 300, X0 + 150, Y0 + 350),
+        ]
+    )  # S05 multipolygon
     g.loc[5, "geometry"] = shapely.box(X0 + 200, Y0 + 200, X0 + 400, Y0 + 400).difference(
-        shapely.box(X0 + 250, Y0 + 250, X0 + 350, Y0 + 350))  # S06 with a hole
+        shapely.box(X0 + 250, Y0 + 250, X0 + 350, Y0 + 350)
+    )  # S06 with a hole
     g.loc[7, "geometry"] = g.loc[6, "geometry"]  # S08 duplicates S07
     # S10 widened west by 100 m over half of S09: 300 m x 200 m = 6 ha, 2 ha shared
     g.loc[9, "geometry"] = shapely.box(X0 + 100, Y0 + 400, X0 + 400, Y0 + 600)
@@ -74,8 +79,7 @@ def broken_layer() -> tuple[object, dict[str, float]]:
     return g, areas
 
 
-def test_check_reports_every_broken_geometry(run: GuardedCli, tmp_path: Path,
-                                             yields: Path) -> None:
+def test_check_reports_every_broken_geometry(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     g, _ = broken_layer()
     p = write_layer(g, tmp_path / "broken.gpkg")
     run.guard(p, yields)
@@ -89,14 +93,12 @@ def test_check_reports_every_broken_geometry(run: GuardedCli, tmp_path: Path,
     assert "S09~S10 (2.000 ha)" in out
 
 
-def test_plan_on_broken_geometry_is_verified(run: GuardedCli, tmp_path: Path,
-                                             yields: Path) -> None:
+def test_plan_on_broken_geometry_is_verified(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     g, areas = broken_layer()
     p = write_layer(g, tmp_path / "broken.gpkg")
     run.guard(p, yields)
     out = tmp_path / "plan.gpkg"
-    res = run("plan", p, "--yields", yields, "--out", out, *FAST, "--max-opening", "10",
-              "--no-map")
+    res = run("plan", p, "--yields", yields, "--out", out, *FAST, "--max-opening", "10", "--no-map")
     assert res.exit_code == 0, res.output
     sched = pyogrio.read_dataframe(out, layer="schedule")
     ids = set(sched["stand_id"])
@@ -130,8 +132,9 @@ def test_coordinates_in_degrees(run: GuardedCli, tmp_path: Path, yields: Path) -
 def test_layer_without_crs(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
     p = write_layer(grid_stands(crs=None), tmp_path / "nocrs.gpkg")
     run.guard(p, yields)
-    assert_user_error(run("check", p, "--yields", yields), 1, "no coordinate reference system",
-                      "--crs EPSG:")
+    assert_user_error(
+        run("check", p, "--yields", yields), 1, "no coordinate reference system", "--crs EPSG:"
+    )
 
 
 def test_huge_coordinates(run: GuardedCli, tmp_path: Path, yields: Path) -> None:

@@ -16,9 +16,9 @@ def _plan(run: GuardedCli, stands: Path, yields: Path, out: Path, *extra: object
     return run("plan", stands, "--yields", yields, "--out", out, *FAST, *extra)
 
 
-def test_output_is_renamed_from_a_temporary_beside_it(run: GuardedCli, tmp_path: Path,
-                                                      stands: Path, yields: Path,
-                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+def test_output_is_renamed_from_a_temporary_beside_it(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     moves: list[tuple[Path, Path]] = []
     real = os.replace
 
@@ -37,9 +37,9 @@ def test_output_is_renamed_from_a_temporary_beside_it(run: GuardedCli, tmp_path:
         assert not src.exists()
 
 
-def test_failure_mid_write_keeps_earlier_output(run: GuardedCli, tmp_path: Path, stands: Path,
-                                                yields: Path,
-                                                monkeypatch: pytest.MonkeyPatch) -> None:
+def test_failure_mid_write_keeps_earlier_output(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     out = tmp_path / "plan.gpkg"
     run.guard(stands, yields)
     assert _plan(run, stands, yields, out, "--no-map").exit_code == 0
@@ -57,20 +57,21 @@ def test_failure_mid_write_keeps_earlier_output(run: GuardedCli, tmp_path: Path,
     res = _plan(run, stands, yields, out, "--no-map", "--overwrite", "--periods", "4")
     assert_user_error(res, 1, "cannot write GeoPackage", str(out), "No space left")
     assert out.read_bytes() == earlier
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["plan.gpkg", "stands.gpkg",
-                                                          "yields.csv"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["plan.gpkg", "stands.gpkg", "yields.csv"]
 
 
-def test_output_exists_without_overwrite(run: GuardedCli, tmp_path: Path, stands: Path,
-                                         yields: Path) -> None:
+def test_output_exists_without_overwrite(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path
+) -> None:
     out = tmp_path / "plan.gpkg"
     out.write_bytes(b"earlier")
     run.guard(stands, yields, out)
     assert_user_error(_plan(run, stands, yields, out), 1, f"output {out} exists", "--overwrite")
 
 
-def test_map_beside_output_exists_without_overwrite(run: GuardedCli, tmp_path: Path,
-                                                    stands: Path, yields: Path) -> None:
+def test_map_beside_output_exists_without_overwrite(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path
+) -> None:
     side = tmp_path / "plan.map.html"
     side.write_text("<p>an earlier map</p>")
     run.guard(stands, yields, side)
@@ -87,36 +88,38 @@ def test_output_is_an_input(run: GuardedCli, stands: Path, yields: Path, which: 
     assert str(target) in res.output
 
 
-def test_output_is_an_input_through_a_link(run: GuardedCli, tmp_path: Path, stands: Path,
-                                           yields: Path) -> None:
+def test_output_is_an_input_through_a_link(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path
+) -> None:
     link = tmp_path / "link.gpkg"
     os.link(stands, link)  # a second name for the same file
     run.guard(stands, yields)
     assert_user_error(_plan(run, stands, yields, link, "--overwrite"), 1, "same file as input")
 
 
-def test_raster_output_is_an_input(run: GuardedCli, tmp_path: Path, stands: Path,
-                                   yields: Path) -> None:
+def test_raster_output_is_an_input(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path
+) -> None:
     run.guard(stands, yields)
-    res = _plan(run, stands, yields, tmp_path / "plan.gpkg", "--raster-out", stands,
-                "--overwrite")
+    res = _plan(run, stands, yields, tmp_path / "plan.gpkg", "--raster-out", stands, "--overwrite")
     assert_user_error(res, 1, "same file as input", "--raster-out")
     assert not (tmp_path / "plan.gpkg").exists()
 
 
-def test_missing_output_folder(run: GuardedCli, tmp_path: Path, stands: Path,
-                               yields: Path) -> None:
+def test_missing_output_folder(run: GuardedCli, tmp_path: Path, stands: Path, yields: Path) -> None:
     run.guard(stands, yields)
     out = tmp_path / "no" / "such" / "plan.gpkg"
     assert_user_error(_plan(run, stands, yields, out), 1, "does not exist", "create it first")
-    res = _plan(run, stands, yields, tmp_path / "plan.gpkg", "--raster-out",
-                tmp_path / "nope" / "p.tif")
+    res = _plan(
+        run, stands, yields, tmp_path / "plan.gpkg", "--raster-out", tmp_path / "nope" / "p.tif"
+    )
     assert_user_error(res, 1, "does not exist")
     assert not (tmp_path / "plan.gpkg").exists()  # checked before solving
 
 
-def test_output_must_be_a_geopackage(run: GuardedCli, tmp_path: Path, stands: Path,
-                                     yields: Path) -> None:
+def test_output_must_be_a_geopackage(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path
+) -> None:
     run.guard(stands, yields)
     for name in ("plan.shp", "plan"):
         res = _plan(run, stands, yields, tmp_path / name)
@@ -124,8 +127,9 @@ def test_output_must_be_a_geopackage(run: GuardedCli, tmp_path: Path, stands: Pa
 
 
 @pytest.mark.skipif(os.geteuid() == 0, reason="root writes into read-only folders")
-def test_read_only_output_folder(run: GuardedCli, tmp_path: Path, stands: Path,
-                                 yields: Path) -> None:
+def test_read_only_output_folder(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path
+) -> None:
     ro = tmp_path / "ro"
     ro.mkdir()
     ro.chmod(0o555)
@@ -137,8 +141,9 @@ def test_read_only_output_folder(run: GuardedCli, tmp_path: Path, stands: Path,
 
 
 @pytest.mark.skipif(not Path("/proc/self").is_dir(), reason="needs Linux /proc")
-def test_unwritable_output_folder_even_for_root(run: GuardedCli, stands: Path,
-                                                yields: Path) -> None:
+def test_unwritable_output_folder_even_for_root(
+    run: GuardedCli, stands: Path, yields: Path
+) -> None:
     # /proc refuses new files whoever asks; permission bits alone would say "writable".
     run.guard(stands, yields)
     res = _plan(run, stands, yields, Path("/proc/plan.gpkg"))

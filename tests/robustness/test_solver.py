@@ -30,50 +30,95 @@ def _run_table(path: Path) -> dict[str, str]:
         return dict(con.execute("select key, value from run").fetchall())
 
 
-def test_infeasible_rules_exit_two_with_diagnosis(run: GuardedCli, tmp_path: Path,
-                                                  forest: Path, yields: Path) -> None:
+def test_infeasible_rules_exit_two_with_diagnosis(
+    run: GuardedCli, tmp_path: Path, forest: Path, yields: Path
+) -> None:
     s = tmp_path / "s.toml"
     s.write_text("[rules]\nperiod_volume_min_m3 = 1e9\n")  # far above any forest's volume
     out = tmp_path / "plan.gpkg"
     out.write_bytes(b"an earlier plan")
     run.guard(forest, yields, s)
-    res = run("plan", forest, "--yields", yields, "--out", out, "--overwrite", "--settings", s,
-              *PLAN, "--time-limit", "5")
-    assert_user_error(res, 2, "admit no harvest plan", "diagnosis:", "period volume minimum",
-                      "No plan was written")
+    res = run(
+        "plan",
+        forest,
+        "--yields",
+        yields,
+        "--out",
+        out,
+        "--overwrite",
+        "--settings",
+        s,
+        *PLAN,
+        "--time-limit",
+        "5",
+    )
+    assert_user_error(
+        res,
+        2,
+        "admit no harvest plan",
+        "diagnosis:",
+        "period volume minimum",
+        "No plan was written",
+    )
     assert out.read_bytes() == b"an earlier plan"
 
 
-def test_no_plan_within_time_limit_exit_three(run: GuardedCli, tmp_path: Path, forest: Path,
-                                              yields: Path) -> None:
+def test_no_plan_within_time_limit_exit_three(
+    run: GuardedCli, tmp_path: Path, forest: Path, yields: Path
+) -> None:
     # Zero flow tolerance with a volume floor: the empty plan is illegal and 10 ms is too
     # short for the heuristic or CP-SAT to find a legal one.
     s = tmp_path / "s.toml"
-    s.write_text("[rules]\nperiod_volume_min_m3 = 5000\nflow_tolerance = 0.0\n"
-                 "max_opening_ha = 12\n")
+    s.write_text(
+        "[rules]\nperiod_volume_min_m3 = 5000\nflow_tolerance = 0.0\nmax_opening_ha = 12\n"
+    )
     out = tmp_path / "plan.gpkg"
     run.guard(forest, yields, s)
-    res = run("plan", forest, "--yields", yields, "--out", out, "--settings", s, *PLAN,
-              "--time-limit", "0.01")
-    assert_user_error(res, 3, "no legal plan found within 0.01 s", "--time-limit",
-                      "No plan was written")
+    res = run(
+        "plan",
+        forest,
+        "--yields",
+        yields,
+        "--out",
+        out,
+        "--settings",
+        s,
+        *PLAN,
+        "--time-limit",
+        "0.01",
+    )
+    assert_user_error(
+        res, 3, "no legal plan found within 0.01 s", "--time-limit", "No plan was written"
+    )
     assert not out.exists()
     assert not list(tmp_path.glob(".plan.*"))  # no temporary left behind
 
 
-def test_nothing_eligible_is_said(run: GuardedCli, tmp_path: Path, forest: Path,
-                                  yields: Path) -> None:
+def test_nothing_eligible_is_said(
+    run: GuardedCli, tmp_path: Path, forest: Path, yields: Path
+) -> None:
     out = tmp_path / "plan.gpkg"
     run.guard(forest, yields)
-    res = run("plan", forest, "--yields", yields, "--out", out, *PLAN, "--time-limit", "5",
-              "--min-age", "900")
+    res = run(
+        "plan",
+        forest,
+        "--yields",
+        yields,
+        "--out",
+        out,
+        *PLAN,
+        "--time-limit",
+        "5",
+        "--min-age",
+        "900",
+    )
     assert res.exit_code == 0, res.output
     assert "no stand may be harvested in any period" in res.output and "--min-age" in res.output
 
 
-def test_keyboard_interrupt_while_writing_leaves_no_file(run: GuardedCli, tmp_path: Path,
-                                                         forest: Path, yields: Path,
-                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+def test_keyboard_interrupt_while_writing_leaves_no_file(
+    run: GuardedCli, tmp_path: Path, forest: Path, yields: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     real = pyogrio.write_dataframe
     calls = {"n": 0}
 
@@ -125,13 +170,25 @@ def test_ctrl_c_during_solve_writes_marked_plan_or_nothing(tmp_path: Path) -> No
     assert not [p.name for p in tmp_path.iterdir() if p.name.startswith(".plan.")]
 
 
-def test_subprocess_infeasible_has_no_traceback(tmp_path: Path, forest: Path,
-                                                yields: Path) -> None:
+def test_subprocess_infeasible_has_no_traceback(tmp_path: Path, forest: Path, yields: Path) -> None:
     s = tmp_path / "s.toml"
     s.write_text("[rules]\nperiod_area_min_ha = 1e6\n")  # more than the forest's area
     out = tmp_path / "plan.gpkg"
-    res = run_subprocess(["plan", forest, "--yields", yields, "--out", out, "--settings", s,
-                          *PLAN, "--time-limit", "5"])
+    res = run_subprocess(
+        [
+            "plan",
+            forest,
+            "--yields",
+            yields,
+            "--out",
+            out,
+            "--settings",
+            s,
+            *PLAN,
+            "--time-limit",
+            "5",
+        ]
+    )
     assert res.returncode == 2, res.stderr
     assert "diagnosis: period area minimum" in res.stderr
     assert TRACEBACK not in res.stderr + res.stdout

@@ -27,37 +27,42 @@ def test_missing_columns_listed(run: GuardedCli, stands: Path, tmp_path: Path) -
     y = _write(tmp_path, synthetic_yield_table().rename(columns={"volume": "vol_m3ha"}))
     run.guard(stands, y)
     res = run("check", stands, "--yields", y)
-    assert_user_error(res, 1, str(y), "lacks column(s) volume",
-                      "it has: stratum, age, vol_m3ha, diameter")
+    assert_user_error(
+        res, 1, str(y), "lacks column(s) volume", "it has: stratum, age, vol_m3ha, diameter"
+    )
 
 
-def test_ages_not_increasing(run: GuardedCli, stands: Path, tmp_path: Path,
-                             table: pd.DataFrame) -> None:
+def test_ages_not_increasing(
+    run: GuardedCli, stands: Path, tmp_path: Path, table: pd.DataFrame
+) -> None:
     table.loc[3, "age"] = 5  # line 5 of the CSV (header is line 1)
     y = _write(tmp_path, table)
     run.guard(stands, y)
-    assert_user_error(run("check", stands, "--yields", y), 1, "line 5", "key S1",
-                      "not strictly increasing")
+    assert_user_error(
+        run("check", stands, "--yields", y), 1, "line 5", "key S1", "not strictly increasing"
+    )
 
 
-def test_negative_and_text_volumes(run: GuardedCli, stands: Path, tmp_path: Path,
-                                   table: pd.DataFrame) -> None:
+def test_negative_and_text_volumes(
+    run: GuardedCli, stands: Path, tmp_path: Path, table: pd.DataFrame
+) -> None:
     table.loc[3, "volume"] = -12.5
     table.loc[20, "volume"] = "n/a"
     y = _write(tmp_path, table)
     run.guard(stands, y)
     res = run("check", stands, "--yields", y)
     # Both problems in one message: collect all, report once.
-    assert_user_error(res, 1, "2 problem(s)", "line 5", "negative volume", "line 22",
-                      "'n/a' is not a number")
+    assert_user_error(
+        res, 1, "2 problem(s)", "line 5", "negative volume", "line 22", "'n/a' is not a number"
+    )
 
 
-def test_duplicate_rows(run: GuardedCli, stands: Path, tmp_path: Path,
-                        table: pd.DataFrame) -> None:
+def test_duplicate_rows(run: GuardedCli, stands: Path, tmp_path: Path, table: pd.DataFrame) -> None:
     y = _write(tmp_path, pd.concat([table, table.iloc[[3]]], ignore_index=True))
     run.guard(stands, y)
-    assert_user_error(run("check", stands, "--yields", y), 1, "duplicate row for age 40",
-                      "also on line 5")
+    assert_user_error(
+        run("check", stands, "--yields", y), 1, "duplicate row for age 40", "also on line 5"
+    )
 
 
 def test_keys_with_no_stand_are_only_noted(run: GuardedCli, stands: Path, yields: Path) -> None:
@@ -79,20 +84,23 @@ def test_stands_with_no_key(run: GuardedCli, stands: Path, tmp_path: Path) -> No
     assert_user_error(run("plan", stands, "--yields", y, "--out", out, *FAST), 1, "'S2'")
     assert not out.exists()
     # With --skip-unmatched those stands are left out and the plan is made.
-    res = run("plan", stands, "--yields", y, "--out", out, *FAST, "--skip-unmatched",
-              "--no-map")
+    res = run("plan", stands, "--yields", y, "--out", out, *FAST, "--skip-unmatched", "--no-map")
     assert res.exit_code == 0, res.output
     assert len(pyogrio.read_dataframe(out, layer="schedule")) == 6
 
 
-@pytest.mark.parametrize(("content", "needle"), [
-    (b"", "cannot be read as CSV"),
-    (b"stratum,age,volume\n", "no rows"),
-    ("stratum,age,volume\nS\xe9,10,5\n".encode("latin-1"), "not UTF-8 text (line 2)"),
-    (b"stratum;age;volume\nS1;10;5\n", "';'-, tab- or '|'-separated"),
-])
-def test_unreadable_tables(run: GuardedCli, stands: Path, tmp_path: Path, content: bytes,
-                           needle: str) -> None:
+@pytest.mark.parametrize(
+    ("content", "needle"),
+    [
+        (b"", "cannot be read as CSV"),
+        (b"stratum,age,volume\n", "no rows"),
+        ("stratum,age,volume\nS\xe9,10,5\n".encode("latin-1"), "not UTF-8 text (line 2)"),
+        (b"stratum;age;volume\nS1;10;5\n", "';'-, tab- or '|'-separated"),
+    ],
+)
+def test_unreadable_tables(
+    run: GuardedCli, stands: Path, tmp_path: Path, content: bytes, needle: str
+) -> None:
     y = tmp_path / "y.csv"
     y.write_bytes(content)
     run.guard(stands, y)
