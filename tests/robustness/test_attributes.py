@@ -10,12 +10,22 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
+import shapely
 
 from spatialplan.synthetic import synthetic_yield_table
 from tests.conftest import grid_stands, write_layer
 from tests.robustness.conftest import FAST, GuardedCli, assert_user_error
 
 _TIP = re.compile(r'"sp_tip":\s*("(?:[^"\\]|\\.)*")')
+
+
+def table_rows(output: str) -> list[list[str]]:
+    """The cells of every row of the tables ``check`` prints (box-drawing borders)."""
+    return [
+        [c.strip() for c in line.strip().strip("│").split("│")]
+        for line in output.splitlines()
+        if line.startswith("│")
+    ]
 
 
 def map_tooltips(html_path: Path) -> list[str]:
@@ -52,7 +62,34 @@ def test_field_names_match_case_insensitively(
     g = grid_stands().rename(columns={"stand_id": "STAND_ID", "age": "Age"})
     p = write_layer(g, tmp_path / "caps.gpkg")
     run.guard(p, yields)
-    assert run("check", p, "--yields", yields).exit_code == 0
+    res = run("check", p, "--yields", yields)
+    assert res.exit_code == 0, res.output
+    rows = table_rows(res.output)
+    # Polygon areas from shapely: 1 ha = 10,000 m2 (SI definition of the hectare).
+    area_ha = shapely.area(np.asarray(g.geometry.values)) / 10_000.0
+    assert ["stands", str(len(g))] in rows
+    assert ["total area (ha)", f"{area_ha.sum():,.1f}"] in rows
+    # The ages were read from 'Age': 20-year age classes (common practice, no source)
+    # summed here from the layer's own values.
+    lo = (g["Age"].to_numpy() // 20) * 20
+    for c in sorted(set(lo)):
+        assert [f"{c}-{c + 19}", f"{area_ha[lo == c].sum():,.1f}"] in rows
+    for s in sorted(set(g["stratum"])):
+        sel = (g["stratum"] == s).to_numpy()
+        assert [s, str(sel.sum()), f"{area_ha[sel].sum():,.1f}"] in rows
+    assert "Inputs are usable for planning." in res.output
+    # The plan keeps the user's field names and uses 'Age' as the start age: age at
+    # harvest = start age + (p - 0.5) L at mid-period (common practice, no source).
+    out = tmp_path / "o.gpkg"
+    res = run("plan", p, "--yields", yields, "--out", out, *FAST, "--no-map")
+    assert res.exit_code == 0, res.output
+    sched = pyogrio.read_dataframe(out, layer="schedule")
+    assert list(sched["STAND_ID"]) == list(g["STAND_ID"])
+    assert list(sched["Age"]) == list(g["Age"])
+    cut = sched["period"].notna()
+    assert cut.any()
+    expected_age = sched.loc[cut, "Age"] + (sched.loc[cut, "period"] - 0.5) * 5.0
+    np.testing.assert_allclose(sched.loc[cut, "age_at_harvest"], expected_age, rtol=0, atol=1e-9)
 
 
 def test_duplicate_and_missing_ids(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
@@ -179,6 +216,7 @@ def test_numeric_ids_and_keys_from_other_systems(run: GuardedCli, tmp_path: Path
     g = grid_stands(2, 2)
     g["stand_id"] = [101.0, 102.0, 103.0, 104.0]
     g["stratum"] = [1.0, 2.0, 1.0, 2.0]
+    g["age"] = [60, 70, 80, 90]  # old enough to be cut in a 3-period plan
     p = write_layer(g, tmp_path / "num.gpkg")
     yt = synthetic_yield_table(["1", "2"])
     y = tmp_path / "y.csv"
@@ -186,3 +224,29 @@ def test_numeric_ids_and_keys_from_other_systems(run: GuardedCli, tmp_path: Path
     run.guard(p, y)
     res = run("check", p, "--yields", y)
     assert res.exit_code == 0, res.output
+    rows = table_rows(res.output)
+    # Each key has its two 4 ha stands (200 m squares; 1 ha = 10,000 m2, SI definition).
+    assert ["1", "2", "8.0"] in rows and ["2", "2", "8.0"] in rows
+    assert "no yield curve" not in res.output
+    assert "yield curves with no stand" not in res.output  # both keys of the table matched
+    # The plan reads each stand's volume from its own key's curve: area x the table's
+    # volume at the age at harvest, read linearly between tabulated ages with (0, 0) below
+    # the first (common practice, no source), numpy.interp as the reference.
+    # Four stands cannot keep a +-10 % flow over 3 periods: the loosest flow band lets
+    # the plan cut them.
+    out = tmp_path / "o.gpkg"
+    res = run("plan", p, "--yields", y, "--out", out, *FAST, "--no-map", "--flow-tolerance", "1")
+    assert res.exit_code == 0, res.output
+    sched = pyogrio.read_dataframe(out, layer="schedule")
+    assert list(sched["stand_id"]) == [101.0, 102.0, 103.0, 104.0]
+    assert list(sched["stratum"]) == ["1", "2", "1", "2"]
+    cut = sched["period"].notna().to_numpy()
+    assert set(sched.loc[cut, "stratum"]) == {"1", "2"}, sched
+    for _, r in sched[cut].iterrows():
+        curve = yt[yt["stratum"] == r["stratum"]]
+        per_ha = np.interp(
+            r["age_at_harvest"],
+            np.r_[0.0, curve["age"].to_numpy(float)],
+            np.r_[0.0, curve["volume"].to_numpy(float)],
+        )
+        assert r["volume_m3"] == pytest.approx(r["area_ha"] * per_ha, abs=0.05), r

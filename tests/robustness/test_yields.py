@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import io
+import sqlite3
 from pathlib import Path
 
 import pandas as pd
@@ -108,7 +110,33 @@ def test_unreadable_tables(
 
 
 def test_excel_bom_is_accepted(run: GuardedCli, stands: Path, tmp_path: Path) -> None:
+    # Excel's "CSV UTF-8" starts the file with the byte-order mark EF BB BF, the UTF-8
+    # encoding of U+FEFF (Unicode Standard, section 23.8 "Specials", from memory); Python's
+    # "utf-8-sig" codec writes it.
+    text = synthetic_yield_table().to_csv(index=False)
     y = tmp_path / "excel.csv"
-    y.write_text(synthetic_yield_table().to_csv(index=False), encoding="utf-8-sig")
-    run.guard(stands, y)
-    assert run("check", stands, "--yields", y).exit_code == 0
+    y.write_text(text, encoding="utf-8-sig")
+    assert y.read_bytes()[:3] == b"\xef\xbb\xbf"
+    plain = tmp_path / "plain.csv"
+    plain.write_text(text, encoding="utf-8")
+    run.guard(stands, y, plain)
+    res = run("check", stands, "--yields", y)
+    assert res.exit_code == 0, res.output
+    # The first column is still 'stratum' (not '\ufeffstratum'): every key of the table is
+    # read, the layer's S1 and S2 match and the other three are noted.
+    assert "yield curves with no stand in the layer: S3, S4, S5" in res.output
+    assert "Inputs are usable for planning." in res.output
+    # The mark changes nothing: the same report as for the table without it.
+    ref = run("check", stands, "--yields", plain)
+    assert ref.exit_code == 0, ref.output
+    assert res.output == ref.output
+    # The plan records the table it used: the same rows and values as the plain file read
+    # by pandas (the reference reader).
+    out = tmp_path / "bom.gpkg"
+    res = run("plan", stands, "--yields", y, "--out", out, *FAST, "--no-map")
+    assert res.exit_code == 0, res.output
+    with sqlite3.connect(out) as con:
+        recorded = dict(con.execute("select key, value from run").fetchall())["yields_csv"]
+    pd.testing.assert_frame_equal(
+        pd.read_csv(io.StringIO(recorded)), pd.read_csv(plain), check_dtype=False
+    )
