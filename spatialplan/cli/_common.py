@@ -268,6 +268,13 @@ def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool, flag: str
         msg = f"output {out} exists; pass --overwrite to replace it"
         raise OutputError(msg)
     parent = out_r.parent
+    # A file where a folder should be (plan.txt/out.gpkg): "create it first" would mislead.
+    existing = next(a for a in (parent, *parent.parents) if a.exists())
+    if not existing.is_dir():
+        msg = (
+            f"{existing} is a file, not a folder, so {out} cannot be written; choose another {flag}"
+        )
+        raise OutputError(msg)
     if not parent.is_dir():
         msg = f"output folder {parent} does not exist; create it first"
         raise OutputError(msg)

@@ -126,18 +126,29 @@ def test_output_must_be_a_geopackage(
         assert_user_error(res, 1, "must be a GeoPackage", ".gpkg")
 
 
-@pytest.mark.skipif(os.geteuid() == 0, reason="root writes into read-only folders")
-def test_read_only_output_folder(
-    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path
+@pytest.mark.parametrize(
+    ("flag", "rel"),
+    [("--out", "notes.txt/plan.gpkg"), ("--out", "notes.txt/sub/plan.gpkg"),
+     ("--raster-out", "notes.txt/plan.tif")],
+)  # fmt: skip
+def test_output_under_a_regular_file(
+    run: GuardedCli, tmp_path: Path, stands: Path, yields: Path, flag: str, rel: str
 ) -> None:
-    ro = tmp_path / "ro"
-    ro.mkdir()
-    ro.chmod(0o555)
-    try:
-        run.guard(stands, yields)
-        assert_user_error(_plan(run, stands, yields, ro / "plan.gpkg"), 1, "not writable")
-    finally:
-        ro.chmod(0o755)
+    # A path through a regular file cannot be written by anyone, root included (the
+    # system says ENOTDIR, POSIX open()); no permission bits are involved.
+    notes = tmp_path / "notes.txt"
+    notes.write_text("field notes\n")
+    target = tmp_path / rel
+    out = target if flag == "--out" else tmp_path / "plan.gpkg"
+    extra = () if flag == "--out" else ("--raster-out", target)
+    run.guard(stands, yields, notes)
+    before = sorted(p.name for p in tmp_path.iterdir())
+    res = _plan(run, stands, yields, out, *extra)
+    assert_user_error(res, 1, f"{notes} is a file, not a folder", str(target), flag)
+    assert "create it first" not in res.output
+    # Checked before solving: nothing written, not even the GeoPackage of a good --out.
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+    assert notes.read_text() == "field notes\n"
 
 
 @pytest.mark.skipif(not Path("/proc/self").is_dir(), reason="needs Linux /proc")
