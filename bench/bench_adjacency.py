@@ -1,6 +1,6 @@
 """Benchmark: time to build the stand adjacency graph of generated layers.
 
-Target (issue 4): the graph of a 50,000-stand layer in under 30 s on 2 cores.
+Target (the project's own goal): the graph of a 50,000-stand layer in under 30 s on 2 cores.
 
 Usage::
 

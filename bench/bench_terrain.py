@@ -1,6 +1,6 @@
 """Benchmark of spatialplan.terrain: slope statistics for many stands over a large DEM.
 
-Default case (issue 5): 50,000 Voronoi stands over a 10,000 x 10,000 cell DEM, plus the
+Default case: 50,000 Voronoi stands over a 10,000 x 10,000 cell DEM, plus the
 stream-buffer net area for the same stands. Inputs are generated once into ``--workdir``
 (a smooth synthetic DEM written as a tiled float32 GeoTIFF, the stand layer and a stream
 layer as GeoPackages) and reused on later runs. Each measured step runs in a fresh Python

@@ -71,7 +71,9 @@ def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Pat
         assert col in sched.columns
     cut = sched["period"].notna()
     assert cut.any()
-    # Objective with only a single price: area x volume x price x (1 + r)^-t (issue 9);
+    # Objective with only a single price: area x volume x price x (1 + r)^-t, annual
+    # compounding (standard compound-interest discounting, the factor numpy_financial.npv
+    # applies), harvest at mid-period t = (p - 0.5) L (common practice, no source);
     # `value` is each stand's share of it.
     t = (sched.loc[cut, "period"].astype(float) - 0.5) * 5.0
     assert np.allclose(

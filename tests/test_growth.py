@@ -33,7 +33,8 @@ from spatialplan.synthetic import synthetic_yield_table
 
 # NW-FVA 2021 Douglas-fir yield tables, yield class 0, total production (m3/ha) at ages
 # 40/60/80/90/95 (Albert, Nagel, Schmidt, Nagel & Spellmann 2021, Zenodo
-# doi 10.5281/zenodo.6343906), as quoted in the issue.
+# doi 10.5281/zenodo.6343906); values checked against the table as shipped in the R
+# package et.nwfva (CRAN), data-raw/tafeln_roh/et_dgl.csv, column GWL, Ekl 0.
 DOUGLAS_AGES = [40, 60, 80, 90, 95]
 DOUGLAS_GWL = [751, 1344, 1876, 2118, 2233]
 
@@ -173,8 +174,9 @@ HW,1,30,80,
 
 
 def test_interpolation_rules(tmp_path):
-    # Convention of the project (foundation issue): linear, (0, 0) below the first age,
-    # flat past the last; compared with numpy.interp on the augmented points (reference).
+    # The usual way tabulated yields are read between entries (common practice, no
+    # source): linear, (0, 0) below the first age, flat past the last; compared with
+    # numpy.interp on the augmented points (reference).
     tab = load_yield_table(_write(tmp_path, TABLE), ["stratum", "site"], YieldColumns())
     assert tab.strata == ["DF/2", "HW/1"]
     strata = np.array(["DF/2", "DF/2", "DF/2", "DF/2", "HW/1", "HW/1"], dtype=object)

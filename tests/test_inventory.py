@@ -1,4 +1,4 @@
-"""Reading and validating stand layers (foundation issue)."""
+"""Reading and validating stand layers."""
 
 from __future__ import annotations
 

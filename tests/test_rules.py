@@ -22,7 +22,9 @@ STRATA = np.array(["S1", "S2", "S1"], dtype=object)
 def test_green_up_periods_default() -> None:
     s = settings_from_dict({})
     g, msgs = green_up_periods_for_stands(STRATA, s)
-    # default of 2 five-year periods (issue 4; BC/Oregon practice in docs/methods.md)
+    # Default of 2 five-year periods (common practice, no single source): longer than
+    # Oregon's 48 months after planting (ORS 527.740, from memory) and the 3 years of the
+    # certification rule in Boston & Bettinger 2001, For. Ecol. Manage. 145:191-202
     assert g.tolist() == [2, 2, 2]
     assert msgs == []
 

@@ -103,7 +103,13 @@ def make_problem(
 
 # ---- independent checker and brute force ---------------------------------------------------
 def rule_breaks(pr: PlanProblem, period: np.ndarray) -> list[str]:
-    """Every rule a plan breaks, checked from the definitions in the issue text."""
+    """Every rule a plan breaks, each rule written out here from its definition.
+
+    Area restriction: every connected group of stands open in a period is at most the
+    maximum opening; unit restriction: no two adjacent stands open together (both as in
+    Murray 1999, Forest Science 45:45-52, from memory). Even flow, volume and area bounds:
+    common practice, no source.
+    """
     n, P = pr.n_stands, pr.periods
     out = []
     for i in range(n):
@@ -131,7 +137,8 @@ def rule_breaks(pr: PlanProblem, period: np.ndarray) -> list[str]:
     g.add_nodes_from(range(n))
     g.add_edges_from(map(tuple, np.asarray(pr.edges)))
     for p in range(1, P + 1):
-        # harvested in q -> open in q .. q + G - 1 (issue 4)
+        # Green-up delay of G periods: harvested in q -> open in q .. q + G - 1 (common
+        # practice, no source)
         new = {
             i
             for i in range(n)

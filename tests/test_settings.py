@@ -18,8 +18,10 @@ def _toml(tmp_path: Path, text: str) -> Path:
 
 def test_defaults_match_the_documented_rules() -> None:
     s = Settings()
-    # Defaults named in the adjacency issue: 40 ha maximum opening, 2 five-year periods of
-    # green-up, +-10 % flow, 10 periods, 4 % discount rate.
+    # 40 ha maximum opening and 2 five-year periods of green-up, as README.md and
+    # docs/methods.md state (40 ha is the coastal cutblock maximum of British Columbia's
+    # former Forest Practices Code, from memory); +-10 % flow, 10 periods and a 4 %
+    # discount rate (common practice, no source).
     assert s.rules.max_opening_ha == 40.0
     assert s.rules.green_up_periods == 2
     assert s.horizon.periods == 10 and s.horizon.period_length_yr == 5.0

@@ -151,7 +151,8 @@ def test_even_flow_both_directions() -> None:
             v[p - 1] += vol(60.0, p)
         np.testing.assert_allclose(rep.periods["volume_m3"], v, rtol=1e-12)
         flow = [x for x in rep.violations if x.rule == "even_flow"]
-        # |V2 - V1| <= 0.10 V1 (the flow rule of the scheduler issue)
+        # Even flow as a band around the previous period's volume, |V2 - V1| <= 0.10 V1
+        # (common practice in harvest scheduling, no source)
         ref_bad = abs(v[1] - v[0]) > 0.10 * v[0]
         assert ref_bad == bad
         assert [x.period for x in flow] == ([2] if bad else [])
