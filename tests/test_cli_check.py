@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -66,6 +67,11 @@ def test_check_unmatched_strata(tmp_path: Path, yields_csv: Path) -> None:
         cli, ["check", str(p), "--yields", str(yields_csv), "--skip-unmatched"]
     )
     assert res.exit_code == 0, res.output
+    # S01 is left out and said so; S02 (4 ha, stratum S2) is what remains.
+    assert "stands excluded: S01" in res.output
+    assert re.search(r"│ stands\s+│\s+1 │", res.output), res.output
+    assert re.search(r"│ S2\s+│\s+1 │\s+4\.0 │", res.output), res.output
+    assert "Inputs are usable for planning." in res.output
 
 
 def test_check_subprocess_no_traceback(tmp_path: Path) -> None:

@@ -136,7 +136,9 @@ def test_plan_by_unit_merges_units(tmp_path: Path, yields_csv: Path) -> None:
     import pandas as pd
 
     # Two management units 1 km apart: no stand of one touches the other, so planning them
-    # apart is exact (docs/scaling.md) and the merged plan must pass the forest-wide check.
+    # apart is exact (a separable problem: no rule or adjacency links the units, so the
+    # optimum is the sum of the units' optima) and the merged plan must pass the
+    # forest-wide check.
     a = voronoi_forest(25, seed=5, mean_area_ha=10.0)
     b = voronoi_forest(25, seed=6, mean_area_ha=10.0, origin=(520_000.0, 5_200_000.0))
     a["mu"], b["mu"] = "north", "south"

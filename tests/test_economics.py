@@ -291,8 +291,9 @@ def test_key_columns_in_rotation_table(tmp_path):
 # harvest values for the scheduler
 # ---------------------------------------------------------------------------------------
 def test_harvest_values_single_price_exact_npv():
-    # Project convention: npv = V(age0 + t) p (1+r)^-t with t = (p - 0.5) L (common practice
-    # in harvest-scheduling models); must hold exactly with one price and no costs.
+    # npv = V(age0 + t) p (1+r)^-t with t = (p - 0.5) L (mid-period harvest: common practice
+    # in harvest-scheduling models, no source; annual compounding as numpy_financial.npv);
+    # must hold exactly with one price and no costs.
     g = _table_model()
     st_ = _settings(discount_rate=0.04, price_per_m3=45.0)
     strata = np.array(["S1", "S3", "S5", "S3"], dtype=object)

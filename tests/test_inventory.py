@@ -73,7 +73,7 @@ def test_bad_ages(tmp_path: Path) -> None:
     g.loc[0, "age"] = "old"
     g.loc[1, "age"] = -5
     g.loc[2, "age"] = None
-    g.loc[3, "age"] = 5000
+    g.loc[3, "age"] = 5000  # older than any known living tree (under 5,000 years, from memory)
     inv = read_stands(write_layer(g, tmp_path / "ages.gpkg"))
     kinds = {p.kind: p.stand_ids for p in inv.errors}
     assert kinds["age_not_numeric"] == ("S01",)
@@ -145,7 +145,7 @@ def test_overlaps_warned_with_pairs(tmp_path: Path) -> None:
     g.loc[1, "geometry"] = shapely.affinity.translate(g.geometry.iloc[1], xoff=-50)
     inv = read_stands(write_layer(g, tmp_path / "ov.gpkg"))
     ov = [p for p in inv.warnings if p.kind == "overlap"]
-    assert ov and ov[0].stand_ids[0].startswith("S01~S02 (1.000 ha)")
+    assert ov and ov[0].stand_ids[0].startswith("S01~S02 (1.000 ha)")  # 50 m x 200 m = 1 ha
 
 
 def test_reserve_flag_parsing(tmp_path: Path) -> None:

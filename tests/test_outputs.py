@@ -74,8 +74,9 @@ def make_layers(seed: int = 7):
 # ---------------------------------------------------------------------------------------
 def test_openings_hand_example():
     # Four 100 m squares in a row A-B-C-D (1 ha each). A, B cut in 1, C in 2, D never;
-    # green-up 2 periods. By the openness definition of docs/architecture.md (hand worked):
-    # P1 {A,B}; P2 {A,B,C} (A, B still open); P3 {C}; P4 none.
+    # green-up 2 periods: a stand cut in q is open in q .. q + G - 1 (green-up rule,
+    # common practice, no source). Worked by hand: P1 {A,B}; P2 {A,B,C} (A, B still
+    # open); P3 {C}; P4 none.
     sq = [shapely.box(100 * i, 0, 100 * (i + 1), 100) for i in range(4)]
     g = gpd.GeoDataFrame({"stand_id": list("ABCD"), "period": [1, 1, 2, 0]}, geometry=sq,
                          crs="EPSG:32610")  # fmt: skip
@@ -95,7 +96,8 @@ def test_openings_hand_example():
 
 
 def test_openings_young_stand_joins():
-    # D young at the start (open in P1 only) joins C's opening in P1 (architecture.md).
+    # D young at the start (open in P1 only) joins C's opening in P1: recent clearcuts
+    # and young stands count together (green-up rule, common practice, no source).
     sq = [shapely.box(100 * i, 0, 100 * (i + 1), 100) for i in range(4)]
     g = gpd.GeoDataFrame({"stand_id": list("ABCD"), "period": [0, 0, 1, 0]}, geometry=sq,
                          crs="EPSG:32610")  # fmt: skip
@@ -162,7 +164,8 @@ def test_period_table_against_pandas():
         assert t.loc[p - 1, "largest_opening_ha"] == pytest.approx(
             op.loc[op["period"] == p, "area_ha"].max() if (op["period"] == p).any() else 0.0
         )
-    # Flow band from the rule |V[p+1] - V[p]| <= tol V[p] (spatialplan.problem.FlowRules).
+    # Flow band from the even-flow rule |V[p+1] - V[p]| <= tol V[p] (common practice in
+    # harvest scheduling, no source).
     v = ref["v"].to_numpy()
     assert np.isnan(t.loc[0, "flow_lower_m3"])
     assert t.loc[0, "flow_upper_m3"] == 9e9

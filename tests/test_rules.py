@@ -68,7 +68,8 @@ def test_green_up_by_height_chapman_richards() -> None:
 
 
 def test_green_up_by_height_table() -> None:
-    # linear interpolation between tabulated heights (0 m at age 0 assumed):
+    # linear interpolation between tabulated heights, 0 m at age 0 assumed (common
+    # practice, no source):
     # heights 1 m at 5, 2 m at 10, 4 m at 15 -> 1.4 m (the height in Boston & Bettinger
     # 2001) is first reached at the 10-year mid-period age -> 2 periods of 5 years
     s = settings_from_dict(
@@ -131,6 +132,7 @@ def test_eligible_matrix_hand_example() -> None:
 
 
 def test_rule_summary_lists_rules_in_force() -> None:
+    # 48.6 ha = 120 acres, Oregon's clearcut limit (ORS 527.740, from memory)
     s = settings_from_dict({"rules": {"max_opening_ha": 48.6, "unit_restriction": True}})
     text = "\n".join(rule_summary(s))
     assert "48.6 ha" in text

@@ -258,6 +258,8 @@ def test_stand_mean_slope_on_planar_zones(tmp_path):
     res = stand_terrain(st, TerrainSettings(), dem)
     df = res.stands
     assert np.allclose(df["slope_pct_mean"], [10.0, 50.0, 90.0], rtol=1e-5)
+    # Default classes, ground up to 35 %, cable up to 80 %, steeper inoperable (common
+    # practice, local rules differ, no single source).
     assert list(df["harvest_system"]) == ["ground", "cable", "inoperable"]
     assert list(df["operable"]) == [True, True, False]
     assert np.allclose(df["steep_share"], [0.0, 1.0, 1.0])  # steep = above 35 %

@@ -53,7 +53,8 @@ YIELDS = synthetic_yield_table()
 
 # One over-size opening (three 4 ha stands cut together in period 1 = 12 ha > 10 ha), one
 # green-up breach (8 ha cut in period 1, a 4 ha neighbour cut in period 2 while they are
-# still open with G = 2: 12 ha), one under-age harvest (age 20 + 12.5 = 32.5 < 40).
+# still open with G = 2: 12 ha), one under-age harvest (age 20 + 12.5 = 32.5 < 40, the age at
+# mid-period 3 of 5 years; mid-period timing is common practice, no source).
 THREE = {
     "periods": {(0, 0): 1, (1, 0): 1, (2, 0): 1, (4, 0): 1, (4, 1): 1, (5, 0): 2, (0, 2): 3},
     "ages": {(0, 2): 20.0},
@@ -127,8 +128,9 @@ def test_unit_restriction_reserve_and_period_range() -> None:
 
 
 def test_even_flow_both_directions() -> None:
-    # volumes recomputed here with numpy.interp on the yield table (linear between
-    # tabulated ages, as the yield-table convention says)
+    # volumes recomputed here with numpy.interp on the yield table: linear between
+    # tabulated ages, (0, 0) below the first (common practice, no source), at mid-period
+    # age + (p - 0.5) L (common practice, no source)
     tab = YIELDS[YIELDS.stratum == "S1"]
     xs = np.concatenate([[0.0], tab.age.to_numpy(float)])
     ys = np.concatenate([[0.0], tab.volume.to_numpy(float)])
@@ -210,6 +212,8 @@ def test_max_opening_equals_brute_force(seed: int) -> None:
     per = gdf["period"].to_numpy(dtype=int)
     age = gdf["age"].to_numpy(float)
     for p in range(1, 5):
+        # Open in period p: cut in p .. p + G - 1 (G = 2), or young at the start (age at
+        # mid-period below G L = 10 years); green-up rule: common practice, no source.
         is_open = [
             i
             for i in range(len(gdf))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -63,6 +64,11 @@ def test_several_layers_none_named(run: GuardedCli, tmp_path: Path, yields: Path
     # Naming a layer fixes it.
     res = run("check", p, "--yields", yields, "--layer", "stands_2024")
     assert res.exit_code == 0, res.output
+    # The named layer is the one read: its 2 x 2 grid of 4 ha squares, not the 12 of the
+    # other layer (200 m squares; 1 ha = 10,000 m2).
+    assert "(layer stands_2024)" in res.output
+    assert re.search(r"│ stands\s+│\s+4 │", res.output), res.output
+    assert re.search(r"│ total area \(ha\)\s+│\s+16\.0 │", res.output), res.output
 
 
 def test_layer_name_not_there(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
