@@ -368,6 +368,36 @@ def run_table(
     return pd.DataFrame({"key": list(rows), "value": [str(v) for v in rows.values()]})
 
 
+def run_plan(
+    inputs: PlanInputs,
+    out_path: str | Path,
+    *,
+    on_progress: Callable[[Any], None] | None = None,
+    on_stage: Callable[[str], None] | None = None,
+) -> PlanOutcome:
+    """Solve, verify and write a plan.
+
+    Parameters
+    ----------
+    inputs
+        From :func:`load_inputs`.
+    out_path
+        Output GeoPackage; map, report and charts are written beside it with the same stem
+        unless ``output.no_map``.
+    on_progress
+        Called with :class:`spatialplan.schedule.SolveProgress` while solving.
+    on_stage
+        Called with a short stage name as the run proceeds.
+
+    Returns
+    -------
+    PlanOutcome
+    """
+    # The two steps on their own serve callers that solve without writing (by-unit plans).
+    bundle, result = solve_plan(inputs, on_progress=on_progress, on_stage=on_stage)
+    return write_plan(inputs, bundle, result, out_path, on_stage=on_stage)
+
+
 def solve_plan(
     inputs: PlanInputs,
     *,
@@ -424,35 +454,6 @@ def verify_plan(
 
     sched = schedule_frame(inputs, bundle, period)
     return sched, verify.verify_schedule(sched, settings or inputs.settings, inputs.growth)
-
-
-def run_plan(
-    inputs: PlanInputs,
-    out_path: str | Path,
-    *,
-    on_progress: Callable[[Any], None] | None = None,
-    on_stage: Callable[[str], None] | None = None,
-) -> PlanOutcome:
-    """Solve, verify and write a plan: :func:`solve_plan` then :func:`write_plan`.
-
-    Parameters
-    ----------
-    inputs
-        From :func:`load_inputs`.
-    out_path
-        Output GeoPackage; map, report and charts are written beside it with the same stem
-        unless ``output.no_map``.
-    on_progress
-        Called with :class:`spatialplan.schedule.SolveProgress` while solving.
-    on_stage
-        Called with a short stage name as the run proceeds.
-
-    Returns
-    -------
-    PlanOutcome
-    """
-    bundle, result = solve_plan(inputs, on_progress=on_progress, on_stage=on_stage)
-    return write_plan(inputs, bundle, result, out_path, on_stage=on_stage)
 
 
 def write_plan(
