@@ -35,6 +35,8 @@ __all__ = [
     "load_inputs",
     "run_plan",
     "schedule_frame",
+    "solve_plan",
+    "verify_plan",
     "write_plan",
 ]
 
@@ -391,15 +393,67 @@ def run_plan(
     -------
     PlanOutcome
     """
+    # The two steps on their own serve callers that solve without writing (by-unit plans).
+    bundle, result = solve_plan(inputs, on_progress=on_progress, on_stage=on_stage)
+    return write_plan(inputs, bundle, result, out_path, on_stage=on_stage)
+
+
+def solve_plan(
+    inputs: PlanInputs,
+    *,
+    on_progress: Callable[[Any], None] | None = None,
+    on_stage: Callable[[str], None] | None = None,
+) -> tuple[PlanBundle, Any]:
+    """Build the problem from the inputs and solve it: the solve step of ``plan``.
+
+    Parameters
+    ----------
+    inputs
+        From :func:`load_inputs` (or a subset of them, one management unit).
+    on_progress
+        Called with :class:`spatialplan.schedule.SolveProgress` while solving.
+    on_stage
+        Called with a short stage name as the run proceeds.
+
+    Returns
+    -------
+    (PlanBundle, spatialplan.schedule.PlanResult)
+    """
     from spatialplan import schedule
 
     stage = on_stage or (lambda _s: None)
-    s = inputs.settings
     stage("building the model")
     bundle = build_problem(inputs, progress=stage)
     stage("solving")
-    result = schedule.solve(bundle.problem, s.solver, on_progress=on_progress)
-    return write_plan(inputs, bundle, result, out_path, on_stage=stage)
+    result = schedule.solve(bundle.problem, inputs.settings.solver, on_progress=on_progress)
+    return bundle, result
+
+
+def verify_plan(
+    inputs: PlanInputs,
+    bundle: PlanBundle,
+    period: np.ndarray,
+    settings: Settings | None = None,
+) -> tuple[gpd.GeoDataFrame, Any]:
+    """The ``schedule`` layer of a plan and its independent verification.
+
+    Parameters
+    ----------
+    inputs, bundle
+        What the plan was built from.
+    period
+        (n,) harvest period per stand, 0 = not harvested.
+    settings
+        Rules to verify against (default: ``inputs.settings``).
+
+    Returns
+    -------
+    (geopandas.GeoDataFrame, spatialplan.verify.VerifyReport)
+    """
+    from spatialplan import verify
+
+    sched = schedule_frame(inputs, bundle, period)
+    return sched, verify.verify_schedule(sched, settings or inputs.settings, inputs.growth)
 
 
 def write_plan(
@@ -433,14 +487,13 @@ def write_plan(
     on_stage
         Called with a short stage name as the run proceeds.
     """
-    from spatialplan import outputs, verify
+    from spatialplan import outputs
 
     stage = on_stage or (lambda _s: None)
     s = inputs.settings
     out_path = Path(out_path)
     stage("verifying")
-    sched = schedule_frame(inputs, bundle, result.period)
-    report = verify.verify_schedule(sched, verify_settings or s, inputs.growth)
+    sched, report = verify_plan(inputs, bundle, result.period, verify_settings)
     openings, stand_opening = outputs.opening_table(
         sched,
         bundle.problem.edges,

@@ -28,6 +28,7 @@ import re
 import tomllib
 import types
 import typing
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -35,6 +36,7 @@ from typing import Any
 from spatialplan.errors import SettingsError
 
 __all__ = [
+    "OFF",
     "AdjacencySettings",
     "ChapmanRichards",
     "Economics",
@@ -50,7 +52,11 @@ __all__ = [
     "StratumCurve",
     "TerrainSettings",
     "YieldColumns",
+    "apply_overrides",
+    "check_refused",
+    "flatten_overrides",
     "load_settings",
+    "resolve_override_paths",
     "settings_from_dict",
 ]
 
@@ -505,12 +511,15 @@ def _check_consistency(s: Settings, ctx: _Ctx) -> None:
         raise SettingsError("\n".join(problems))
 
 
-_PATH_KEYS = (("terrain", "dem"), ("terrain", "streams"))
+#: Settings that hold file paths: relative paths are taken from the folder of the file
+#: that names them (a settings file, or a scenario file for its overrides).
+_PATH_KEYS = ("terrain.dem", "terrain.streams")
 
 
 def _resolve_paths(s: Settings, base: Path) -> Settings:
     """Make file paths given in a settings file relative to that file's folder."""
-    for section, key in _PATH_KEYS:
+    for dotted in _PATH_KEYS:
+        section, key = dotted.split(".")
         sub = getattr(s, section)
         value = getattr(sub, key)
         if value and not Path(value).is_absolute():
@@ -567,3 +576,138 @@ def load_settings(
     if overrides:
         s = s.with_overrides(overrides)
     return s
+
+
+# ---------------------------------------------------------------------------------------
+# overrides as written in files (scenario files): nested tables, "off", relative paths
+# ---------------------------------------------------------------------------------------
+#: Value that switches an optional rule off in an override (TOML has no null).
+OFF = "off"
+
+
+def _is_off(value: Any) -> bool:
+    return isinstance(value, str) and value == OFF
+
+
+def flatten_overrides(table: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+    """Flatten nested TOML tables into dotted keys; lists stay values.
+
+    Parameters
+    ----------
+    table
+        Parsed TOML table.
+    prefix
+        Prefix of the keys (used in recursion).
+
+    Returns
+    -------
+    dict
+        Dotted key -> value.
+
+    Examples
+    --------
+    A nested table and a quoted dotted key give the same override:
+
+    >>> flatten_overrides({"rules": {"max_opening_ha": 40}, "solver.seed": 1})
+    {'rules.max_opening_ha': 40, 'solver.seed': 1}
+    """
+    out: dict[str, Any] = {}
+    for k, v in table.items():
+        key = f"{prefix}{k}"
+        if isinstance(v, dict):
+            out.update(flatten_overrides(v, key + "."))
+        else:
+            out[key] = v
+    return out
+
+
+def apply_overrides(settings: Settings, overrides: Mapping[str, Any]) -> Settings:
+    """Apply dotted overrides; the value ``"off"`` sets an optional rule to ``None``.
+
+    Parameters
+    ----------
+    settings
+        Starting settings.
+    overrides
+        Dotted key -> value, as read from a scenario file.
+
+    Returns
+    -------
+    Settings
+        Validated copy.
+
+    Raises
+    ------
+    SettingsError
+        Unknown key (with the nearest valid key), wrong type, out-of-range value, or
+        ``"off"`` for a setting that cannot be switched off.
+
+    Examples
+    --------
+    >>> s = apply_overrides(Settings(), {"rules.flow_tolerance": "off", "rules.min_age_yr": 30})
+    >>> s.rules.flow_tolerance is None, s.rules.min_age_yr
+    (True, 30.0)
+    """
+    on = {k: v for k, v in overrides.items() if not _is_off(v)}
+    off = [k for k, v in overrides.items() if _is_off(v)]
+    s = settings.with_overrides(on) if on else settings
+    if not off:
+        return s
+    data = s.to_dict()
+    for key in off:
+        parts = key.split(".")
+        node: Any = data
+        for p in parts[:-1]:
+            node = node.get(p) if isinstance(node, dict) else None
+        if not isinstance(node, dict) or parts[-1] not in node:
+            _unknown_key(key, _all_keys())
+        node[parts[-1]] = None
+    try:
+        return settings_from_dict(data)
+    except SettingsError as exc:
+        msg = f"{exc} ('{OFF}' only switches off optional rules)"
+        raise SettingsError(msg) from None
+
+
+def resolve_override_paths(overrides: Mapping[str, Any], base_dir: Path) -> dict[str, Any]:
+    """Make relative file paths among ``overrides`` relative to ``base_dir``.
+
+    Only the path settings (``terrain.dem``, ``terrain.streams``) are touched; ``"off"``
+    stays ``"off"``.
+
+    Examples
+    --------
+    >>> resolve_override_paths({"terrain.dem": "/data/dem.tif", "rules.min_age_yr": 30}, Path("."))
+    {'terrain.dem': '/data/dem.tif', 'rules.min_age_yr': 30}
+    """
+    out = dict(overrides)
+    for k in _PATH_KEYS:
+        v = out.get(k)
+        if isinstance(v, str) and not _is_off(v) and not Path(v).is_absolute():
+            out[k] = str((base_dir / v).resolve())
+    return out
+
+
+def check_refused(overrides: Mapping[str, Any], refused: Mapping[str, str], where: str) -> None:
+    """Refuse overrides that turn on a setting the caller cannot honour.
+
+    Parameters
+    ----------
+    overrides
+        Dotted key -> value.
+    refused
+        Dotted key -> why it is refused. A key set to ``None``, ``False`` or ``"off"`` is
+        accepted (the setting stays off).
+    where
+        Start of the message (file and table).
+
+    Raises
+    ------
+    SettingsError
+        The first refused key that is set, with the reason.
+    """
+    for k, why in refused.items():
+        v = overrides.get(k)
+        if not (v is None or v is False or _is_off(v)):
+            msg = f"{where}: setting '{k}' is refused: {why}"
+            raise SettingsError(msg)

@@ -13,14 +13,13 @@ import pytest
 from spatialplan.errors import InfeasibleError, SettingsError
 from spatialplan.pipeline import load_inputs, run_plan
 from spatialplan.scenarios import (
-    apply_overrides,
     cross_unit_edges,
     load_scenarios,
     plan_by_unit,
     run_comparison,
     split_threads,
 )
-from spatialplan.settings import Settings, load_settings
+from spatialplan.settings import Settings, apply_overrides, load_settings
 from spatialplan.synthetic import synthetic_yield_table, voronoi_forest
 
 # Small instances that CP-SAT proves optimal in seconds: 30 stands, 3 periods, one
@@ -152,12 +151,20 @@ def test_scenario_file_errors_name_the_key(tmp_path: Path) -> None:
         load_scenarios(p)
 
 
-def test_apply_overrides_off_and_nested() -> None:
-    s = apply_overrides(Settings(), {"rules.max_opening_ha": "off", "rules.flow_tolerance": 0.2})
-    assert s.rules.max_opening_ha is None
-    assert s.rules.flow_tolerance == 0.2
-    with pytest.raises(SettingsError, match=r"rules\.no_such_rule"):
-        apply_overrides(Settings(), {"rules.no_such_rule": "off"})
+def test_unit_overrides_checked_at_load(tmp_path: Path) -> None:
+    write_forest(tmp_path, n=12)
+    p = write_scenarios(tmp_path, {"a": {}})
+    text = p.read_text(encoding="utf-8")
+    p.write_text(text + '[units.North]\n"rules.flow_tolerance" = 0.05\n', encoding="utf-8")
+    assert load_scenarios(p).unit_overrides == {"North": {"rules.flow_tolerance": 0.05}}
+    p.write_text(text + '[units.North]\n"rules.flow_tolerance" = 3.0\n', encoding="utf-8")
+    with pytest.raises(SettingsError, match=r"\[units\.North\].*rules\.flow_tolerance.*range"):
+        load_scenarios(p)
+    # The inputs (layer, yield table, slope, stream buffers) are read once for all units,
+    # so a unit cannot change how they are read.
+    p.write_text(text + '[units.North]\n"terrain.stream_buffer_m" = 30\n', encoding="utf-8")
+    with pytest.raises(SettingsError, match=r"\[units\.North\].*terrain\.stream_buffer_m"):
+        load_scenarios(p)
 
 
 def test_split_threads_stays_within_cores() -> None:
@@ -289,7 +296,7 @@ def test_plan_by_unit_equals_whole_plan_when_separable(tmp_path: Path, client) -
         {**BASE, "fields.unit_field": "unit", "fields.layer": "stands", "rules.max_opening_ha": 10},
     )
     s = apply_overrides(s, {"rules.flow_tolerance": "off"})
-    by_unit = plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg", client=client)
+    by_unit = plan_by_unit(load_inputs(stands, yields, s), tmp_path / "merged.gpkg", client=client)
     whole = run_plan(load_inputs(stands, yields, s), tmp_path / "whole.gpkg")
     assert whole.result.status == "optimal"
     assert by_unit.result.status == "optimal"
@@ -314,7 +321,7 @@ def test_plan_by_unit_per_unit_flow_and_adjacency_warning(tmp_path: Path) -> Non
             "rules.flow_tolerance": 0.2,
         },
     )
-    out = plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")  # in-process
+    out = plan_by_unit(load_inputs(stands, yields, s), tmp_path / "merged.gpkg")  # in-process
     # Cross-unit pairs, checked against networkx on the whole adjacency graph.
     from spatialplan.pipeline import build_problem
 
@@ -349,10 +356,10 @@ def test_plan_by_unit_refuses_forest_wide_targets(tmp_path: Path) -> None:
         },
     )
     with pytest.raises(SettingsError, match=r"rules\.period_volume_min_m3.*per unit"):
-        plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")
+        plan_by_unit(load_inputs(stands, yields, s), tmp_path / "merged.gpkg")
     s = load_settings(None, {**BASE, "fields.layer": "stands"})
     with pytest.raises(SettingsError, match=r"fields\.unit_field"):
-        plan_by_unit(stands, yields, s, tmp_path / "merged.gpkg")
+        plan_by_unit(load_inputs(stands, yields, s), tmp_path / "merged.gpkg")
 
 
 def test_compare_by_unit_merges_units(tmp_path: Path, client) -> None:
@@ -398,3 +405,116 @@ def test_compare_by_unit_merges_units(tmp_path: Path, client) -> None:
     assert r.status == "optimal"
     assert r.npv == pytest.approx(total, rel=1e-9)
     assert (tmp_path / "out" / "open10.gpkg").is_file()
+
+
+def _terrain_files(folder: Path, stands: Path) -> tuple[Path, Path]:
+    """A DEM with slope rising to the east and a stream across both units."""
+    import geopandas as gpd
+    import rasterio
+    from affine import Affine
+    from shapely.geometry import LineString
+
+    x0, y0, x1, y1 = gpd.read_file(stands, layer="stands").total_bounds
+    cell = 20.0
+    cols, rows = int((x1 - x0) // cell) + 10, int((y1 - y0) // cell) + 10
+    xs = (np.arange(cols) + 0.5) * cell
+    z = np.tile(1e-4 * xs**2, (rows, 1))  # slope 2e-4 x: steeper to the east
+    dem = folder / "dem.tif"
+    profile = {
+        "driver": "GTiff",
+        "height": rows,
+        "width": cols,
+        "count": 1,
+        "dtype": "float32",
+        "crs": "EPSG:32610",
+        "transform": Affine(cell, 0.0, x0 - 5 * cell, 0.0, -cell, y1 + 5 * cell),
+    }
+    with rasterio.open(dem, "w", **profile) as dst:
+        dst.write(z.astype(np.float32), 1)
+    ym = (y0 + y1) / 2
+    streams = folder / "streams.gpkg"
+    gpd.GeoDataFrame(
+        {"name": ["main"]}, geometry=[LineString([(x0, ym), (x1, ym + 50)])], crs="EPSG:32610"
+    ).to_file(streams, layer="streams", driver="GPKG")
+    return dem, streams
+
+
+def test_plan_by_unit_reads_inputs_once(tmp_path: Path, monkeypatch) -> None:
+    from collections import Counter
+
+    from click.testing import CliRunner
+
+    import spatialplan.pipeline as pipeline
+    import spatialplan.terrain as terrain
+    from spatialplan.cli import cli
+
+    stands, yields = _two_units(tmp_path, gap_m=500.0)
+    dem, streams = _terrain_files(tmp_path, stands)
+    calls: Counter[str] = Counter()
+
+    def count(module: object, name: str) -> None:
+        f = getattr(module, name)
+
+        def counted(*a, **k):
+            calls[name] += 1
+            return f(*a, **k)
+
+        monkeypatch.setattr(module, name, counted)
+
+    count(pipeline, "load_inputs")
+    count(pipeline, "read_stands")
+    count(terrain, "stand_terrain")
+    count(terrain, "net_area")
+    out = tmp_path / "units_plan.gpkg"
+    args = ["plan", str(stands), "--yields", str(yields), "--out", str(out), "--by-unit"]
+    args += ["--unit-field", "unit", "--layer", "stands", "--dem", str(dem)]
+    args += ["--streams", str(streams), "--periods", "3", "--min-age", "30", "--price", "50"]
+    args += ["--time-limit", "10", "--workers", "1", "--seed", "0", "--no-map"]
+    res = CliRunner().invoke(cli, args)
+    assert res.exit_code == 0, res.output
+    # Two units: the layer, the slope and the stream buffers are read and computed once
+    # (before the split they were read once per unit plus twice more).
+    assert calls == {"load_inputs": 1, "read_stands": 1, "stand_terrain": 1, "net_area": 1}
+    import sqlite3
+
+    with sqlite3.connect(out) as con:
+        run = dict(con.execute("select key, value from run").fetchall())
+    assert run["planned_by_unit"] == "true"
+    assert run["units"].startswith("N: ") and "; S: " in run["units"]
+
+
+def test_subset_inputs_equals_reading_the_unit_alone(tmp_path: Path) -> None:
+    import geopandas as gpd
+
+    from spatialplan.scenarios import subset_inputs
+
+    stands, yields = _two_units(tmp_path, gap_m=500.0)
+    dem, streams = _terrain_files(tmp_path, stands)
+    s = load_settings(
+        None,
+        {
+            **BASE,
+            "fields.unit_field": "unit",
+            "fields.layer": "stands",
+            "terrain.dem": str(dem),
+            "terrain.streams": str(streams),
+        },
+    )
+    whole = load_inputs(stands, yields, s)
+    layer = gpd.read_file(stands, layer="stands")
+    for u in ("N", "S"):
+        # Reference: the unit's stands written as a layer of their own and read through
+        # the full pipeline (slope and stream buffer of a stand depend on that stand only).
+        path = tmp_path / f"only_{u}.gpkg"
+        layer[layer["unit"] == u].to_file(path, layer="stands", driver="GPKG")
+        alone = load_inputs(path, yields, s)
+        mask = whole.inventory.stands["unit"].to_numpy(dtype=object) == u
+        sub = subset_inputs(whole, mask)
+        cols = ["stand_id", "age", "stratum", "area_ha"]
+        pd.testing.assert_frame_equal(
+            sub.inventory.stands[cols], alone.inventory.stands[cols], check_exact=False
+        )
+        pd.testing.assert_frame_equal(sub.terrain.stands, alone.terrain.stands, rtol=1e-9)
+        pd.testing.assert_frame_equal(sub.net.stands, alone.net.stands, rtol=1e-9)
+        assert sub.net.stands["buffer_area_ha"].sum() > 0  # the stream crosses every unit
+        assert sub.terrain.stands["slope_pct_mean"].std() > 0

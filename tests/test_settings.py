@@ -86,3 +86,81 @@ def test_overrides_and_round_trip(tmp_path: Path) -> None:
 def test_green_up_years_round_up_to_periods() -> None:
     s = Settings().with_overrides({"rules.green_up_years": 6, "horizon.period_length_yr": 5})
     assert s.green_up_periods_effective == 2
+
+
+# ---------------------------------------------------------------------------------------
+# overrides as written in scenario files (moved here from the scenarios package)
+# ---------------------------------------------------------------------------------------
+def test_flatten_overrides_agrees_with_toml_dotted_keys() -> None:
+    import tomllib
+
+    from spatialplan.settings import flatten_overrides
+
+    # TOML v1.0.0, "Keys" and "Table": a [table] header, an unquoted dotted key and
+    # nested inline tables define the same nested table (parsed by the stdlib tomllib);
+    # a quoted "a.b" is one key that flatten_overrides reads as the same dotted key.
+    forms = [
+        "[rules]\nmax_opening_ha = 40\n[economics]\nprices = [1, 2]\n",
+        "rules.max_opening_ha = 40\neconomics.prices = [1, 2]\n",
+        "rules = { max_opening_ha = 40 }\neconomics = { prices = [1, 2] }\n",
+        '"rules.max_opening_ha" = 40\n"economics.prices" = [1, 2]\n',
+    ]
+    want = {"rules.max_opening_ha": 40, "economics.prices": [1, 2]}  # lists stay values
+    for text in forms:
+        assert flatten_overrides(tomllib.loads(text)) == want, text
+
+
+def test_apply_overrides_off_switches_optional_rules_only() -> None:
+    from spatialplan.settings import OFF, apply_overrides
+
+    base = Settings()
+    s = apply_overrides(base, {"rules.max_opening_ha": OFF, "rules.flow_tolerance": 0.2})
+    assert s.rules.max_opening_ha is None
+    assert s.rules.flow_tolerance == 0.2
+    assert base.rules.max_opening_ha == 40.0  # the starting settings are left as they were
+    # green_up_periods is a plain int (no "rule off"): the message names the key and "off".
+    with pytest.raises(SettingsError, match=r"rules\.green_up_periods.*'off' only switches"):
+        apply_overrides(base, {"rules.green_up_periods": OFF})
+    with pytest.raises(SettingsError, match=r"unknown setting 'rules\.no_such_rule'"):
+        apply_overrides(base, {"rules.no_such_rule": OFF})
+    with pytest.raises(SettingsError, match=r"did you mean 'rules\.max_opening_ha'"):
+        apply_overrides(base, {"rules.max_openng_ha": 30})
+
+
+def test_override_paths_resolve_like_settings_file_paths(tmp_path: Path) -> None:
+    import os
+
+    from spatialplan.settings import resolve_override_paths
+
+    sub = tmp_path / "scen"
+    sub.mkdir()
+    ov = {
+        "terrain.dem": "../dem.tif",
+        "terrain.streams": "off",
+        "rules.min_age_yr": 30,
+        "output.basemap": "tiles/x.png",  # not a file setting: left alone
+    }
+    got = resolve_override_paths(ov, sub)
+    # Reference: os.path joins and normalises the same relative path.
+    assert got["terrain.dem"] == os.path.realpath(os.path.join(sub, "../dem.tif"))
+    assert got["terrain.streams"] == "off"
+    assert got["rules.min_age_yr"] == 30
+    assert got["output.basemap"] == "tiles/x.png"
+    assert ov["terrain.dem"] == "../dem.tif"  # input mapping not modified
+    # The same relative path in a settings file in that folder resolves to the same file.
+    p = sub / "plan.toml"
+    p.write_text('[terrain]\ndem = "../dem.tif"\n', encoding="utf-8")
+    assert load_settings(p).terrain.dem == got["terrain.dem"]
+
+
+def test_check_refused_names_key_and_reason() -> None:
+    from spatialplan.settings import check_refused
+
+    refused = {"output.write_back": "it would modify the input layer"}
+    for off in (None, False, "off"):
+        check_refused({"output.write_back": off}, refused, "s.toml [base]")
+    check_refused({"rules.min_age_yr": 30}, refused, "s.toml [base]")
+    with pytest.raises(
+        SettingsError, match=r"s\.toml \[base\]: setting 'output\.write_back'.*modify the input"
+    ):
+        check_refused({"output.write_back": True}, refused, "s.toml [base]")

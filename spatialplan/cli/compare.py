@@ -130,7 +130,7 @@ def _with_threads(scen: Any, threads: int, force: bool) -> Any:
     """Set solver.workers in every scenario that does not set it (every one with ``force``)."""
     import dataclasses
 
-    from spatialplan.scenarios import apply_overrides
+    from spatialplan.settings import apply_overrides
 
     out = []
     for s in scen.scenarios:

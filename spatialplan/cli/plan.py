@@ -208,7 +208,7 @@ def run_and_report(
             from spatialplan.scenarios import plan_by_unit
 
             on_stage("solving each management unit")
-            outcome = plan_by_unit(stands, yields_path, settings, out)
+            outcome = plan_by_unit(inputs, out)  # the inputs read above, cut per unit
         else:
             outcome = run_plan(inputs, out, on_progress=on_progress, on_stage=on_stage)
     r = outcome.result

@@ -3,7 +3,8 @@
 The public face is small: :func:`solve` returns the best plan found within the time
 limit as a :class:`PlanResult`; :func:`lp_bound` solves Model I without spatial rules as an
 LP (HiGHS); :func:`diagnose` names the rule family that makes a problem infeasible and the
-smallest relaxation that works. The modules inside are the parts of one job:
+smallest relaxation that works; :func:`gap` is the relative gap of an NPV to a bound.
+The modules inside are the parts of one job:
 
 * ``model`` - rule rows, openness, the float64 plan check, over-size covers;
 * ``bound`` - the LP relaxation (HiGHS);
@@ -15,6 +16,6 @@ smallest relaxation that works. The modules inside are the parts of one job:
 """
 
 from spatialplan.schedule.bound import LpResult, lp_bound
-from spatialplan.schedule.driver import PlanResult, SolveProgress, diagnose, solve
+from spatialplan.schedule.driver import PlanResult, SolveProgress, diagnose, gap, solve
 
-__all__ = ["LpResult", "PlanResult", "SolveProgress", "diagnose", "lp_bound", "solve"]
+__all__ = ["LpResult", "PlanResult", "SolveProgress", "diagnose", "gap", "lp_bound", "solve"]

@@ -55,6 +55,7 @@ __all__ = [
     "PlanResult",
     "SolveProgress",
     "diagnose",
+    "gap",
     "lp_bound",
     "solve",
 ]
@@ -116,7 +117,19 @@ class PlanResult:
     stats: dict = field(default_factory=dict)
 
 
-def _gap(npv: float, bound: float) -> float:
+def gap(npv: float, bound: float) -> float:
+    """Relative gap of a plan's NPV to an upper bound: ``(bound - npv) / |bound|``.
+
+    Never negative; infinite when there is no finite bound. The denominator is kept away
+    from zero so a bound of 0 gives a large gap rather than a division error.
+
+    Examples
+    --------
+    >>> gap(95.0, 100.0)
+    0.05
+    >>> gap(100.0, float("nan"))
+    inf
+    """
     if not np.isfinite(bound):
         return float("inf")
     return max(0.0, (bound - npv) / max(abs(bound), 1e-9))
@@ -210,7 +223,7 @@ def solve(
         if on_progress is None:
             return
         b = _bound(c)
-        on_progress(SolveProgress(time.perf_counter() - t0, c.best_npv, b, _gap(c.best_npv, b)))
+        on_progress(SolveProgress(time.perf_counter() - t0, c.best_npv, b, gap(c.best_npv, b)))
 
     ctx.on_improve = report
     with _sigint(registry):
@@ -295,7 +308,7 @@ def solve(
         raise NoSolutionError(msg)
     npv = plan_npv(problem, final)
     bound = _bound(ctx)
-    gap = _gap(npv, bound)
+    plan_gap = gap(npv, bound)
     empty_plan = not final.any()
     stats["empty_plan"] = bool(empty_plan)
     if empty_plan and lp_value > 0:
@@ -305,7 +318,7 @@ def solve(
         )
     if registry["interrupted"]:
         status = "interrupted"
-    elif ctx.proven or (gap <= settings.gap and not (empty_plan and lp_value > 0)):
+    elif ctx.proven or (plan_gap <= settings.gap and not (empty_plan and lp_value > 0)):
         status = "optimal"
     elif time.perf_counter() >= deadline - 0.05 or strategy in ("lns", "local"):
         status = "time_limit"
@@ -317,7 +330,7 @@ def solve(
         npv=npv,
         cpsat_bound=ctx.cpsat_bound,
         lp_bound=float(lp.value) if lp.status == "optimal" else float("nan"),
-        gap=gap,
+        gap=plan_gap,
         solve_time_s=elapsed,
         stats=stats,
     )
@@ -358,7 +371,7 @@ def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bo
         if (
             ctx.best is not None
             and ctx.cpsat_bound is not None
-            and _gap(ctx.best_npv, _bound(ctx)) <= settings.gap
+            and gap(ctx.best_npv, _bound(ctx)) <= settings.gap
         ):
             break
     size = sub.size()
