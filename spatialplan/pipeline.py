@@ -139,6 +139,10 @@ def load_inputs(
         inv = match_strata(
             inv, set(growth.strata), str(yields_path or "[growth]"), inv.fields.skip_unmatched
         )
+        # A regenerated stratum without a yield curve is named now, not after terrain work.
+        from spatialplan.prescriptions import regeneration_map
+
+        regeneration_map(settings.regeneration, growth)
     if strict:
         inv.raise_for_errors()
     inputs = PlanInputs(

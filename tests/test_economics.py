@@ -421,6 +421,11 @@ def test_ending_value_of_bare_land_is_lev(C, d):
     lev_star, t_star = _lev_brute(S, r, C, d)
     ev = ending_value_per_ha(["X"] * 4, [-d, 0.0, 10.0, t_star], g, s)
     assert ev[0] == pytest.approx(lev_star + C, rel=1e-12)
+    # numpy_financial.npv of the explicit annual cash flows from that cut on: S(T*) - C at
+    # every cut, k (T* + d) years later, k = 1, 2, ... (truncated after 4,000 years)
+    flows = np.zeros(4000)
+    flows[int(t_star + d) :: int(t_star + d)] = S[int(t_star) - 1] - C
+    assert ev[0] == pytest.approx(npf.npv(r, flows), rel=1e-9)
     for e, v in zip([0.0, 10.0, t_star], ev[1:], strict=True):
         assert v == pytest.approx((lev_star + C) * (1 + r) ** (e + d), rel=1e-12)
     # an over-mature crop is cut at once: S(e) + LEV

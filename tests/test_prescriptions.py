@@ -357,3 +357,19 @@ def test_build_problem_passes_prescriptions_and_old_forest(tmp_path, yields_csv)
     assert pr.old_forest_group.tolist() == [0] * 6 + [1] * 6
     # some stand has a prescription with two harvests (regrown to 30 within 60 years)
     assert np.diff(pr.prescriptions.harvest_start).max() >= 2
+
+
+def test_check_names_a_stratum_map_entry_without_yield_curve(tmp_path, yields_csv):
+    from click.testing import CliRunner
+
+    from spatialplan.cli import cli
+
+    stands = write_layer(grid_stands(), tmp_path / "stands.gpkg")
+    toml = tmp_path / "plan.toml"
+    toml.write_text('[regeneration.stratum_map]\nS1 = "S9"\n', encoding="utf-8")
+    res = CliRunner().invoke(
+        cli, ["check", str(stands), "--yields", str(yields_csv), "--settings", str(toml)]
+    )
+    assert res.exit_code == 1, res.output
+    assert "regeneration.stratum_map.'S1' = 'S9': no yield curve for stratum 'S9'" in res.output
+    assert "Traceback" not in res.output
