@@ -578,6 +578,8 @@ def net_value_per_ha(
         if harvest_cost_per_m3 is None
         else np.broadcast_to(np.asarray(harvest_cost_per_m3, dtype=float), lab.shape)
     )
+    if ages.size == 0:
+        return np.zeros(ages.shape)
     net = _timber(lab, ages, growth, econ, hc)[4]
     if regeneration_cost and econ.regeneration_cost_per_ha != 0:
         net = net - econ.regeneration_cost_per_ha
@@ -843,6 +845,19 @@ def harvest_values(
 # ---------------------------------------------------------------------------------------
 # long-term sustained yield
 # ---------------------------------------------------------------------------------------
+LTSY_COLUMNS = [
+    "stratum",
+    "harvest_cost_per_m3",
+    "net_area_ha",
+    "mai_max_age",
+    "mai_max_m3_ha_yr",
+    "faustmann_age",
+    "faustmann_mai_m3_ha_yr",
+    "ltsy_mai_max_m3_yr",
+    "ltsy_faustmann_m3_yr",
+]
+
+
 @dataclass(frozen=True)
 class SustainedYield:
     """Long-term sustained yield (LTSY) of a forest, m3 per year.
@@ -910,6 +925,8 @@ def long_term_sustained_yield(
         else np.broadcast_to(np.asarray(harvest_cost_per_m3, dtype=float), lab.shape)
     )
     d = float(settings.regeneration.delay_yr)
+    if not len(lab):
+        return SustainedYield(0.0, 0.0, pd.DataFrame(columns=LTSY_COLUMNS))
     (u_lab, u_hc), inv = _unique_rows(lab, np.asarray(hc, dtype=float))
     u_area = np.bincount(inv, weights=area, minlength=len(u_lab))
     ages = np.arange(1, int(max_age) + 1, dtype=float)
@@ -922,7 +939,7 @@ def long_term_sustained_yield(
     i_f = np.where(ok, np.nan_to_num(faus_age, nan=1.0), 1.0).astype(np.int64) - 1
     faus_sy = np.where(ok, sy[rows, i_f], 0.0)
     table = pd.DataFrame(
-        {
+        {  # in the order of LTSY_COLUMNS
             "stratum": u_lab,
             "harvest_cost_per_m3": u_hc,
             "net_area_ha": u_area,

@@ -247,6 +247,22 @@ def build_prescriptions(
         if harvest_cost_per_m3 is None
         else np.broadcast_to(np.asarray(harvest_cost_per_m3, dtype=float), (n,))
     )
+    regen = regeneration_map(settings.regeneration, growth)
+    if n == 0:
+        none_k, none_h = np.zeros(0), np.zeros(0)
+        return Prescriptions(
+            stand_start=np.zeros(1, dtype=np.int64),
+            harvest_start=np.zeros(1, dtype=np.int64),
+            harvest_period=np.zeros(0, dtype=np.int16),
+            harvest_volume_m3_ha=none_h,
+            harvest_npv_per_ha=none_h.copy(),
+            npv_per_ha=none_k,
+            ending_value_per_ha=none_k.copy(),
+            harvest_mask=np.zeros(0, dtype=np.uint64),
+            old_mask=np.zeros(0, dtype=np.uint64),
+            ending_volume_m3_ha=none_k.copy(),
+            ending_age_yr=none_k.copy(),
+        )
     gap = harvest_gap_periods(rules.min_age_yr, L, delay)
     most = 1 + (P - 1) // gap
     m = most if rules.max_harvests is None else min(int(rules.max_harvests), most)
@@ -313,7 +329,6 @@ def build_prescriptions(
     stand = np.repeat(np.arange(n, dtype=np.int32), per_stand)
 
     # ---- per-stand tables: crop strata, volumes and net values ----------------------
-    regen = regeneration_map(settings.regeneration, growth)
     crops = [lab0]  # crops[k]: stratum of the crop standing after k harvests
     for _ in range(m + 1):
         crops.append(regenerated_strata(crops[-1], regen, growth))
@@ -321,15 +336,14 @@ def build_prescriptions(
     disc = discount_factor(t, econ.discount_rate)
     vol_tab = np.zeros((n, m, P))  # crop 0 by harvest period, crop k >= 1 by gap
     net_tab = np.zeros((n, m, P))
-    if n:
-        age1 = a0[:, None] + t[None, :]
-        vol_tab[:, 0] = growth.volume(lab0, age1)
-        net_tab[:, 0] = net_value_per_ha(lab0, age1, growth, econ, hc)
-        regrown = np.maximum(np.arange(P) * L - delay, 0.0)  # crop age at a gap of d periods
-        for k in range(1, m):
-            ages_k = np.broadcast_to(regrown, (n, P))
-            vol_tab[:, k] = growth.volume(crops[k], ages_k)
-            net_tab[:, k] = net_value_per_ha(crops[k], ages_k, growth, econ, hc)
+    age1 = a0[:, None] + t[None, :]
+    vol_tab[:, 0] = growth.volume(lab0, age1)
+    net_tab[:, 0] = net_value_per_ha(lab0, age1, growth, econ, hc)
+    regrown = np.maximum(np.arange(P) * L - delay, 0.0)  # crop age at a gap of d periods
+    for k in range(1, m):
+        ages_k = np.broadcast_to(regrown, (n, P))
+        vol_tab[:, k] = growth.volume(crops[k], ages_k)
+        net_tab[:, k] = net_value_per_ha(crops[k], ages_k, growth, econ, hc)
 
     # ---- harvests: gather from the tables ----------------------------------------
     # Cell of each sequence entry in a stand's (m, P) table: crop 0 by the harvest period,

@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 from scipy.optimize import brentq
 
 from spatialplan.economics import (
+    LTSY_COLUMNS,
     discount_factor,
     ending_value_per_ha,
     faustmann_rotation,
@@ -485,6 +486,7 @@ def test_ltsy_one_stratum_equals_area_times_culmination_mai():
     # two strata add up; a regeneration delay d spreads V(T) over T + d years
     two = long_term_sustained_yield(["S3", "S1"], [10.0, 5.0], g, s)
     assert list(two.table["stratum"]) == ["S1", "S3"]
+    assert list(two.table.columns) == LTSY_COLUMNS
     assert two.mai_max_m3_yr == pytest.approx(two.table["ltsy_mai_max_m3_yr"].sum())
     s_d = dataclasses.replace(s, regeneration=Regeneration(delay_yr=3.0))
     ly_d = long_term_sustained_yield(["S3"], [10.0], g, s_d)
