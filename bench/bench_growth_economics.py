@@ -26,23 +26,16 @@ def main() -> None:
     lab = np.array(strata, dtype=object)[rng.integers(0, len(strata), n)]
     age = rng.uniform(1, 150, n)
     sched = (PriceClass("pulp", 0, 20), PriceClass("saw", 25, 60), PriceClass("big", 40, 90))
-    for land in (False, True):
-        s = Settings(
-            horizon=Horizon(periods=periods, period_length_yr=5),
-            economics=Economics(
-                price_schedule=sched,
-                harvest_cost_per_m3=9,
-                regeneration_cost_per_ha=1200,
-                include_land_value=land,
-            ),
-        )
-        t0 = time.perf_counter()
-        hv = harvest_values(lab, age, g, s, harvest_cost_per_m3=rng.choice([9.0, 15.0], n))
-        dt = time.perf_counter() - t0
-        print(
-            f"harvest_values n={n} P={periods} land_value={land}: {dt:.2f} s "
-            f"(npv shape {hv.npv_per_ha.shape})"
-        )
+    s = Settings(
+        horizon=Horizon(periods=periods, period_length_yr=5),
+        economics=Economics(
+            price_schedule=sched, harvest_cost_per_m3=9, regeneration_cost_per_ha=1200
+        ),
+    )
+    t0 = time.perf_counter()
+    hv = harvest_values(lab, age, g, s, harvest_cost_per_m3=rng.choice([9.0, 15.0], n))
+    dt = time.perf_counter() - t0
+    print(f"harvest_values n={n} P={periods}: {dt:.2f} s (npv shape {hv.npv_per_ha.shape})")
     t0 = time.perf_counter()
     rotation_table(g, strata, s)
     print(f"rotation_table 20 strata, ages 1..300: {time.perf_counter() - t0:.2f} s")

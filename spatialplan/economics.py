@@ -10,6 +10,8 @@ Conventions (see ``docs/methods.md`` for formulas and sources):
   ``S(t) = (price(d(t)) - harvest_cost) V(t)``; regeneration cost ``C`` per ha is paid at
   harvest (the start of the next rotation); an annual cost ``a`` per ha is paid at the end
   of every year.
+* After a clear-cut the new crop is age 0 ``d`` years later (``regeneration.delay_yr``), so a
+  rotation whose crop is cut at age ``T`` lasts ``T + d`` years.
 """
 
 from __future__ import annotations
@@ -28,13 +30,18 @@ from spatialplan.settings import Economics, Settings
 __all__ = [
     "HarvestValues",
     "RotationCurves",
+    "SustainedYield",
     "discount_factor",
+    "ending_value_per_ha",
     "faustmann_rotation",
     "fisher_rotation",
     "harvest_cost_per_stand",
     "harvest_values",
+    "land_expectation_values",
     "lev",
+    "long_term_sustained_yield",
     "mid_period_times",
+    "net_value_per_ha",
     "npv",
     "rotation_curves",
     "rotation_table",
@@ -477,11 +484,8 @@ class HarvestValues:
         (n, P) volume x price, undiscounted.
     net_value_per_ha
         (n, P) gross - harvest cost x volume - regeneration cost.
-    land_value_per_ha
-        (n,) undiscounted value of the freshly regenerated land added at harvest when
-        ``economics.include_land_value`` (``LEV0 + C``), else zeros.
     npv_per_ha
-        (n, P) ``(net + land) (1 + r)**-t`` at mid-period ``t``.
+        (n, P) ``net (1 + r)**-t`` at mid-period ``t``.
     times_yr, discount
         (P,) mid-period times and discount factors.
     annual_cost_pv_per_ha
@@ -489,7 +493,9 @@ class HarvestValues:
         for every choice, so not in ``npv_per_ha``.
     ending_age_yr, ending_volume_m3_ha, ending_value_per_ha
         (n, P + 1) at the end of the horizon; column 0 = not harvested, column ``p`` =
-        harvested in period ``p``. Value = (price - harvest cost) x volume, undiscounted.
+        harvested in period ``p`` (same stratum, no regeneration delay: the single-harvest
+        view). Value = (price - harvest cost) x volume, undiscounted (the "standing" ending
+        value; :mod:`spatialplan.prescriptions` computes the one the settings ask for).
     ending_discount
         ``(1 + r)**-(P L)``.
     """
@@ -501,7 +507,6 @@ class HarvestValues:
     harvest_cost_per_m3: np.ndarray
     gross_value_per_ha: np.ndarray
     net_value_per_ha: np.ndarray
-    land_value_per_ha: np.ndarray
     npv_per_ha: np.ndarray
     times_yr: np.ndarray
     discount: np.ndarray
@@ -512,27 +517,259 @@ class HarvestValues:
     ending_discount: float
 
 
-def _land_values(
-    strata: np.ndarray, hc: np.ndarray, growth: GrowthModel, econ: Economics, max_age: int
+def _timber(
+    strata: np.ndarray, ages: np.ndarray, growth: GrowthModel, econ: Economics, hc: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Volume, diameter, price, gross value and net stumpage ``(price - h) V`` per ha.
+
+    ``strata`` and ``hc`` are (n,) and broadcast over the trailing axes of ``ages``. One
+    code path for :func:`harvest_values` and :func:`net_value_per_ha`, so both give the
+    same numbers to the last bit.
+    """
+    vol = growth.volume(strata, ages)
+    dia = growth.diameter(strata, ages)
+    price = stumpage_price(dia, econ)
+    gross = vol * price
+    net = gross.copy()
+    if np.any(hc != 0):
+        net = net - hc.reshape(hc.shape + (1,) * (vol.ndim - hc.ndim)) * vol
+    return vol, dia, price, gross, net
+
+
+def net_value_per_ha(
+    strata: object,
+    ages_yr: object,
+    growth: GrowthModel,
+    econ: Economics,
+    harvest_cost_per_m3: object | None = None,
+    *,
+    regeneration_cost: bool = True,
 ) -> np.ndarray:
-    """``max_T LEV(T) + C`` without annual costs, per stand (grid per stratum and cost)."""
+    """Net value per ha of clear-cutting at arbitrary (stratum, age) pairs, undiscounted.
+
+    ``(price(d(a)) - h) V(a) - C``: the price by mean diameter, the harvest cost per m3 and
+    the regeneration cost ``C`` paid at the harvest, exactly as in :func:`harvest_values`.
+
+    Parameters
+    ----------
+    strata
+        (n,) stratum labels.
+    ages_yr
+        (n,) or (n, m) ages; negative ages (not yet regenerated) count as 0.
+    growth
+        Growth model.
+    econ
+        ``[economics]`` settings.
+    harvest_cost_per_m3
+        (n,) harvest cost per m3 of each row (e.g. from :func:`harvest_cost_per_stand`);
+        default ``economics.harvest_cost_per_m3``.
+    regeneration_cost
+        Subtract ``C``; ``False`` gives the net stumpage value ``S(a)`` of the trees alone.
+
+    Returns
+    -------
+    numpy.ndarray
+        Same shape as ``ages_yr``.
+    """
+    lab = np.asarray(strata, dtype=object)
+    ages = np.maximum(np.asarray(ages_yr, dtype=float), 0.0)
+    hc = (
+        np.full(lab.shape, float(econ.harvest_cost_per_m3))
+        if harvest_cost_per_m3 is None
+        else np.broadcast_to(np.asarray(harvest_cost_per_m3, dtype=float), lab.shape)
+    )
+    if ages.size == 0:
+        return np.zeros(ages.shape)
+    net = _timber(lab, ages, growth, econ, hc)[4]
+    if regeneration_cost and econ.regeneration_cost_per_ha != 0:
+        net = net - econ.regeneration_cost_per_ha
+    return net
+
+
+def _unique_rows(*cols: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
+    """Unique rows of aligned 1-D columns and the inverse (rows in order of first sight).
+
+    Each column is factorised and the codes are combined pairwise (mixed radix, then
+    factorised again, so the key never overflows): much faster than ``np.unique(axis=0)``.
+    """
+    key = np.zeros(len(cols[0]), dtype=np.int64)
+    for c in cols:
+        codes, uniq = pd.factorize(c, use_na_sentinel=False)
+        key = pd.factorize(key * len(uniq) + codes, use_na_sentinel=False)[0]
+    first = np.unique(key, return_index=True)[1]  # key codes 0, 1, ... in order of sight
+    return [c[first] for c in cols], key.astype(np.int64)
+
+
+def land_expectation_values(
+    strata: object,
+    growth: GrowthModel,
+    econ: Economics,
+    harvest_cost_per_m3: object | None = None,
+    delay_yr: float = 0.0,
+    max_age: int = DEFAULT_MAX_AGE,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Faustmann LEV of bare land and its rotation age, per row (stratum and harvest cost).
+
+    The maximum over crop ages ``T = 1 .. max_age`` of :func:`lev` with rotation length
+    ``T + delay_yr`` (the land lies bare ``delay_yr`` years after each clear-cut), the
+    regeneration cost ``C`` at the start of every rotation and no annual cost (it is paid
+    whatever the plan). The grid is evaluated once per distinct (stratum, cost).
+
+    Parameters
+    ----------
+    strata
+        (n,) stratum labels.
+    growth, econ
+        Growth model and ``[economics]`` settings (``discount_rate > 0``).
+    harvest_cost_per_m3
+        (n,) harvest cost per row; default ``economics.harvest_cost_per_m3``.
+    delay_yr
+        Regeneration delay ``d``.
+    max_age
+        Last crop age of the grid.
+
+    Returns
+    -------
+    lev_per_ha
+        (n,) ``max_T LEV`` (bare land, before paying ``C``).
+    rotation_age_yr
+        (n,) crop age ``T`` at the maximum (first on ties), NaN where the net value is never
+        positive.
+
+    Raises
+    ------
+    SettingsError
+        ``economics.discount_rate`` is 0 (the LEV is unbounded).
+    """
     r = econ.discount_rate
     if not r > 0:
-        msg = "economics.include_land_value needs economics.discount_rate > 0"
+        msg = (
+            f"economics.discount_rate = {r!r}: the Faustmann land expectation value needs a "
+            "rate > 0"
+        )
         raise SettingsError(msg)
-    C = econ.regeneration_cost_per_ha
-    ages = np.arange(1, max_age + 1, dtype=float)
-    out = np.zeros(len(strata))
-    for s in pd.unique(strata):
-        idx = np.flatnonzero(strata == s)
-        lab = np.full(ages.shape, s, dtype=object)
-        vol = growth.volume(lab, ages)
-        price = stumpage_price(growth.diameter(lab, ages), econ)
-        costs, inv = np.unique(hc[idx], return_inverse=True)
-        sv = (price[None, :] - costs[:, None]) * vol[None, :]
-        best = lev(sv, ages[None, :], r, C).max(axis=1)
-        out[idx] = best[inv] + C
-    return out
+    lab = np.asarray(strata, dtype=object).reshape(-1)
+    hc = (
+        np.full(lab.shape, float(econ.harvest_cost_per_m3))
+        if harvest_cost_per_m3 is None
+        else np.broadcast_to(np.asarray(harvest_cost_per_m3, dtype=float), lab.shape)
+    )
+    (u_lab, u_hc), inv = _unique_rows(lab, np.asarray(hc, dtype=float))
+    ages = np.arange(1, int(max_age) + 1, dtype=float)
+    sv = net_value_per_ha(
+        u_lab,
+        np.broadcast_to(ages, (len(u_lab), len(ages))),
+        growth,
+        econ,
+        u_hc,
+        regeneration_cost=False,
+    )
+    u_lev, u_age = np.empty(len(u_lab)), np.empty(len(u_lab))
+    for k in range(len(u_lab)):  # a few (stratum, cost) pairs: the tested 1-D rule
+        length, u_lev[k] = faustmann_rotation(
+            sv[k], ages + float(delay_yr), r, econ.regeneration_cost_per_ha
+        )
+        # back to the whole-year grid (NaN: the net value is never positive)
+        u_age[k] = round(length - float(delay_yr)) if math.isfinite(length) else math.nan
+    return u_lev[inv], u_age[inv]
+
+
+#: Rows of the (rows x future ages) grid evaluated at once by :func:`ending_value_per_ha`.
+_CHUNK_ROWS = 512
+
+
+def ending_value_per_ha(
+    strata: object,
+    age_end_yr: object,
+    growth: GrowthModel,
+    settings: Settings,
+    harvest_cost_per_m3: object | None = None,
+    next_strata: object | None = None,
+    max_age: int = DEFAULT_MAX_AGE,
+) -> np.ndarray:
+    """Value per ha of the forest left at the end of the horizon, at the end (undiscounted).
+
+    By ``economics.ending_value``:
+
+    * ``"faustmann"``: the best future: clear-cut the standing crop at some age
+      ``a >= e`` (``e`` its age at the end) and own the land after it:
+      ``max_a (S(a) + LEV') (1 + r)**-(a - e)``, with ``S`` the net stumpage value
+      (regeneration cost not subtracted) and ``LEV'`` the land expectation value of the
+      stratum that regenerates after that cut (:func:`land_expectation_values`, which pays
+      the regeneration cost ``C`` at its start). Ages ``a = max(e, 0) + j``, ``j = 0 ..
+      max_age`` (whole years from the end); a negative ``e`` means the crop starts ``-e``
+      years after the end. For land cut just before the end (``e = -delay``) this is
+      ``LEV' + C``: the regeneration cost was already charged at that cut.
+    * ``"standing"``: the net stumpage value of the standing trees, ``S(max(e, 0))``.
+    * ``"none"``: 0.
+
+    Parameters
+    ----------
+    strata
+        (n,) stratum of the crop standing at the end.
+    age_end_yr
+        (n,) its age at the end.
+    growth, settings
+        Growth model; settings (``economics``, ``regeneration.delay_yr``).
+    harvest_cost_per_m3
+        (n,) harvest cost per row; default ``economics.harvest_cost_per_m3``.
+    next_strata
+        (n,) stratum regenerating after the next cut; default ``strata``.
+    max_age
+        Grid length in years.
+
+    Returns
+    -------
+    numpy.ndarray
+        (n,) value per ha at the end; discount it with ``(1 + r)**-(P L)``.
+
+    Raises
+    ------
+    SettingsError
+        ``"faustmann"`` with ``economics.discount_rate`` 0.
+    """
+    econ = settings.economics
+    lab = np.asarray(strata, dtype=object).reshape(-1)
+    age = np.asarray(age_end_yr, dtype=float).reshape(-1)
+    hc = (
+        np.full(lab.shape, float(econ.harvest_cost_per_m3))
+        if harvest_cost_per_m3 is None
+        else np.broadcast_to(np.asarray(harvest_cost_per_m3, dtype=float), lab.shape)
+    )
+    mode = econ.ending_value
+    if mode == "none":
+        return np.zeros(len(lab))
+    if mode == "standing":
+        return net_value_per_ha(lab, age, growth, econ, hc, regeneration_cost=False)
+    r = econ.discount_rate
+    if not r > 0:
+        msg = (
+            f'economics.ending_value = "faustmann" needs economics.discount_rate > 0 (got {r!r}:'
+            " the land expectation value is unbounded); set economics.ending_value = "
+            '"standing" or "none" (flag --ending-value)'
+        )
+        raise SettingsError(msg)
+    nxt = lab if next_strata is None else np.asarray(next_strata, dtype=object).reshape(-1)
+    (u_lab, u_nxt, u_hc, u_age), inv = _unique_rows(lab, nxt, np.asarray(hc, float), age)
+    delay = settings.regeneration.delay_yr
+    land = land_expectation_values(u_nxt, growth, econ, u_hc, delay, max_age)[0]
+    j = np.arange(int(max_age) + 1, dtype=float)
+    out = np.empty(len(u_lab))
+    for lo in range(0, len(u_lab), _CHUNK_ROWS):
+        sl = slice(lo, lo + _CHUNK_ROWS)
+        start = np.maximum(u_age[sl], 0.0)
+        wait = start - u_age[sl]  # years from the end to age max(e, 0)
+        sv = net_value_per_ha(
+            u_lab[sl],
+            start[:, None] + j[None, :],
+            growth,
+            econ,
+            u_hc[sl],
+            regeneration_cost=False,
+        )
+        disc = discount_factor(wait[:, None] + j[None, :], r)
+        out[sl] = ((sv + land[sl, None]) * disc).max(axis=1)
+    return out[inv]
 
 
 def harvest_values(
@@ -542,7 +779,6 @@ def harvest_values(
     settings: Settings,
     harvest_cost_per_m3: np.ndarray | None = None,
     cost_class: np.ndarray | None = None,
-    max_age: int = DEFAULT_MAX_AGE,
 ) -> HarvestValues:
     """Volumes and values of harvesting each stand in each period (vectorised).
 
@@ -560,8 +796,6 @@ def harvest_values(
         Optional (n,) per-stand harvest cost (e.g. from terrain); NaN entries fall back.
     cost_class
         Optional (n,) cost class per stand, looked up in ``economics.harvest_cost_by_class``.
-    max_age
-        Grid end for the land value (Faustmann) search.
 
     Returns
     -------
@@ -575,23 +809,12 @@ def harvest_values(
     n = len(strata)
     t = mid_period_times(P, L)
     age = a0[:, None] + t[None, :]
-    vol = growth.volume(strata, age)
-    dia = growth.diameter(strata, age)
-    price = stumpage_price(dia, econ)
     hc = harvest_cost_per_stand(n, econ, harvest_cost_per_m3, cost_class)
-    gross = vol * price
-    net = gross.copy()
-    if np.any(hc != 0):
-        net = net - hc[:, None] * vol
+    vol, dia, price, gross, net = _timber(strata, age, growth, econ, hc)
     if econ.regeneration_cost_per_ha != 0:
         net = net - econ.regeneration_cost_per_ha
     disc = discount_factor(t, r)
-    if econ.include_land_value:
-        land = _land_values(strata, hc, growth, econ, max_age)
-        npv_ = (net + land[:, None]) * disc[None, :]
-    else:
-        land = np.zeros(n)
-        npv_ = net * disc[None, :]
+    npv_ = net * disc[None, :]
     years = np.arange(1, math.floor(P * L) + 1, dtype=float)
     annual_pv = float(econ.annual_cost_per_ha * discount_factor(years, r).sum())
     end_age = np.empty((n, P + 1))
@@ -608,7 +831,6 @@ def harvest_values(
         harvest_cost_per_m3=hc,
         gross_value_per_ha=gross,
         net_value_per_ha=net,
-        land_value_per_ha=land,
         npv_per_ha=npv_,
         times_yr=t,
         discount=disc,
@@ -617,4 +839,121 @@ def harvest_values(
         ending_volume_m3_ha=end_vol,
         ending_value_per_ha=end_val,
         ending_discount=float(discount_factor(P * L, r)),
+    )
+
+
+# ---------------------------------------------------------------------------------------
+# long-term sustained yield
+# ---------------------------------------------------------------------------------------
+LTSY_COLUMNS = [
+    "stratum",
+    "harvest_cost_per_m3",
+    "net_area_ha",
+    "mai_max_age",
+    "mai_max_m3_ha_yr",
+    "faustmann_age",
+    "faustmann_mai_m3_ha_yr",
+    "ltsy_mai_max_m3_yr",
+    "ltsy_faustmann_m3_yr",
+]
+
+
+@dataclass(frozen=True)
+class SustainedYield:
+    """Long-term sustained yield (LTSY) of a forest, m3 per year.
+
+    Attributes
+    ----------
+    mai_max_m3_yr
+        Sum over strata of net area x the highest mean annual increment (its culmination):
+        the most volume the land can yield every year once every stand is regulated.
+    faustmann_m3_yr
+        The same at the Faustmann rotation of each stratum (the economic rotation).
+    table
+        One row per (stratum, harvest cost): ``stratum``, ``harvest_cost_per_m3``,
+        ``net_area_ha``, ``mai_max_age``, ``mai_max_m3_ha_yr``, ``faustmann_age``,
+        ``faustmann_mai_m3_ha_yr``, ``ltsy_mai_max_m3_yr``, ``ltsy_faustmann_m3_yr``.
+    """
+
+    mai_max_m3_yr: float
+    faustmann_m3_yr: float
+    table: pd.DataFrame
+
+
+def long_term_sustained_yield(
+    strata: object,
+    net_area_ha: object,
+    growth: GrowthModel,
+    settings: Settings,
+    harvest_cost_per_m3: object | None = None,
+    max_age: int = DEFAULT_MAX_AGE,
+) -> SustainedYield:
+    """LTSY as the trade computes it: sum of net area x MAI, at culmination and at Faustmann.
+
+    A regulated forest cut at crop age ``T`` yields ``V(T) / (T + d)`` m3 per ha and year
+    (``d`` = ``regeneration.delay_yr``; with ``d = 0`` this is the MAI ``V(T)/T``). The
+    first total takes each stratum's highest value of it (MAI culmination), the second its
+    value at the Faustmann rotation (:func:`land_expectation_values`; NaN rotation, hence
+    0 m3, where the net value is never positive). Ages on the 1-year grid ``1 .. max_age``,
+    first maximum on ties, as in :func:`rotation_table`.
+
+    Parameters
+    ----------
+    strata
+        (n,) stratum each stand is managed as in the long run: the regenerated stratum
+        (:func:`spatialplan.prescriptions.regenerated_strata`) for a planner's LTSY.
+    net_area_ha
+        (n,) harvestable area; give reserves and inoperable stands 0.
+    growth, settings
+        Growth model and settings (``economics``, ``regeneration.delay_yr``).
+    harvest_cost_per_m3
+        (n,) harvest cost per stand; default ``economics.harvest_cost_per_m3``.
+    max_age
+        Last age of the grid.
+
+    Returns
+    -------
+    SustainedYield
+        Needs ``economics.discount_rate > 0`` for the Faustmann rotation.
+    """
+    econ = settings.economics
+    lab = np.asarray(strata, dtype=object).reshape(-1)
+    area = np.broadcast_to(np.asarray(net_area_ha, dtype=float), lab.shape)
+    hc = (
+        np.full(lab.shape, float(econ.harvest_cost_per_m3))
+        if harvest_cost_per_m3 is None
+        else np.broadcast_to(np.asarray(harvest_cost_per_m3, dtype=float), lab.shape)
+    )
+    d = float(settings.regeneration.delay_yr)
+    if not len(lab):
+        return SustainedYield(0.0, 0.0, pd.DataFrame(columns=LTSY_COLUMNS))
+    (u_lab, u_hc), inv = _unique_rows(lab, np.asarray(hc, dtype=float))
+    u_area = np.bincount(inv, weights=area, minlength=len(u_lab))
+    ages = np.arange(1, int(max_age) + 1, dtype=float)
+    vol = growth.volume(u_lab, np.broadcast_to(ages, (len(u_lab), len(ages))))
+    sy = vol / (ages + d)[None, :]
+    i_max = _first_argmax(sy) if len(u_lab) else np.zeros(0, dtype=np.int64)
+    rows = np.arange(len(u_lab))
+    faus_age = land_expectation_values(u_lab, growth, econ, u_hc, d, max_age)[1]
+    ok = np.isfinite(faus_age)
+    i_f = np.where(ok, np.nan_to_num(faus_age, nan=1.0), 1.0).astype(np.int64) - 1
+    faus_sy = np.where(ok, sy[rows, i_f], 0.0)
+    table = pd.DataFrame(
+        {  # in the order of LTSY_COLUMNS
+            "stratum": u_lab,
+            "harvest_cost_per_m3": u_hc,
+            "net_area_ha": u_area,
+            "mai_max_age": ages[i_max],
+            "mai_max_m3_ha_yr": sy[rows, i_max],
+            "faustmann_age": faus_age,
+            "faustmann_mai_m3_ha_yr": faus_sy,
+        }
+    )
+    table["ltsy_mai_max_m3_yr"] = table["net_area_ha"] * table["mai_max_m3_ha_yr"]
+    table["ltsy_faustmann_m3_yr"] = table["net_area_ha"] * table["faustmann_mai_m3_ha_yr"]
+    table = table.sort_values(["stratum", "harvest_cost_per_m3"], ignore_index=True)
+    return SustainedYield(
+        mai_max_m3_yr=float(table["ltsy_mai_max_m3_yr"].sum()),
+        faustmann_m3_yr=float(table["ltsy_faustmann_m3_yr"].sum()),
+        table=table,
     )

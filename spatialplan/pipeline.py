@@ -22,7 +22,7 @@ import pandas as pd
 
 from spatialplan import __version__
 from spatialplan._io import sha256_file
-from spatialplan.errors import InputError, SettingsError
+from spatialplan.errors import InputError
 from spatialplan.inventory import InventoryResult, match_strata, read_stands
 from spatialplan.problem import FlowRules, PlanProblem
 from spatialplan.settings import Settings
@@ -124,9 +124,6 @@ def load_inputs(
     """
     from spatialplan import growth as gr
 
-    if settings.rules.reharvest:
-        msg = "rules.reharvest = true is not supported yet; at most one harvest per stand"
-        raise SettingsError(msg)
     inv = read_stands(stands_path, settings.fields)
     settings = dataclasses.replace(settings, fields=inv.fields)
     table = None
@@ -144,6 +141,10 @@ def load_inputs(
         inv = match_strata(
             inv, set(growth.strata), str(yields_path or "[growth]"), inv.fields.skip_unmatched
         )
+        # A regenerated stratum without a yield curve is named now, not after terrain work.
+        from spatialplan.prescriptions import regeneration_map
+
+        regeneration_map(settings.regeneration, growth)
     if strict:
         inv.raise_for_errors()
     inputs = PlanInputs(
@@ -182,12 +183,14 @@ def _flow_rules(settings: Settings, start_volume_m3: float) -> FlowRules:
             None if r.ending_volume_fraction is None else r.ending_volume_fraction * start_volume_m3
         ),
         ending_mean_age_min_yr=r.ending_mean_age_yr,
+        old_forest_age_yr=r.old_forest_age_yr,
+        old_forest_min_share=r.old_forest_min_share,
     )
 
 
 def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = None) -> PlanBundle:
     """Turn validated inputs into a :class:`PlanProblem` for the scheduler."""
-    from spatialplan import adjacency, economics, rules
+    from spatialplan import adjacency, economics, prescriptions, rules
 
     s = inputs.settings
     st = inputs.inventory.stands
@@ -237,6 +240,14 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     start_vol = float((inputs.growth.volume(strata, age0) * net_area).sum())
     npv_ha = values.npv_per_ha
     end_vol = values.ending_volume_m3_ha
+    # Model I: every stand's harvest sequences with regeneration and the ending value; the
+    # (n, P) arrays below keep describing the first harvest (diagnosis, charts).
+    rx = prescriptions.build_prescriptions(
+        strata, age0, eligible, inputs.growth, s, values.harvest_cost_per_m3, eligible_any_age
+    )
+    old_group = None
+    if s.fields.unit_field:
+        old_group = pd.factorize(st["unit"].fillna("").astype(str))[0].astype(np.int64)
     problem = PlanProblem(
         stand_ids=st["stand_id"].to_numpy(dtype=object),
         area_ha=net_area,
@@ -257,9 +268,9 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
         ending_age_yr=values.ending_age_yr,
         eligible_no_min_age=eligible_any_age,
         min_age_yr=s.rules.min_age_yr,
+        prescriptions=rx,
+        old_forest_group=old_group,
     )
-    if s.economics.include_ending_value:
-        problem = _with_ending_value(problem, values)
     problem.validate()
     n_res = int(reserve.sum())
     if n_res:
@@ -267,19 +278,6 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     if not operable.all():
         messages.append(f"{int((~operable).sum())} stand(s) inoperable on slope, never harvested")
     return PlanBundle(problem, values, adj, net_area, reserve, messages)
-
-
-def _with_ending_value(problem: PlanProblem, values: Any) -> PlanProblem:
-    """Fold the discounted value of the standing inventory at the end into the objective.
-
-    The value of leaving a stand uncut is a constant per stand that does not depend on
-    the period chosen, except through the choice itself; adding (end value if harvested
-    in p) - (end value if not harvested) to period p keeps the objective exact up to a
-    constant (reported separately).
-    """
-    ev = values.ending_value_per_ha * values.ending_discount
-    delta = ev[:, 1:] - ev[:, [0]]
-    return dataclasses.replace(problem, npv_per_ha=problem.npv_per_ha + delta)
 
 
 def schedule_frame(inputs: PlanInputs, bundle: PlanBundle, period: np.ndarray) -> gpd.GeoDataFrame:

@@ -227,10 +227,16 @@ def rule_summary(settings: Settings) -> list[str]:
     out.append(f"minimum harvest age {r.min_age_yr:g} years at mid-period")
     out.append("reserves are never harvested")
     out.append(
-        "a stand may be harvested again once regrown to the minimum age"
-        if r.reharvest
-        else "at most one harvest per stand"
+        "at most one harvest per stand"
+        if r.max_harvests == 1
+        else "a stand may be harvested again once regrown to the minimum age"
+        + ("" if r.max_harvests is None else f", at most {r.max_harvests} times")
     )
+    if r.old_forest_age_yr is not None and r.old_forest_min_share is not None:
+        out.append(
+            f"in every period at least {r.old_forest_min_share:.0%} of the forest is "
+            f"{r.old_forest_age_yr:g} years or older"
+        )
     if r.flow_tolerance is not None:
         out.append(f"even flow: volume changes by at most {r.flow_tolerance:.0%} between periods")
     if r.non_declining:

@@ -7,7 +7,8 @@ The tree mirrors the TOML sections::
     [horizon]     number and length of planning periods
     [rules]       opening size, green-up, minimum age, flow, ending inventory ...
     [adjacency]   how stands are judged to touch
-    [economics]   discount rate, prices, costs
+    [economics]   discount rate, prices, costs, value of the forest left at the end
+    [regeneration] what grows back after a clear-cut, and when
     [growth]      optional parametric curves and diameter/height by age per stratum
     [terrain]     DEM, stream layer, slope classes
     [solver]      time limit, workers, seed, gap
@@ -45,6 +46,7 @@ __all__ = [
     "Horizon",
     "OutputSettings",
     "PriceClass",
+    "Regeneration",
     "Rules",
     "Settings",
     "SlopeClass",
@@ -118,7 +120,12 @@ class Rules:
     period_area_max_ha: float | None = field(default=None, metadata=_rng(0, None))
     ending_volume_fraction: float | None = field(default=None, metadata=_rng(0, 10))
     ending_mean_age_yr: float | None = field(default=None, metadata=_rng(0, 1000))
-    reharvest: bool = False
+    # Harvests per stand over the horizon; None = as many as rules.min_age_yr allows.
+    max_harvests: int | None = field(default=None, metadata=_rng(1, None))
+    # Old-forest retention (both or neither): in every period at least this share of the
+    # forest (of each management unit when fields.unit_field is set) is this old.
+    old_forest_age_yr: float | None = field(default=None, metadata=_rng(0, 1000, lo_open=True))
+    old_forest_min_share: float | None = field(default=None, metadata=_rng(0, 1))
 
 
 @dataclass(frozen=True)
@@ -150,8 +157,25 @@ class Economics:
     harvest_cost_by_class: dict[str, float] = field(default_factory=dict)
     regeneration_cost_per_ha: float = field(default=0.0, metadata=_rng(0, None))
     annual_cost_per_ha: float = field(default=0.0, metadata=_rng(0, None))
-    include_land_value: bool = False
-    include_ending_value: bool = False
+    # Value of the forest left at the end of the horizon: one of ENDING_VALUES.
+    ending_value: str = "faustmann"
+
+
+#: Allowed values of ``economics.ending_value``.
+ENDING_VALUES = ("faustmann", "standing", "none")
+
+
+@dataclass(frozen=True)
+class Regeneration:
+    """What grows back after a clear-cut.
+
+    ``stratum_map`` maps a harvested stratum label (yield-key values joined by ``/``) to
+    the stratum that regenerates after it; strata not listed regenerate as themselves.
+    The new crop is age 0 ``delay_yr`` years after the mid-period harvest.
+    """
+
+    delay_yr: float = field(default=0.0, metadata=_rng(0, 1000))
+    stratum_map: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -249,6 +273,7 @@ class Settings:
     rules: Rules = field(default_factory=Rules)
     adjacency: AdjacencySettings = field(default_factory=AdjacencySettings)
     economics: Economics = field(default_factory=Economics)
+    regeneration: Regeneration = field(default_factory=Regeneration)
     growth: GrowthSettings = field(default_factory=GrowthSettings)
     terrain: TerrainSettings = field(default_factory=TerrainSettings)
     solver: SolverSettings = field(default_factory=SolverSettings)
@@ -330,7 +355,28 @@ def _all_keys(cls: Any = None, prefix: str = "") -> list[str]:
     return keys
 
 
+# Keys of earlier versions and what replaces them (named in the error instead of a guess).
+_RETIRED = {
+    "rules.reharvest": (
+        "stands are now harvested as often as rules.min_age_yr allows; cap it with "
+        "rules.max_harvests (1 = at most one harvest per stand, flag --max-harvests)"
+    ),
+    "economics.include_ending_value": (
+        'use economics.ending_value = "standing" for true or "none" for false; the '
+        'default is now "faustmann" (flag --ending-value)'
+    ),
+    "economics.include_land_value": (
+        "the land value after a harvest is now part of the Faustmann ending value "
+        '(economics.ending_value = "faustmann", the default), which values the land once, '
+        "after each stand's last harvest; remove the key"
+    ),
+}
+
+
 def _unknown_key(key: str, valid: list[str], where: str = "") -> typing.NoReturn:
+    if key in _RETIRED:
+        msg = f"setting '{key}'{where} was removed: {_RETIRED[key]}"
+        raise SettingsError(msg)
     short = key.split(".")[-1]
     pool = {k.split(".")[-1]: k for k in valid}
     near = difflib.get_close_matches(key, valid, n=1, cutoff=0.6) or [
@@ -477,9 +523,38 @@ def settings_from_dict(
         The validated settings.
     """
     ctx = _Ctx(text, path)
+    if text is None:
+        data = _upgrade_recorded(data)
     s = _build(Settings, data, "", ctx)
     _check_consistency(s, ctx)
     return s
+
+
+def _upgrade_recorded(data: dict[str, Any]) -> dict[str, Any]:
+    """Translate retired keys of settings recorded by an earlier version (a plan's run table).
+
+    Only for dicts that did not come from a settings file: a file with a retired key gets
+    the message of ``_RETIRED`` instead. ``include_ending_value`` false/true becomes
+    ``ending_value`` "none"/"standing", ``include_land_value = true`` (the land's value added
+    at the harvest) becomes "faustmann"; ``reharvest = false`` becomes ``max_harvests = 1``.
+    A retired key holding a value that never worked is left for the error.
+    """
+    econ, rules = data.get("economics"), data.get("rules")
+    if not isinstance(econ, dict) and not isinstance(rules, dict):
+        return data
+    data = dict(data)
+    if isinstance(econ, dict) and ({"include_ending_value", "include_land_value"} & set(econ)):
+        econ = dict(econ)
+        ending = econ.pop("include_ending_value", None)
+        land = econ.pop("include_land_value", None)
+        if "ending_value" not in econ and (ending is not None or land is not None):
+            econ["ending_value"] = "faustmann" if land is True else "standing" if ending else "none"
+        data["economics"] = econ
+    if isinstance(rules, dict) and rules.get("reharvest") is False:
+        rules = {k: v for k, v in rules.items() if k != "reharvest"}
+        rules.setdefault("max_harvests", 1)
+        data["rules"] = rules
+    return data
 
 
 def _check_consistency(s: Settings, ctx: _Ctx) -> None:
@@ -501,6 +576,31 @@ def _check_consistency(s: Settings, ctx: _Ctx) -> None:
             "contradictory rules: give either rules.green_up_years or rules.green_up_height_m"
             f", not both{ctx.where('rules.green_up_height_m')}"
         )
+    if (r.old_forest_age_yr is None) != (r.old_forest_min_share is None):
+        given, missing = (
+            ("old_forest_age_yr", "old_forest_min_share")
+            if r.old_forest_min_share is None
+            else ("old_forest_min_share", "old_forest_age_yr")
+        )
+        problems.append(
+            f"rules.{given} is set but rules.{missing} is not{ctx.where('rules.' + given)}; "
+            "the old-forest rule needs both (the age that counts as old and the least share "
+            "of the forest that old)"
+        )
+    ev = s.economics.ending_value
+    if ev not in ENDING_VALUES:
+        problems.append(
+            f"setting 'economics.ending_value' = {ev!r} is not allowed"
+            f"{ctx.where('economics.ending_value')}; choose one of "
+            + ", ".join(f'"{v}"' for v in ENDING_VALUES)
+        )
+    for src, dst in s.regeneration.stratum_map.items():
+        if not str(src).strip() or not str(dst).strip():
+            problems.append(
+                f"setting 'regeneration.stratum_map' maps {src!r} to {dst!r}: both must be "
+                "stratum labels (yield-key values joined by '/')"
+                f"{ctx.where('regeneration.stratum_map')}"
+            )
     ms = [c.max_slope_pct for c in s.terrain.slope_classes]
     if ms != sorted(ms):
         problems.append(

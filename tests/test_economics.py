@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -13,13 +14,18 @@ from hypothesis import strategies as st
 from scipy.optimize import brentq
 
 from spatialplan.economics import (
+    LTSY_COLUMNS,
     discount_factor,
+    ending_value_per_ha,
     faustmann_rotation,
     fisher_rotation,
     harvest_cost_per_stand,
     harvest_values,
+    land_expectation_values,
     lev,
+    long_term_sustained_yield,
     mid_period_times,
+    net_value_per_ha,
     npv,
     rotation_curves,
     rotation_table,
@@ -27,13 +33,19 @@ from spatialplan.economics import (
     value_mai_rotation,
 )
 from spatialplan.errors import InputError, SettingsError
-from spatialplan.growth import build_growth_model, cr_mai_culmination_age, yield_table_from_frame
+from spatialplan.growth import (
+    build_growth_model,
+    chapman_richards,
+    cr_mai_culmination_age,
+    yield_table_from_frame,
+)
 from spatialplan.settings import (
     ChapmanRichards,
     Economics,
     GrowthSettings,
     Horizon,
     PriceClass,
+    Regeneration,
     Settings,
 )
 from spatialplan.synthetic import synthetic_yield_table
@@ -316,7 +328,7 @@ def test_harvest_values_single_price_exact_npv():
     assert hv.annual_cost_pv_per_ha == 0.0
 
 
-def test_harvest_values_costs_schedule_and_land_value():
+def test_harvest_values_costs_and_schedule():
     g = _table_model()  # synthetic table has a diameter column
     st_ = _settings(
         discount_rate=0.03,
@@ -325,7 +337,6 @@ def test_harvest_values_costs_schedule_and_land_value():
         harvest_cost_by_class={"cable": 20.0},
         regeneration_cost_per_ha=1200.0,
         annual_cost_per_ha=10.0,
-        include_land_value=True,
     )
     strata = np.array(["S2", "S2", "S4"], dtype=object)
     a0 = np.array([30.0, 30.0, 60.0])
@@ -336,17 +347,148 @@ def test_harvest_values_costs_schedule_and_land_value():
     assert np.array_equal(hv.price_per_m3, price)
     net = hv.volume_m3_ha * price - hv.harvest_cost_per_m3[:, None] * hv.volume_m3_ha - 1200.0
     assert np.allclose(hv.net_value_per_ha, net, rtol=1e-13)
-    # land value: max over T of Faustmann LEV without annual cost, plus C (paid at harvest)
-    ages = np.arange(1, 301, dtype=float)
-    for i in range(3):
-        lab = np.full(300, strata[i], dtype=object)
-        S = (stumpage_price(g.diameter(lab, ages), st_.economics) - hv.harvest_cost_per_m3[i]) * (
-            g.volume(lab, ages)
-        )
-        best = max((S[j] - 1200 * 1.03**t) / (1.03**t - 1) for j, t in enumerate(ages))
-        assert hv.land_value_per_ha[i] == pytest.approx(best + 1200.0, rel=1e-12)
-    assert hv.land_value_per_ha[0] > hv.land_value_per_ha[1]  # costlier harvest, less land value
-    expect = (net + hv.land_value_per_ha[:, None]) * 1.03**-hv.times_yr
-    assert np.allclose(hv.npv_per_ha, expect, rtol=1e-12)
+    assert np.allclose(hv.npv_per_ha, net * 1.03**-hv.times_yr, rtol=1e-12)
     # annual costs over 30 years, end-of-year payments: numpy_financial.pv (reference library)
     assert hv.annual_cost_pv_per_ha == pytest.approx(-npf.pv(0.03, 30, 10.0), rel=1e-12)
+    # the net value at arbitrary (stratum, age) pairs is the same code path, to the bit
+    again = net_value_per_ha(strata, hv.harvest_age_yr, g, st_.economics, hv.harvest_cost_per_m3)
+    assert np.array_equal(again, hv.net_value_per_ha)
+    stump = net_value_per_ha(
+        strata, hv.harvest_age_yr, g, st_.economics, hv.harvest_cost_per_m3, regeneration_cost=False
+    )
+    assert np.allclose(stump - 1200.0, net, rtol=1e-13)
+
+
+# ---------------------------------------------------------------------------------------
+# land expectation value and ending value
+# ---------------------------------------------------------------------------------------
+def _lev_brute(S, r, C, d=0.0):
+    """max over T = 1 .. len(S) of the Faustmann closed form with rotation length T + d."""
+    vals = [(s - C * (1 + r) ** (t + d)) / ((1 + r) ** (t + d) - 1) for t, s in enumerate(S, 1)]
+    return max(vals), float(int(np.argmax(vals)) + 1)
+
+
+def test_land_expectation_values_per_stratum_and_cost():
+    # Faustmann (1849) closed form maximised by brute force over T = 1 .. 300, per stratum
+    # and harvest cost; the delay d lengthens every rotation to T + d. Cross-check with the
+    # explicit series: -C at 0, S(T) at T + d, repeated every T + d years, truncated.
+    g = _table_model()
+    st_ = _settings(
+        discount_rate=0.03,
+        price_schedule=SCHEDULE,
+        price_per_m3=30.0,
+        regeneration_cost_per_ha=900.0,
+    )
+    strata = np.array(["S2", "S2", "S4", "S2"], dtype=object)
+    hc = np.array([9.0, 20.0, 9.0, 9.0])
+    ages = np.arange(1, 301, dtype=float)
+    for d in (0.0, 4.0):
+        got, rot = land_expectation_values(strata, g, st_.economics, hc, delay_yr=d)
+        for i in range(4):
+            lab = np.full(300, strata[i], dtype=object)
+            S = (stumpage_price(g.diameter(lab, ages), st_.economics) - hc[i]) * g.volume(lab, ages)
+            best, t_best = _lev_brute(S, 0.03, 900.0, d)
+            assert got[i] == pytest.approx(best, rel=1e-12)
+            assert rot[i] == t_best
+            T = t_best + d
+            series = sum(
+                (-900.0 + S[int(t_best) - 1] * 1.03**-T) * 1.03 ** (-j * T) for j in range(3000)
+            )
+            assert got[i] == pytest.approx(series, rel=1e-9)
+        assert got[0] > got[1]  # costlier harvest, less land value
+        assert got[0] == got[3]
+    # without delay the maximum LEV is the rotation table's (without annual costs)
+    rc = rotation_curves(g, "S2", st_, harvest_cost_per_m3=9.0)
+    got, rot = land_expectation_values(["S2"], g, st_.economics, [9.0])
+    assert (got[0], rot[0]) == (rc.lev_per_ha, rc.faustmann_age)
+
+
+@pytest.mark.parametrize(("C", "d"), [(0.0, 0.0), (1500.0, 0.0), (1500.0, 6.0)])
+def test_ending_value_of_bare_land_is_lev(C, d):
+    # Faustmann (1849): bare land just cut (its crop starts d years from now) is worth
+    # max_a (S(a) + LEV)(1 + r)^-(a + d) = LEV + C, the land expectation value of the
+    # closed form plus the regeneration cost already paid at that cut (our convention: C
+    # at every harvest); with C = 0 exactly the LEV. A crop of age e below the Faustmann
+    # rotation T* is worth (LEV + C)(1 + r)^(e + d) (the same series, e years later).
+    r = 0.03
+    g = _cr_model()
+    s = Settings(
+        economics=Economics(
+            discount_rate=r, price_per_m3=40.0, regeneration_cost_per_ha=C, ending_value="faustmann"
+        ),
+        regeneration=Regeneration(delay_yr=d),
+    )
+    ages = np.arange(1, 301, dtype=float)
+    S = 40.0 * CR.A * (1 - np.exp(-CR.k * ages)) ** CR.c  # Chapman-Richards by hand
+    lev_star, t_star = _lev_brute(S, r, C, d)
+    ev = ending_value_per_ha(["X"] * 4, [-d, 0.0, 10.0, t_star], g, s)
+    assert ev[0] == pytest.approx(lev_star + C, rel=1e-12)
+    # numpy_financial.npv of the explicit annual cash flows from that cut on: S(T*) - C at
+    # every cut, k (T* + d) years later, k = 1, 2, ... (truncated after 4,000 years)
+    flows = np.zeros(4000)
+    flows[int(t_star + d) :: int(t_star + d)] = S[int(t_star) - 1] - C
+    assert ev[0] == pytest.approx(npf.npv(r, flows), rel=1e-9)
+    for e, v in zip([0.0, 10.0, t_star], ev[1:], strict=True):
+        assert v == pytest.approx((lev_star + C) * (1 + r) ** (e + d), rel=1e-12)
+    # an over-mature crop is cut at once: S(e) + LEV
+    old = ending_value_per_ha(["X"], [250.0], g, s)[0]
+    assert old == pytest.approx(40.0 * float(chapman_richards(250.0, CR.A, CR.k, CR.c)) + lev_star)
+
+
+def test_ending_value_brute_force_and_other_modes():
+    # Definition, by brute force over whole years j from the end with a plain loop:
+    # max_j (S(e + j) + LEV(next stratum)) (1 + r)^-j, LEV of the stratum regrowing after.
+    g = _table_model()
+    econ = {"discount_rate": 0.04, "price_schedule": SCHEDULE, "price_per_m3": 30.0}
+    s = _settings(**econ, harvest_cost_per_m3=7.0, ending_value="faustmann")
+    strata = np.array(["S1", "S3", "S3"], dtype=object)
+    nxt = np.array(["S5", "S5", "S3"], dtype=object)
+    age_end = np.array([12.5, 47.5, 140.0])
+    got = ending_value_per_ha(strata, age_end, g, s, next_strata=nxt)
+    for i in range(3):
+        land = land_expectation_values([nxt[i]], g, s.economics)[0][0]
+        a = age_end[i] + np.arange(301)
+        lab = np.full(len(a), strata[i], dtype=object)
+        S = (stumpage_price(g.diameter(lab, a), s.economics) - 7.0) * g.volume(lab, a)
+        want = max((S[j] + land) * 1.04**-j for j in range(301))
+        assert got[i] == pytest.approx(want, rel=1e-12)
+    standing = ending_value_per_ha(strata, age_end, g, _settings(**econ, ending_value="standing"))
+    price = stumpage_price(g.diameter(strata, age_end), s.economics)
+    assert np.allclose(standing, price * g.volume(strata, age_end), rtol=1e-13)
+    none = ending_value_per_ha(strata, age_end, g, _settings(**econ, ending_value="none"))
+    assert none.tolist() == [0.0, 0.0, 0.0]
+    with pytest.raises(SettingsError, match=r"ending_value = \"faustmann\" needs"):
+        ending_value_per_ha(strata, age_end, g, _settings(price_per_m3=30.0, discount_rate=0.0))
+
+
+# ---------------------------------------------------------------------------------------
+# long-term sustained yield
+# ---------------------------------------------------------------------------------------
+def test_ltsy_one_stratum_equals_area_times_culmination_mai():
+    # LTSY as the trade computes it: net area x MAI at culmination (common practice, no
+    # source). Independent: MAI read off the yield-table rows with numpy (linear
+    # interpolation on whole years, (0, 0) below the first row, flat after the last).
+    df = synthetic_yield_table()
+    g = _table_model()
+    rows = df[df["stratum"] == "S3"]
+    grid = np.arange(1, 301, dtype=float)
+    vol = np.interp(grid, np.r_[0.0, rows["age"].to_numpy(float)], np.r_[0.0, rows["volume"]])
+    mai_max = (vol / grid).max()
+    s = _settings(discount_rate=0.03, price_per_m3=40.0)
+    ly = long_term_sustained_yield(["S3"] * 3, [10.0, 25.5, 0.0], g, s)
+    assert ly.mai_max_m3_yr == pytest.approx(35.5 * mai_max, rel=1e-12)
+    row = ly.table.iloc[0]
+    assert row["mai_max_age"] == grid[int(np.argmax(vol / grid))]
+    # at the Faustmann rotation (brute-force closed form, C = 0): V(T*)/T* per ha
+    _, t_star = _lev_brute(40.0 * vol, 0.03, 0.0)
+    assert row["faustmann_age"] == t_star
+    assert ly.faustmann_m3_yr == pytest.approx(35.5 * vol[int(t_star) - 1] / t_star, rel=1e-12)
+    assert ly.faustmann_m3_yr < ly.mai_max_m3_yr  # discounting shortens the rotation
+    # two strata add up; a regeneration delay d spreads V(T) over T + d years
+    two = long_term_sustained_yield(["S3", "S1"], [10.0, 5.0], g, s)
+    assert list(two.table["stratum"]) == ["S1", "S3"]
+    assert list(two.table.columns) == LTSY_COLUMNS
+    assert two.mai_max_m3_yr == pytest.approx(two.table["ltsy_mai_max_m3_yr"].sum())
+    s_d = dataclasses.replace(s, regeneration=Regeneration(delay_yr=3.0))
+    ly_d = long_term_sustained_yield(["S3"], [10.0], g, s_d)
+    assert ly_d.mai_max_m3_yr == pytest.approx(10.0 * (vol / (grid + 3.0)).max(), rel=1e-12)

@@ -164,3 +164,106 @@ def test_check_refused_names_key_and_reason() -> None:
         SettingsError, match=r"s\.toml \[base\]: setting 'output\.write_back'.*modify the input"
     ):
         check_refused({"output.write_back": True}, refused, "s.toml [base]")
+
+
+# prescriptions, regeneration, ending value, old forest
+# ---------------------------------------------------------------------------------------
+def test_prescription_settings_defaults_and_overrides(tmp_path: Path) -> None:
+    s = Settings()
+    assert s.rules.max_harvests is None  # as many as the minimum age allows
+    assert s.economics.ending_value == "faustmann"
+    assert s.regeneration.delay_yr == 0.0 and s.regeneration.stratum_map == {}
+    p = _toml(
+        tmp_path,
+        "[rules]\nmax_harvests = 2\nold_forest_age_yr = 80\nold_forest_min_share = 0.15\n"
+        '[economics]\nending_value = "standing"\n'
+        '[regeneration]\ndelay_yr = 2\n[regeneration.stratum_map]\n"DF/2.0" = "DFp/2"\n',
+    )
+    s = load_settings(p)
+    assert s.rules.max_harvests == 2
+    assert (s.rules.old_forest_age_yr, s.rules.old_forest_min_share) == (80.0, 0.15)
+    assert s.economics.ending_value == "standing"
+    assert s.regeneration.delay_yr == 2.0
+    assert s.regeneration.stratum_map == {"DF/2.0": "DFp/2"}
+    assert settings_from_dict(s.to_dict()) == s
+    s2 = s.with_overrides({"rules.max_harvests": 1, "regeneration.stratum_map.PP/1": "PP/2"})
+    assert s2.rules.max_harvests == 1 and s2.regeneration.stratum_map["PP/1"] == "PP/2"
+
+
+@pytest.mark.parametrize(
+    ("text", "pattern"),
+    [
+        ("[rules]\nmax_harvests = 0\n", r"'rules.max_harvests' = 0 is out of range.*line 2"),
+        ("[rules]\nmax_harvests = 1.5\n", r"'rules.max_harvests' must be a whole number"),
+        (
+            '[economics]\nending_value = "Faustmann"\n',
+            r"'economics.ending_value' = 'Faustmann' is not allowed.*line 2.*\"faustmann\", "
+            r"\"standing\", \"none\"",
+        ),
+        (
+            "[rules]\nold_forest_min_share = 0.2\n",
+            r"rules.old_forest_min_share is set but rules.old_forest_age_yr is not.*line 2",
+        ),
+        ("[rules]\nold_forest_min_share = 1.2\n", r"'rules.old_forest_min_share' = 1.2.*\[0, 1\]"),
+        ("[rules]\nold_forest_age_yr = 0\n", r"'rules.old_forest_age_yr' = 0.*\(0, 1000\]"),
+        ("[regeneration]\ndelay_yr = -1\n", r"'regeneration.delay_yr' = -1.*\[0, 1000\]"),
+        (
+            "[regeneration.stratum_map]\nS1 = 2\n",
+            r"'regeneration.stratum_map.S1' must be a text string",
+        ),
+        (
+            '[regeneration.stratum_map]\nS1 = ""\n',
+            r"'regeneration.stratum_map' maps 'S1' to ''",
+        ),
+    ],
+)
+def test_prescription_settings_validation(tmp_path: Path, text: str, pattern: str) -> None:
+    with pytest.raises(SettingsError, match=pattern):
+        load_settings(_toml(tmp_path, text))
+
+
+@pytest.mark.parametrize(
+    ("text", "pattern"),
+    [
+        (
+            "[economics]\ninclude_ending_value = false\n",
+            r"'economics.include_ending_value' \(.*line 2\) was removed: use "
+            r"economics.ending_value = \"standing\" for true or \"none\" for false",
+        ),
+        (
+            "[economics]\ninclude_land_value = true\n",
+            r"'economics.include_land_value' .*was removed: .*Faustmann ending value",
+        ),
+        ("[rules]\nreharvest = false\n", r"'rules.reharvest' .*was removed: .*rules.max_harvests"),
+    ],
+)
+def test_retired_keys_name_their_replacement(tmp_path: Path, text: str, pattern: str) -> None:
+    with pytest.raises(SettingsError, match=pattern):
+        load_settings(_toml(tmp_path, text))
+    key = pattern.split("'")[1]
+    with pytest.raises(SettingsError, match="was removed"):
+        Settings().with_overrides({key: True})
+
+
+def test_settings_recorded_by_an_earlier_version_still_load() -> None:
+    # A plan's run table records every key, retired ones included: verify and map must
+    # still read it, with the meaning it had.
+    old = Settings().to_dict()
+    del old["economics"]["ending_value"], old["rules"]["max_harvests"]
+    old["economics"].update(include_ending_value=False, include_land_value=False)
+    old["rules"]["reharvest"] = False
+    s = settings_from_dict(old)
+    assert s.economics.ending_value == "none" and s.rules.max_harvests == 1
+    old["economics"]["include_ending_value"] = True
+    assert settings_from_dict(old).economics.ending_value == "standing"
+    old["economics"]["include_land_value"] = True
+    assert settings_from_dict(old).economics.ending_value == "faustmann"
+
+
+def test_new_flags_map_to_settings() -> None:
+    from spatialplan.cli._common import settings_from_flags
+
+    s = settings_from_flags(None, {"max_harvests": 1, "ending_value": "none"})
+    assert s.rules.max_harvests == 1 and s.economics.ending_value == "none"
+    with pytest.raises(SettingsError, match=r"'rules.max_harvests' = 0.*given as --max-harvests"):
+        settings_from_flags(None, {"max_harvests": 0})

@@ -13,7 +13,7 @@ from typing import Any
 import click
 
 from spatialplan.errors import InfeasibleError, SettingsError, SpatialPlanError
-from spatialplan.settings import Settings, load_settings
+from spatialplan.settings import ENDING_VALUES, Settings, load_settings
 
 __all__ = [
     "SETTINGS_FLAGS",
@@ -66,6 +66,11 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     "max-opening": ("rules.max_opening_ha", float, "Maximum opening (clearcut) size in ha."),
     "green-up": ("rules.green_up_periods", int, "Green-up delay in periods."),
     "min-age": ("rules.min_age_yr", float, "Minimum age at harvest (years, at mid-period)."),
+    "max-harvests": (
+        "rules.max_harvests",
+        int,
+        "Most clear-cuts per stand over the horizon (1 = one harvest, no re-entry).",
+    ),
     "flow-tolerance": (
         "rules.flow_tolerance",
         float,
@@ -73,6 +78,12 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     ),
     "discount-rate": ("economics.discount_rate", float, "Annual discount rate (fraction)."),
     "price": ("economics.price_per_m3", float, "Single stumpage price per m3."),
+    "ending-value": (
+        "economics.ending_value",
+        click.Choice(ENDING_VALUES),
+        "Value of the forest left at the end: Faustmann (standing trees and land), "
+        "standing (trees only) or none.",
+    ),
     "gap-tolerance": (
         "adjacency.gap_tolerance_m",
         float,
