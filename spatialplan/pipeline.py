@@ -27,10 +27,12 @@ __all__ = [
     "PlanBundle",
     "PlanInputs",
     "PlanOutcome",
+    "StandAreas",
     "build_problem",
     "load_inputs",
     "run_plan",
     "schedule_frame",
+    "stand_areas",
     "write_plan",
 ]
 
@@ -161,6 +163,77 @@ def load_inputs(
             inputs.net = tr.net_area(inv.stands, t.streams, t, layer=t.streams_layer)
             inputs.messages.extend(inputs.net.messages)
     return inputs
+
+
+@dataclass(frozen=True)
+class StandAreas:
+    """Per-stand areas and flags as the planning problem sees them (rows by position).
+
+    Attributes
+    ----------
+    area_ha
+        Gross area from the geometry (openings are measured on it).
+    net_area_ha
+        Area net of stream buffers (the gross area when no streams are given); volumes
+        and values are per net hectare.
+    reserve
+        Never harvested: flagged as reserve, or no net area left after the buffers.
+    operable
+        ``False`` where the terrain rules out every harvest system (all ``True`` without
+        a DEM).
+    """
+
+    area_ha: np.ndarray
+    net_area_ha: np.ndarray
+    reserve: np.ndarray
+    operable: np.ndarray
+
+    @property
+    def harvestable(self) -> np.ndarray:
+        """Stands that may be harvested at some age: not reserved and operable."""
+        return ~self.reserve & self.operable
+
+    @property
+    def harvestable_net_area_ha(self) -> float:
+        """Net area of the harvestable stands: the land base the plan can cut.
+
+        Each stand counts once, with its area net of stream buffers; reserves and
+        inoperable stands count nothing, whatever their buffer area.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> a = StandAreas(
+        ...     area_ha=np.array([4.0, 4.0, 4.0]),
+        ...     net_area_ha=np.array([3.4, 3.4, 4.0]),
+        ...     reserve=np.array([True, False, False]),
+        ...     operable=np.array([True, True, False]),
+        ... )
+        >>> round(a.harvestable_net_area_ha, 6)
+        3.4
+        """
+        return float(self.net_area_ha[self.harvestable].sum())
+
+
+def stand_areas(inputs: PlanInputs) -> StandAreas:
+    """Gross and net area, reserve and operability of every stand, from validated inputs.
+
+    The same rules :func:`build_problem` applies: the net area is the stream-buffer net
+    area capped at the gross area; a stand with no net area left is a reserve; the DEM's
+    ``operable`` flag marks stands no harvest system can reach.
+    """
+    st = inputs.inventory.stands
+    area = st["area_ha"].to_numpy(dtype=float) if len(st) else np.zeros(0)
+    net_area = area.copy()
+    if inputs.net is not None:
+        net_area = np.minimum(area, inputs.net.stands["net_area_ha"].to_numpy(dtype=float))
+    reserve = (st["reserve"].to_numpy(dtype=bool) if len(st) else np.zeros(0, bool)) | (
+        net_area <= 1e-6
+    )
+    operable = np.ones(len(area), dtype=bool)
+    if inputs.terrain is not None:
+        operable = inputs.terrain.stands["operable"].to_numpy(dtype=bool)
+    return StandAreas(area, net_area, reserve, operable)
 
 
 def _flow_rules(settings: Settings, start_volume_m3: float) -> FlowRules:
