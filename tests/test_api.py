@@ -127,6 +127,24 @@ def test_write_outputs_with_review_files(
     assert all(p.is_file() for p in written)
 
 
+def test_render_review_files_matches_the_command(
+    api_plan: spatialplan.HarvestPlan, files: dict[str, Path]
+) -> None:
+    out = files["dir"] / "review.gpkg"
+    spatialplan.write_outputs(api_plan, out)
+    done = spatialplan.render_review_files(out)
+    report = done["report"].read_text(encoding="utf-8")
+    assert f"{api_plan.npv:,.0f}" in report
+    res = CliRunner().invoke(cli, ["map", str(out), "--overwrite"])
+    assert res.exit_code == 0, res.output
+    assert f"{api_plan.npv:,.0f}" in done["report"].read_text(encoding="utf-8")
+    assert sorted(p.name for p in done["charts"]) == sorted(
+        p.name for p in (files["dir"] / "review_charts").glob("*.png")
+    )
+    with pytest.raises(OutputError, match="--overwrite"):
+        spatialplan.render_review_files(out)
+
+
 def test_verify_plan_matches_the_command(api_plan: spatialplan.HarvestPlan, cli_plan: Path) -> None:
     res = CliRunner().invoke(cli, ["verify", str(cli_plan)])
     assert res.exit_code == 0, res.output
@@ -170,6 +188,11 @@ def test_read_inputs_from_frames_equals_files(files: dict[str, Path]) -> None:
     assert_geodataframe_equal(from_frames.inventory.stands, from_files.inventory.stands)
     pd.testing.assert_frame_equal(
         from_frames.yield_table.frame, from_files.yield_table.frame, check_dtype=False
+    )
+    # read_yields: a DataFrame is parsed as its CSV file is.
+    pd.testing.assert_frame_equal(
+        spatialplan.read_yields(pd.read_csv(files["yields"]), s).frame,
+        spatialplan.read_yields(files["yields"], s).frame,
     )
     assert str(from_frames.stands_path) == "stands GeoDataFrame"
     assert from_frames.yields_path is None
