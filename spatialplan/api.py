@@ -558,8 +558,9 @@ def verify_plan(
 
     s = None if settings is None else _settings(settings)
     if isinstance(plan, HarvestPlan):
+        s = s or plan.settings
         table = plan.inputs.growth if yields is None else yields
-        return verify_schedule(plan.schedule, s or plan.settings, _yields(table, s))
+        return verify_schedule(plan.schedule, s, _yields(table, s))
     if isinstance(plan, gpd.GeoDataFrame):
         s = s or Settings()
         return verify_schedule(plan, s, _yields(yields, s))
@@ -567,15 +568,15 @@ def verify_plan(
     schedule, recorded, table = read_plan(plan, None, yields_path, settings=s)
     if isinstance(yields, (pd.DataFrame, YieldTable, GrowthModel)):
         table = yields
+    if recorded is None:  # as the command's note says
+        warnings.warn(f"{plan} records no settings; the defaults are used", stacklevel=2)
     rules = recorded or Settings()
     return verify_schedule(schedule, rules, _yields(table, rules))
 
 
-def _yields(yields: Any, settings: Settings | None) -> Any:
+def _yields(yields: Any, settings: Settings) -> Any:
     """A yield table for :func:`verify_schedule` from a path, frame or model."""
-    if isinstance(yields, (str, Path)):
-        return read_yields(yields, settings)
-    if isinstance(yields, pd.DataFrame):
+    if isinstance(yields, (str, Path, pd.DataFrame)):
         return read_yields(yields, settings)
     return yields
 
