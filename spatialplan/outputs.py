@@ -39,8 +39,6 @@ __all__ = [
     "opening_table",
     "period_colours",
     "period_table",
-    "read_run_table",
-    "run_table",
     "strata_table",
     "write_back",
     "write_period_raster",
@@ -429,21 +427,6 @@ def strata_table(
             "stratum_area_ha": np.repeat(total, P),
         }
     )
-
-
-def run_table(info: Mapping[str, Any]) -> pd.DataFrame:
-    """The ``run`` table: one text ``key``/``value`` row per entry (``None`` -> empty)."""
-    keys = [str(k) for k in info]
-    vals = [
-        "" if v is None else (repr(v) if isinstance(v, float) else str(v)) for v in info.values()
-    ]
-    return pd.DataFrame({"key": keys, "value": vals})
-
-
-def read_run_table(frame: pd.DataFrame) -> dict[str, str]:
-    """Inverse of :func:`run_table`: ``{key: value}`` (values stay text)."""
-    vals = frame["value"].fillna("").astype(str)
-    return dict(zip(frame["key"].astype(str), vals, strict=True))
 
 
 # ---------------------------------------------------------------------------------------

@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import dataclasses
 import logging
-import platform
-import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,8 +18,6 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 
-from spatialplan import __version__
-from spatialplan._io import sha256_file
 from spatialplan.errors import InputError
 from spatialplan.inventory import InventoryResult, match_strata, read_stands
 from spatialplan.problem import FlowRules, PlanProblem
@@ -31,11 +27,13 @@ __all__ = [
     "PlanBundle",
     "PlanInputs",
     "PlanOutcome",
+    "StandAreas",
     "build_problem",
     "load_inputs",
     "run_plan",
     "schedule_frame",
     "solve_plan",
+    "stand_areas",
     "verify_plan",
     "write_plan",
 ]
@@ -168,6 +166,77 @@ def load_inputs(
             inputs.net = tr.net_area(inv.stands, t.streams, t, layer=t.streams_layer)
             inputs.messages.extend(inputs.net.messages)
     return inputs
+
+
+@dataclass(frozen=True)
+class StandAreas:
+    """Per-stand areas and flags as the planning problem sees them (rows by position).
+
+    Attributes
+    ----------
+    area_ha
+        Gross area from the geometry (openings are measured on it).
+    net_area_ha
+        Area net of stream buffers (the gross area when no streams are given); volumes
+        and values are per net hectare.
+    reserve
+        Never harvested: flagged as reserve, or no net area left after the buffers.
+    operable
+        ``False`` where the terrain rules out every harvest system (all ``True`` without
+        a DEM).
+    """
+
+    area_ha: np.ndarray
+    net_area_ha: np.ndarray
+    reserve: np.ndarray
+    operable: np.ndarray
+
+    @property
+    def harvestable(self) -> np.ndarray:
+        """Stands that may be harvested at some age: not reserved and operable."""
+        return ~self.reserve & self.operable
+
+    @property
+    def harvestable_net_area_ha(self) -> float:
+        """Net area of the harvestable stands: the land base the plan can cut.
+
+        Each stand counts once, with its area net of stream buffers; reserves and
+        inoperable stands count nothing, whatever their buffer area.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> a = StandAreas(
+        ...     area_ha=np.array([4.0, 4.0, 4.0]),
+        ...     net_area_ha=np.array([3.4, 3.4, 4.0]),
+        ...     reserve=np.array([True, False, False]),
+        ...     operable=np.array([True, True, False]),
+        ... )
+        >>> round(a.harvestable_net_area_ha, 6)
+        3.4
+        """
+        return float(self.net_area_ha[self.harvestable].sum())
+
+
+def stand_areas(inputs: PlanInputs) -> StandAreas:
+    """Gross and net area, reserve and operability of every stand, from validated inputs.
+
+    The same rules :func:`build_problem` applies: the net area is the stream-buffer net
+    area capped at the gross area; a stand with no net area left is a reserve; the DEM's
+    ``operable`` flag marks stands no harvest system can reach.
+    """
+    st = inputs.inventory.stands
+    area = st["area_ha"].to_numpy(dtype=float) if len(st) else np.zeros(0)
+    net_area = area.copy()
+    if inputs.net is not None:
+        net_area = np.minimum(area, inputs.net.stands["net_area_ha"].to_numpy(dtype=float))
+    reserve = (st["reserve"].to_numpy(dtype=bool) if len(st) else np.zeros(0, bool)) | (
+        net_area <= 1e-6
+    )
+    operable = np.ones(len(area), dtype=bool)
+    if inputs.terrain is not None:
+        operable = inputs.terrain.stands["operable"].to_numpy(dtype=bool)
+    return StandAreas(area, net_area, reserve, operable)
 
 
 def _flow_rules(settings: Settings, start_volume_m3: float) -> FlowRules:
@@ -320,52 +389,6 @@ def schedule_frame(inputs: PlanInputs, bundle: PlanBundle, period: np.ndarray) -
     return gpd.GeoDataFrame(frame, geometry=geom.values, crs=inv.source_crs)
 
 
-def run_table(
-    inputs: PlanInputs, result: Any, verdict: str, extra: dict[str, Any] | None = None
-) -> pd.DataFrame:
-    """Key/value rows recording everything needed to reproduce and audit the plan."""
-    from importlib.metadata import version
-
-    import geopandas
-    import shapely
-
-    s = inputs.settings
-    rows: dict[str, Any] = {
-        "software": f"spatialplan {__version__}",
-        "python": platform.python_version(),
-        "versions": (
-            f"ortools {version('ortools')}; highspy {version('highspy')}; geopandas {geopandas.__version__}; "
-            f"shapely {shapely.__version__}; numpy {np.__version__}; pandas {pd.__version__}"
-        ),
-        "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-        "stands_path": str(inputs.stands_path),
-        "stands_layer": str(inputs.inventory.layer or ""),
-        "stands_sha256": sha256_file(inputs.stands_path) if inputs.stands_path.is_file() else "",
-        "yields_path": str(inputs.yields_path or ""),
-        "yields_sha256": sha256_file(inputs.yields_path) if inputs.yields_path else "",
-        "yields_csv": inputs.yield_table.to_csv_text() if inputs.yield_table is not None else "",
-        "source_crs": inputs.inventory.source_crs.to_string(),
-        "working_crs": inputs.inventory.working_crs.to_string(),
-        "settings_json": s.to_json(),
-        "solver_status": result.status,
-        "npv": f"{result.npv:.2f}",
-        "cpsat_bound": "" if result.cpsat_bound is None else f"{result.cpsat_bound:.2f}",
-        "lp_bound": f"{result.lp_bound:.2f}",
-        "gap": f"{result.gap:.6f}",
-        "solve_time_s": f"{result.solve_time_s:.2f}",
-        "verify_verdict": verdict,
-    }
-    for path_key in ("dem", "streams"):
-        p = getattr(s.terrain, path_key)
-        if p:
-            rows[f"{path_key}_path"] = p
-            rows[f"{path_key}_sha256"] = sha256_file(p) if Path(p).is_file() else ""
-    for k, v in (result.stats or {}).items():
-        rows[f"stat_{k}"] = v
-    rows.update(extra or {})
-    return pd.DataFrame({"key": list(rows), "value": [str(v) for v in rows.values()]})
-
-
 def run_plan(
     inputs: PlanInputs,
     out_path: str | Path,
@@ -485,7 +508,7 @@ def write_plan(
     on_stage
         Called with a short stage name as the run proceeds.
     """
-    from spatialplan import outputs
+    from spatialplan import outputs, runtable
 
     stage = on_stage or (lambda _s: None)
     s = inputs.settings
@@ -505,15 +528,17 @@ def write_plan(
     sched["opening_id"] = stand_opening
     periods_df = outputs.period_table(sched, verify_settings or s, openings)
     strata_df = outputs.strata_table(sched, s)
-    run_df = run_table(
-        inputs,
-        result,
-        report.verdict,
-        {
-            "violations": str(len(report.violations)),
-            "max_opening_ha": str(s.rules.max_opening_ha),
-            **(run_extra or {}),
-        },
+    run_df = runtable.run_table(
+        runtable.plan_run_info(
+            inputs,
+            result,
+            report.verdict,
+            {
+                "violations": str(len(report.violations)),
+                "max_opening_ha": str(s.rules.max_opening_ha),
+                **(run_extra or {}),
+            },
+        )
     )
     stage("writing outputs")
     layers: dict[str, Any] = {

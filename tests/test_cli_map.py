@@ -12,16 +12,17 @@ from click.testing import CliRunner
 from spatialplan import outputs
 from spatialplan.cli import cli, main
 from spatialplan.report import CAUTIONS
+from spatialplan.runtable import run_table
 from tests.test_outputs import make_layers
 
 
 def plan_gpkg(tmp_path, name="forest plan"):
-    layers, *_ = make_layers()
-    run = outputs.read_run_table(layers["run"])
-    run.update({"npv": "1234567.89", "lp_bound": "1250000", "cpsat_bound": "1240000",
-                "gap": "0.0123", "solver_status": "FEASIBLE", "verify_verdict": "PASS",
-                "stands_path": "<script>alert(1)</script>.gpkg"})  # fmt: skip
-    layers["run"] = outputs.run_table(run)
+    layers, *_, settings = make_layers()
+    layers["run"] = run_table({"npv": "1234567.89", "lp_bound": "1250000",
+                               "cpsat_bound": "1240000", "gap": "0.0123",
+                               "solver_status": "FEASIBLE", "verify_verdict": "PASS",
+                               "stands_path": "<script>alert(1)</script>.gpkg",
+                               "settings_json": settings.to_json()})  # fmt: skip
     path = tmp_path / f"{name}.gpkg"
     outputs.write_plan_geopackage(path, layers)
     return path, layers

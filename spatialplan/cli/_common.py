@@ -7,7 +7,6 @@ import functools
 import logging
 import sys
 from collections.abc import Callable, Iterator
-from pathlib import Path
 from typing import Any
 
 import click
@@ -18,7 +17,6 @@ from spatialplan.settings import ENDING_VALUES, Settings, load_settings
 __all__ = [
     "SETTINGS_FLAGS",
     "console",
-    "ensure_output_path",
     "flag_overrides",
     "handle_errors",
     "run_cli",
@@ -250,51 +248,3 @@ def handle_errors(ctx: click.Context) -> Iterator[None]:
 def run_cli(group: click.Group, argv: list[str] | None = None) -> Any:
     """Run ``group`` as the console script."""
     return group.main(args=argv, prog_name="spatialplan")
-
-
-def ensure_output_path(out: Path, inputs: list[Path], overwrite: bool, flag: str = "--out") -> None:
-    """Refuse to overwrite an input or an existing output without ``--overwrite``.
-
-    Also refuses a folder, a missing folder and a folder the process cannot write to;
-    ``flag`` names the option in messages.
-    """
-    import os
-    import tempfile
-
-    from spatialplan.errors import OutputError
-
-    out_r = out.resolve()
-    for p in inputs:
-        if (
-            p is not None
-            and Path(p).exists()
-            and (Path(p).resolve() == out_r or (out.exists() and os.path.samefile(p, out)))
-        ):
-            msg = f"output {out} is the same file as input {p}; choose another {flag}"
-            raise OutputError(msg)
-    if out.is_dir():
-        msg = f"output {out} is a folder; give a file name such as {out / 'plan.gpkg'}"
-        raise OutputError(msg)
-    if out.exists() and not overwrite:
-        msg = f"output {out} exists; pass --overwrite to replace it"
-        raise OutputError(msg)
-    parent = out_r.parent
-    # A file where a folder should be (plan.txt/out.gpkg): "create it first" would mislead.
-    existing = next(a for a in (parent, *parent.parents) if a.exists())
-    if not existing.is_dir():
-        msg = (
-            f"{existing} is a file, not a folder, so {out} cannot be written; choose another {flag}"
-        )
-        raise OutputError(msg)
-    if not parent.is_dir():
-        msg = f"output folder {parent} does not exist; create it first"
-        raise OutputError(msg)
-    # Try it: permission bits say nothing for root, read-only mounts or ACLs.
-    try:
-        with tempfile.TemporaryFile(dir=parent):
-            pass
-    except OSError as exc:
-        msg = (
-            f"output folder {parent} is not writable ({exc.strerror or exc}); choose another {flag}"
-        )
-        raise OutputError(msg) from None

@@ -43,79 +43,66 @@ def command(stands: str, yields_path: str | None, settings_path: str | None, **k
     from rich.markup import escape
     from rich.table import Table
 
-    from spatialplan.inventory import age_class_table
     from spatialplan.pipeline import load_inputs
+    from spatialplan.summary import summarise_inputs
 
     settings = settings_from_flags(settings_path, kwargs)
-    inputs = load_inputs(stands, yields_path, settings, strict=False)
-    inv = inputs.inventory
-    st = inv.stands
+    sm = summarise_inputs(load_inputs(stands, yields_path, settings, strict=False))
     out = console().out
-    net = None
-    if inputs.net is not None:
-        net = inputs.net.stands["net_area_ha"].to_numpy()
-    total = float(st["area_ha"].sum()) if len(st) else 0.0
-    n_res = int(st["reserve"].sum()) if len(st) else 0
     summary = Table(
-        title=f"Stand layer {inv.path.name}" + (f" (layer {inv.layer})" if inv.layer else "")
+        title=escape(
+            f"Stand layer {sm.stands_path.name}" + (f" (layer {sm.layer})" if sm.layer else "")
+        )
     )
     summary.add_column("item")
     summary.add_column("value", justify="right")
-    summary.add_row("stands", f"{len(st)}")
-    summary.add_row("total area (ha)", f"{total:,.1f}")
-    summary.add_row("reserve stands", f"{n_res}")
-    summary.add_row(
-        "net harvestable area (ha)",
-        f"{(net.sum() if net is not None else total) - (st.loc[st['reserve'], 'area_ha'].sum() if len(st) else 0):,.1f}",
-    )
-    summary.add_row(
-        "CRS (input / working)", f"{inv.source_crs.to_string()} / {inv.working_crs.to_string()}"
-    )
+    summary.add_row("stands", f"{sm.n_stands}")
+    summary.add_row("total area (ha)", f"{sm.total_area_ha:,.1f}")
+    summary.add_row("reserve stands", f"{sm.reserve_stands}")
+    if sm.inoperable_stands is not None:
+        summary.add_row("inoperable stands (slope)", f"{sm.inoperable_stands}")
+    summary.add_row("net harvestable area (ha)", f"{sm.harvestable_net_area_ha:,.1f}")
+    summary.add_row("CRS (input / working)", f"{sm.source_crs} / {sm.working_crs}")
     out.print(summary)
-    if len(st):
-        ac = age_class_table(st)
+    if sm.n_stands:
         t = Table(title="Area by age class")
         t.add_column("age class (yr)")
         t.add_column("area (ha)", justify="right")
-        for _, r in ac.iterrows():
-            t.add_row(str(r["age_class"]), f"{r['area_ha']:,.1f}")
+        for r in sm.age_classes.itertuples(index=False):
+            t.add_row(str(r.age_class), f"{r.area_ha:,.1f}")
         out.print(t)
-        by = st.groupby("stratum")["area_ha"].agg(["count", "sum"]).reset_index()
         t = Table(title="Area by stratum")
         t.add_column("stratum")
         t.add_column("stands", justify="right")
         t.add_column("area (ha)", justify="right")
-        for _, r in by.iterrows():
-            t.add_row(str(r["stratum"]), f"{int(r['count'])}", f"{r['sum']:,.1f}")
+        for r in sm.strata.itertuples(index=False):
+            t.add_row(escape(str(r.stratum)), f"{r.stands}", f"{r.area_ha:,.1f}")
         out.print(t)
-    if inputs.terrain is not None:
-        tf = inputs.terrain.stands
+    if sm.harvest_systems is not None:
         t = Table(title="Terrain (estimates from the DEM)")
         t.add_column("harvest system")
         t.add_column("stands", justify="right")
         t.add_column("area (ha)", justify="right")
         t.add_column("mean slope (%)", justify="right")
-        g = tf.assign(area_ha=st["area_ha"].to_numpy()).groupby("harvest_system")
-        for name, grp in g:
+        for r in sm.harvest_systems.itertuples(index=False):
             t.add_row(
-                str(name),
-                f"{len(grp)}",
-                f"{grp['area_ha'].sum():,.1f}",
-                f"{grp['slope_pct_mean'].mean():.1f}",
+                escape(str(r.harvest_system)),
+                f"{r.stands}",
+                f"{r.area_ha:,.1f}",
+                f"{r.mean_slope_pct:.1f}",
             )
         out.print(t)
-    if net is not None:
-        out.print(
-            f"Stream buffers remove {total - float(net.sum()):,.1f} ha; net area {float(net.sum()):,.1f} ha"
-        )
-    for p in inv.problems:
+    if sm.stream_buffer_ha is not None:
+        net = sm.total_area_ha - sm.stream_buffer_ha
+        out.print(f"Stream buffers remove {sm.stream_buffer_ha:,.1f} ha; net area {net:,.1f} ha")
+    for p in sm.problems:
         style = {"error": "bold red", "warning": "yellow", "info": "dim"}[p.severity]
         out.print(f"[{style}]{p.severity.upper()}[/{style}] {escape(p.text())}")
-    for m in inputs.messages:
+    for m in sm.messages:
         out.print(f"NOTE {escape(m)}")
-    if inv.errors:
+    if not sm.usable:
         out.print(
-            f"[bold red]Not usable: {len(inv.errors)} problem(s) must be fixed first.[/bold red]"
+            f"[bold red]Not usable: {len(sm.errors)} problem(s) must be fixed first.[/bold red]"
         )
         raise SystemExit(1)
     out.print("[green]Inputs are usable for planning.[/green]")

@@ -7,13 +7,7 @@ from typing import Any
 
 import click
 
-from spatialplan.cli._common import (
-    console,
-    ensure_output_path,
-    settings_from_flags,
-    settings_options,
-)
-from spatialplan.errors import OutputError
+from spatialplan.cli._common import console, settings_from_flags, settings_options
 
 PLAN_FLAGS = [
     "layer",
@@ -153,30 +147,11 @@ def run_and_report(
     from rich.markup import escape
     from rich.table import Table
 
+    from spatialplan.output_paths import check_plan_outputs, plan_input_paths
     from spatialplan.pipeline import load_inputs, run_plan
 
     con = console()
-    inputs_list = [Path(stands)] + ([Path(yields_path)] if yields_path else [])
-    for k in ("dem", "streams"):
-        v = getattr(settings.terrain, k)
-        if v:
-            inputs_list.append(Path(v))
-    if out.suffix.lower() != ".gpkg":
-        msg = f"--out {out} must be a GeoPackage file name ending in .gpkg, e.g. {out.stem}.gpkg"
-        raise OutputError(msg)
-    ensure_output_path(out, inputs_list, overwrite)
-    if settings.output.raster_out:
-        # Checked before solving: a bad raster path must not cost a solve, nor hit an input.
-        ensure_output_path(
-            Path(settings.output.raster_out), [*inputs_list, out], overwrite, flag="--raster-out"
-        )
-    if not settings.output.no_map and not overwrite:
-        from spatialplan.report import review_paths
-
-        for side in review_paths(out).values():
-            if side.exists():
-                msg = f"output {side} exists; pass --overwrite to replace it (or --no-map)"
-                raise OutputError(msg)
+    check_plan_outputs(out, plan_input_paths(stands, yields_path, settings), settings, overwrite)
     inputs = load_inputs(stands, yields_path, settings)
     for p in inputs.inventory.warnings:
         con.err.print(f"{p.severity}: {escape(p.text())}")

@@ -7,12 +7,7 @@ from typing import Any
 
 import click
 
-from spatialplan.cli._common import (
-    console,
-    ensure_output_path,
-    settings_from_flags,
-    settings_options,
-)
+from spatialplan.cli._common import console, settings_from_flags, settings_options
 
 __all__ = ["command"]
 
@@ -65,60 +60,23 @@ def command(
     Ages are searched on a 1-year grid. One PNG chart per stratum shows MAI/CAI and the
     value growth rate against the discount rate.
     """
-    from spatialplan._io import atomic_path
-    from spatialplan.charts import rotation_chart, safe_file_stem
-    from spatialplan.economics import rotation_curves, rotation_table
-    from spatialplan.errors import InputError
-    from spatialplan.growth import build_growth_model, load_yield_table
+    from spatialplan.rotation import write_rotation
 
-    flags_copy = dict(flags)
-    settings = settings_from_flags(settings_path, flags_copy)
+    settings = settings_from_flags(settings_path, dict(flags))
     if regeneration_cost is not None:
         settings = settings.with_overrides(
             {"economics.regeneration_cost_per_ha": regeneration_cost}
         )
-    keys = settings.fields.yield_keys
-    table = None
-    if yields_path is not None:
-        table = load_yield_table(yields_path, keys, settings.yields)
-    elif not settings.growth.chapman_richards:
-        msg = "give --yields (a yield-table CSV) or growth.chapman_richards curves in --settings"
-        raise InputError(msg)
-    growth = build_growth_model(table, settings.growth, keys)
-    strata = growth.strata
-
-    out = Path(out_path)
-    inputs = [Path(p) for p in (yields_path, settings_path) if p]
-    ensure_output_path(out, inputs, overwrite)
-    chart_dir = out.parent / f"{out.stem}_charts"
-    chart_paths: dict[str, Path] = {}
-    if not no_charts:
-        used: set[str] = set()
-        for s in strata:
-            stem = f"{out.stem}_{safe_file_stem(s)}"
-            base, i = stem, 2
-            while stem.lower() in used:  # labels that differ only in unsafe characters
-                stem, i = f"{base}_{i}", i + 1
-            used.add(stem.lower())
-            chart_paths[s] = chart_dir / f"{stem}.png"
-        if not overwrite:
-            existing = [p for p in chart_paths.values() if p.exists()]
-            if existing:
-                from spatialplan.errors import OutputError
-
-                msg = (
-                    f"chart {existing[0]} exists ({len(existing)} in all); "
-                    "pass --overwrite to replace"
-                )
-                raise OutputError(msg)
-
-    df = rotation_table(growth, strata, settings, max_age=max_age)
-    with atomic_path(out, suffix=".csv") as tmp:
-        df.to_csv(tmp, index=False, lineterminator="\n", float_format="%.6g")
-    if chart_paths:
-        chart_dir.mkdir(exist_ok=True)
-        for s, p in chart_paths.items():
-            rotation_chart(rotation_curves(growth, s, settings, max_age), p)
+    done = write_rotation(
+        yields_path,
+        settings,
+        Path(out_path),
+        max_age=max_age,
+        charts=not no_charts,
+        overwrite=overwrite,
+        inputs=[settings_path],
+    )
+    df = done.table
 
     ctx = click.get_current_context()
     if (ctx.obj or {}).get("quiet"):
@@ -141,5 +99,7 @@ def command(
     con = console()
     con.out.print(tab)
     con.out.print(
-        f"wrote {out}" + (f" and {len(chart_paths)} chart(s) in {chart_dir}" if chart_paths else "")
+        f"wrote {done.csv}"
+        + (f" and {len(done.charts)} chart(s) in {done.chart_dir}" if done.charts else ""),
+        markup=False,
     )
