@@ -20,6 +20,7 @@ import dataclasses
 import logging
 import math
 import re
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -624,7 +625,7 @@ def _polygonal(geoms: np.ndarray) -> np.ndarray:
     return out
 
 
-def is_reserve_flag(values: object) -> np.ndarray:
+def is_reserve_flag(values: Iterable[object]) -> np.ndarray:
     """True where a reserve-flag value means "reserved".
 
     A value is reserved when it is one of :data:`RESERVE_TRUE_WORDS` (any case, spaces

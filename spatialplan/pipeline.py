@@ -440,7 +440,7 @@ def write_plan(
     out_path = Path(out_path)
     stage("verifying")
     sched = schedule_frame(inputs, bundle, result.period)
-    report = verify.verify_schedule(sched, verify_settings or s, inputs.growth)
+    report = verify.verify_schedule(sched, verify_settings or s, inputs.yield_table)
     openings, stand_opening = outputs.opening_table(
         sched,
         bundle.problem.edges,
