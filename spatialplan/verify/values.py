@@ -90,9 +90,8 @@ def harvest_cost(frame: pd.DataFrame, settings: Settings, cost_column: str | Non
     out = np.full(len(frame), float(econ.harvest_cost_per_m3))
     if cost_column is not None and econ.harvest_cost_by_class:
         table = {key_text(k): float(v) for k, v in econ.harvest_cost_by_class.items()}
-        given = frame[cost_column].notna().to_numpy()
         cls = frame[cost_column].map(key_text).to_numpy(dtype=object)
-        given &= cls != ""
+        given = frame[cost_column].notna().to_numpy() & (cls != "")
         unknown = given & ~np.isin(cls, list(table))
         if unknown.any():
             msg = (
