@@ -42,9 +42,6 @@ from spatialplan.verify.yields import (
 
 __all__ = ["verify_schedule", "yield_rows"]
 
-#: relative and absolute slack when comparing recorded harvest figures with verify's own
-RECORD_RTOL = 1e-6
-RECORD_ATOL = 1e-6
 #: the value written in ``harvest_system`` for stands too steep to harvest
 INOPERABLE = "inoperable"
 
@@ -185,18 +182,15 @@ def _recorded_checks(
     """Ages, volumes and values the plan file records for each harvest, against verify's own."""
     econ = settings.economics
     ids, rec = stands.ids[h.stand], h.recorded
+    recorded = {k: rec[k].to_numpy() for k in rec.columns}
     out = rules.record_checks(
-        "recorded_age", "age at harvest", ids, h.period,
-        rec["age_at_harvest"].to_numpy(), crop.age_at_harvest, 0.0, RECORD_ATOL,
-    )  # fmt: skip
+        "recorded_age", ids, h.period, recorded["age_at_harvest"], crop.age_at_harvest
+    )
     if cut_m3 is None:
         return out
-    out += rules.record_checks(
-        "recorded_volume", "volume (m3)", ids, h.period,
-        rec["volume_m3"].to_numpy(), cut_m3, RECORD_RTOL, RECORD_ATOL,
-    )  # fmt: skip
+    out += rules.record_checks("recorded_volume", ids, h.period, recorded["volume_m3"], cut_m3)
     from_table = h.source == events.FROM_TABLE
-    if not np.isfinite(rec["value"].to_numpy()).any():
+    if not np.isfinite(recorded["value"]).any():
         return out
     if from_table and econ.include_land_value:
         notes.append("harvest npv of the harvests table is not checked with a land value")
@@ -216,10 +210,8 @@ def _recorded_checks(
         value_ha = value_ha + ending_gain_per_ha(
             cut_end, (stands.strata[h.stand], end_uncut), cost, curves, settings
         )
-    out += rules.record_checks(
-        "recorded_value", "value", ids, h.period,
-        rec["value"].to_numpy(), value_ha * stands.net_ha[h.stand], RECORD_RTOL, RECORD_ATOL,
-    )  # fmt: skip
+    value = value_ha * stands.net_ha[h.stand]
+    out += rules.record_checks("recorded_value", ids, h.period, recorded["value"], value)
     return out
 
 

@@ -27,6 +27,7 @@ from spatialplan.verify.report import Violation
 __all__ = [
     "AGE_EPS_YR",
     "AREA_EPS_HA",
+    "RECORD_ATOL",
     "REL_EPS",
     "ending_checks",
     "flow_checks",
@@ -42,6 +43,8 @@ AREA_EPS_HA = 1e-6
 REL_EPS = 1e-6
 #: slack on ages (years)
 AGE_EPS_YR = 1e-9
+#: absolute slack (years, m3, currency) when comparing a recorded harvest figure
+RECORD_ATOL = 1e-6
 
 
 def _slack(a: float, b: float) -> float:
@@ -335,24 +338,32 @@ def flow_checks(
 
 def record_checks(
     rule: str,
-    what: str,
     ids: np.ndarray,
     period: np.ndarray,
     recorded: np.ndarray,
     recomputed: np.ndarray,
-    rtol: float,
-    atol: float,
 ) -> list[Violation]:
     """Harvest figures in the plan file that differ from verify's own, one line per period.
 
-    Only harvests with both a recorded and a recomputed figure are compared.
+    Parameters
+    ----------
+    rule
+        ``recorded_age``, ``recorded_volume`` or ``recorded_value``.
+    ids, period
+        (e,) stand id and period of every harvest.
+    recorded, recomputed
+        (e,) the plan's figure and verify's; harvests where either is NaN are skipped.
+        They differ when apart by more than :data:`REL_EPS` of verify's figure plus
+        :data:`RECORD_ATOL`.
     """
+    what = {"recorded_age": "age at harvest", "recorded_volume": "volume (m3)"}.get(rule, "value")
     both = np.isfinite(recorded) & np.isfinite(recomputed)
-    off = both & (np.abs(recorded - recomputed) > rtol * np.abs(recomputed) + atol)
+    gap = np.abs(recorded - recomputed)
+    off = both & (gap > REL_EPS * np.abs(recomputed) + RECORD_ATOL)
     out = []
     for p in np.unique(period[off]):
         rows = np.flatnonzero(off & (period == p))
-        worst = rows[np.argmax(np.abs(recorded[rows] - recomputed[rows]))]
+        worst = rows[np.argmax(gap[rows])]
         out.append(
             Violation(
                 rule,
