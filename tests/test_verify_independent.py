@@ -75,6 +75,22 @@ def test_feet_and_degrees_are_measured_in_metres() -> None:
         assert nb.shared_m[0] == pytest.approx(100.0, rel=2e-3)  # projection back to UTM
 
 
+def test_self_crossing_stand_counts_its_repaired_area() -> None:
+    # A bow-tie ring has signed area 0; repaired it is two triangles of 200 x 100 / 2 m2
+    # (drawing): 2 ha. Cut with its 4 ha neighbour the opening is 6 ha, over a 5 ha limit.
+    bow = shapely.Polygon([(0, 0), (200, 200), (200, 0), (0, 200)])
+    sched = gpd.GeoDataFrame(
+        {"stand_id": ["B", "N"], "age": [60.0, 60.0], "stratum": ["S1", "S1"], "period": [1, 1]},
+        geometry=[bow, shapely.box(200, 0, 400, 200)],
+        crs=CRS,
+    )
+    s = settings_from_dict({"rules": {"max_opening_ha": 5.0, "flow_tolerance": None}})
+    rep = verify_schedule(sched, s, YIELDS)
+    assert [(v.rule, v.stand_ids) for v in rep.violations] == [("max_opening", ("B", "N"))]
+    assert rep.violations[0].value == pytest.approx(6.0)
+    assert any("repaired" in n for n in rep.notes)
+
+
 # ---- shared-edge measure against the planner's graph on generated layers ------------------
 @pytest.mark.parametrize("layer", ["voronoi", "grid"])
 def test_clean_layers_give_the_planners_graph(layer: str) -> None:

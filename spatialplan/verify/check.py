@@ -28,7 +28,7 @@ from spatialplan.errors import InputError
 from spatialplan.inventory import is_reserve_flag
 from spatialplan.settings import Settings
 from spatialplan.verify import events, rules
-from spatialplan.verify.geometry import area_ha, metre_geometry, neighbours
+from spatialplan.verify.geometry import area_ha, metre_geometry, neighbours, polygons
 from spatialplan.verify.report import VerifyReport, Violation
 from spatialplan.verify.values import ending_gain_per_ha, harvest_cost, harvest_value_per_ha
 from spatialplan.verify.yields import (
@@ -118,6 +118,7 @@ class _Stands:
     """What verify reads about every stand of the schedule layer, by position."""
 
     ids: np.ndarray
+    geometry: gpd.GeoSeries
     age_start: np.ndarray
     strata: np.ndarray
     gross_ha: np.ndarray
@@ -143,7 +144,8 @@ def _read_stands(
         bad = list(ids[np.isnan(age)])
         msg = f"schedule field {fm.age_field} has no numeric age for stands {_fmt_ids(bad)}"
         raise InputError(msg)
-    gross = area_ha(schedule.geometry)
+    geometry = polygons(schedule.geometry, notes)
+    gross = area_ha(geometry)
     net = gross
     if "net_area_ha" in schedule.columns:
         given = pd.to_numeric(schedule["net_area_ha"], errors="coerce").to_numpy(dtype=float)
@@ -159,6 +161,7 @@ def _read_stands(
         notes.append("operability is not checked (no harvest_system column in the schedule)")
     return _Stands(
         ids=ids,
+        geometry=geometry,
         age_start=age,
         strata=stratum_of(schedule, key_columns),
         gross_ha=gross,
@@ -288,7 +291,7 @@ def verify_schedule(
     green_after = events.green_up_periods(crop.stratum_after, settings, curves, delay, [])
     is_open, opened_by = events.openness(h, green_after, stands.age_start, green_start, settings)
     adj = settings.adjacency
-    geoms = metre_geometry(schedule.geometry, notes)
+    geoms = metre_geometry(stands.geometry, notes)
     nb = neighbours(geoms, adj.min_shared_edge_m, adj.gap_tolerance_m, adj.corner_adjacency)
     found, pre, openings = rules.opening_checks(
         ids, nb.edges, stands.gross_ha, is_open, opened_by, r.max_opening_ha

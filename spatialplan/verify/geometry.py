@@ -38,7 +38,14 @@ import pandas as pd
 import shapely
 from pyproj import CRS
 
-__all__ = ["MAX_FACING_ANGLE_DEG", "Neighbours", "area_ha", "metre_geometry", "neighbours"]
+__all__ = [
+    "MAX_FACING_ANGLE_DEG",
+    "Neighbours",
+    "area_ha",
+    "metre_geometry",
+    "neighbours",
+    "polygons",
+]
 
 #: segments closer to parallel than this face each other (digitised copies of one edge
 #: rarely differ by more; a boundary turning away at a junction or corner differs by far more)
@@ -103,23 +110,25 @@ def area_ha(geometry: gpd.GeoSeries) -> np.ndarray:
     return out / 10_000.0
 
 
-def metre_geometry(geometry: gpd.GeoSeries, notes: list[str]) -> np.ndarray:
-    """Stand polygons in metres, moved near the origin, ready for measuring.
+def _polygon_parts(geom: shapely.Geometry) -> shapely.Geometry:
+    """The polygons of a repaired geometry or collection (lines and points dropped)."""
+    todo, polys = [geom], []
+    while todo:
+        g = todo.pop()
+        if g.geom_type == "Polygon" and g.area > 0:
+            polys.append(g)
+        elif g.geom_type in ("MultiPolygon", "GeometryCollection"):
+            todo.extend(shapely.get_parts(g))
+    return shapely.MultiPolygon(polys) if polys else shapely.Polygon()
 
-    A geographic layer is projected to its UTM zone, a projected layer in another unit is
-    scaled to metres, invalid polygons are repaired and missing ones become empty; every
-    such step is added to ``notes``. Coordinates are shifted so the layer starts near
-    (0, 0), which keeps the arithmetic on segment ends accurate to far below a millimetre.
+
+def polygons(geometry: gpd.GeoSeries, notes: list[str]) -> gpd.GeoSeries:
+    """Stand polygons fit to measure: invalid ones repaired, missing ones empty.
+
+    Repairs use :func:`shapely.make_valid` and keep only the polygon parts; every repair is
+    counted in ``notes``. The input is not modified.
     """
-    gs = geometry
-    if gs.crs is None:
-        notes.append("schedule layer has no CRS; coordinates taken as metres")
-    elif gs.crs.is_geographic:
-        utm = gs.estimate_utm_crs()
-        notes.append(f"geographic CRS projected to {utm.to_string()} for areas and adjacency")
-        gs = gs.to_crs(utm)
-    geoms = np.asarray(gs.array, dtype=object).copy()
-    factor = 1.0 if gs.crs is None else _unit_to_metre(CRS.from_user_input(gs.crs))
+    geoms = np.asarray(geometry.array, dtype=object).copy()
     missing = shapely.is_missing(geoms) | shapely.is_empty(geoms)
     if missing.any():
         notes.append(f"{int(missing.sum())} stand(s) without geometry have no neighbours")
@@ -128,17 +137,40 @@ def metre_geometry(geometry: gpd.GeoSeries, notes: list[str]) -> np.ndarray:
     if invalid.any():
         notes.append(f"{int(invalid.sum())} invalid polygon(s) repaired for measuring")
         geoms[invalid] = shapely.make_valid(geoms[invalid])
-    if (~missing).any():
-        origin = shapely.bounds(geoms[~missing])[:, :2].min(axis=0)
-        geoms = shapely.transform(geoms, lambda xy: (xy - origin) * factor)
-    return geoms
+    mixed = ~missing & (shapely.get_type_id(geoms) == 7)  # collections: keep their polygons
+    geoms[invalid | mixed] = [_polygon_parts(g) for g in geoms[invalid | mixed]]
+    return gpd.GeoSeries(geoms, index=geometry.index, crs=geometry.crs)
+
+
+def metre_geometry(geometry: gpd.GeoSeries, notes: list[str]) -> np.ndarray:
+    """Stand polygons (from :func:`polygons`) in metres, moved near the origin.
+
+    A geographic layer is projected to its UTM zone and a projected layer in another unit
+    is scaled to metres (said in ``notes``). Coordinates are shifted so the layer starts
+    near (0, 0), which keeps the arithmetic on segment ends accurate to far below a
+    millimetre.
+    """
+    gs = geometry
+    if gs.crs is None:
+        notes.append("schedule layer has no CRS; coordinates taken as metres")
+    elif gs.crs.is_geographic:
+        utm = gs.estimate_utm_crs()
+        notes.append(f"geographic CRS projected to {utm.to_string()} for areas and adjacency")
+        gs = gs.to_crs(utm)
+    geoms = np.asarray(gs.array, dtype=object)
+    factor = 1.0 if gs.crs is None else _unit_to_metre(CRS.from_user_input(gs.crs))
+    if factor != 1.0:
+        notes.append(f"coordinates converted to metres (1 unit = {factor:g} m)")
+    present = ~shapely.is_empty(geoms)
+    if not present.any():
+        return geoms
+    origin = shapely.bounds(geoms[present])[:, :2].min(axis=0)
+    return shapely.transform(geoms, lambda xy: (xy - origin) * factor)
 
 
 def _boundary_segments(geoms: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Start points, end points and owning stand of every boundary segment (holes included)."""
     polys, poly_owner = shapely.get_parts(geoms, return_index=True)
-    polys_ok = np.isin(shapely.get_type_id(polys), [3])  # polygon parts only
-    polys, poly_owner = polys[polys_ok], poly_owner[polys_ok]
     rings, ring_poly = shapely.get_rings(polys, return_index=True)
     xy, ring = shapely.get_coordinates(rings, return_index=True)
     same_ring = ring[1:] == ring[:-1]
