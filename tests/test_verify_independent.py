@@ -72,7 +72,8 @@ def test_feet_and_degrees_are_measured_in_metres() -> None:
         notes: list[str] = []
         nb = neighbours(metre_geometry(gs.to_crs(crs), notes), 1.0, 0.5)
         assert nb.edges.tolist() == [[0, 1]]
-        assert nb.shared_m[0] == pytest.approx(100.0, rel=2e-3)  # projection back to UTM
+        # 100 m up to the scale error of projecting to UTM and back (pyproj)
+        assert nb.shared_m[0] == pytest.approx(100.0, rel=2e-3)
 
 
 def test_self_crossing_stand_counts_its_repaired_area() -> None:
@@ -179,6 +180,7 @@ def test_own_interpolation_by_hand_and_against_the_planners_model() -> None:
     expect = [25.0, 100.0, 150.0, 30.0, 500.0 * (1 - math.exp(-1.5)) ** 3]
     np.testing.assert_allclose(got, expect)
     # the planner's growth model on the same table agrees everywhere on a 1-year grid
+    # (a second implementation of the same rules)
     keys = ["stratum"]
     model = build_growth_model(yield_table_from_frame(YIELDS, keys), GrowthSettings(), keys)
     mine = build_curves(read_yield_rows(YIELDS, keys, YieldColumns()), GrowthSettings())
@@ -197,7 +199,8 @@ def test_recorded_volume_and_value_by_hand() -> None:
     tab = YIELDS[YIELDS.stratum == "S1"]
     v_ha = float(np.interp(75.0, tab.age, tab.volume))  # numpy reference interpolation
     econ = {"price_per_m3": 50.0, "harvest_cost_per_m3": 10.0, "regeneration_cost_per_ha": 900.0}
-    # discounted net value per ha: ((p - h) V - C) (1 + r)^-t, t = 15 (docs/methods.md)
+    # net stumpage value ((p - h) V - C) per ha, discounted (1 + r)^-t by compound
+    # interest (textbook formula); harvest at mid-period t = 15 (common practice, no source)
     value = ((50.0 - 10.0) * v_ha - 900.0) * 1.04**-15.0 * 4.0
     sched["age_at_harvest"] = 75.0
     sched["volume_m3"] = v_ha * 4.0
@@ -262,7 +265,7 @@ def test_recorded_figures_match_the_planners_economics(tmp_path: Path, parametri
     assert not [v.line() for v in rep.violations if v.rule.startswith("recorded_")]
     assert {"recorded_volume", "recorded_value"} <= set(rep.rules_checked)
     assert (sched["value"] != 0).sum() == (period > 0).sum()  # values were there to compare
-    # the period volumes agree with the planner's problem arrays
+    # the period volumes agree with the planner's problem arrays (a second implementation)
     pr = bundle.problem
     cut = np.flatnonzero(period > 0)
     ref = np.zeros(5)
@@ -350,8 +353,9 @@ def test_two_harvest_plan_legal_too_young_and_green_up() -> None:
         {"horizon": {"periods": 6, "period_length_yr": 10.0}, "rules": TWICE_RULES}
     )
     sched, harvests = twice_plan(6)
-    # ages at harvest: 50 + 5 = 55; the new crop (6 - 1) 10 = 50 years (regrowth rule of
-    # docs/architecture.md); neighbours 60 + 35 = 95. Volumes by numpy.interp on S1.
+    # ages at harvest: 50 + 5 = 55; the new crop (6 - 1) 10 = 50 years (a clear-cut
+    # regrows from age 0: common practice, no source); neighbours 60 + 35 = 95. Volumes by
+    # numpy.interp on S1 (reference interpolation).
     tab = YIELDS[YIELDS.stratum == "S1"]
     ages = np.array([55.0, 50.0, 95.0, 95.0])
     harvests["age_at_harvest"] = ages
