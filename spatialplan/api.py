@@ -433,7 +433,7 @@ def plan(
     result = schedule.solve(bundle.problem, s.solver, on_progress=on_progress)
     # The same layers pipeline.write_plan writes, built in memory.
     sched = schedule_frame(inputs, bundle, result.period)
-    report = verify.verify_schedule(sched, s, inputs.growth)
+    report = verify.verify_schedule(sched, s, inputs.yield_table)
     problem = bundle.problem
     openings, stand_opening = outputs.opening_table(
         sched,

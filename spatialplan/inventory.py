@@ -20,6 +20,7 @@ import dataclasses
 import logging
 import math
 import re
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -34,10 +35,12 @@ from spatialplan.errors import InputError
 from spatialplan.settings import FieldMap
 
 __all__ = [
+    "RESERVE_TRUE_WORDS",
     "InventoryResult",
     "Problem",
     "age_class_table",
     "find_overlaps",
+    "is_reserve_flag",
     "list_vector_layers",
     "match_strata",
     "polygon_area_ha",
@@ -53,8 +56,11 @@ MAX_PLAUSIBLE_AGE_YR = 1000.0  # older than any managed even-aged stand (common 
 MAX_PLAUSIBLE_COORD_M = 1.0e8  # projected coordinates beyond 100,000 km are a unit/CRS mistake
 OVERLAP_TOLERANCE_M2 = 1.0  # overlaps smaller than this are digitising noise
 _INT_TEXT = re.compile(r"^[+-]?\d+\.0*$")
-_TRUE = {"1", "true", "t", "yes", "y", "x", "reserve", "reserved"}
-_FALSE = {"0", "false", "f", "no", "n", "", "none", "nan"}
+#: Words (compared stripped and case-insensitively) that flag a stand as reserved. The one
+#: list used wherever a reserve flag is read: inventory, verify and the map.
+RESERVE_TRUE_WORDS = frozenset({"1", "true", "t", "yes", "y", "reserve", "reserved", "r", "x"})
+#: Words that say "not reserved"; anything else that is not a number is a bad flag value.
+_RESERVE_FALSE_WORDS = frozenset({"0", "false", "f", "no", "n", "", "none", "nan"})
 
 
 @dataclass(frozen=True)
@@ -619,12 +625,39 @@ def _polygonal(geoms: np.ndarray) -> np.ndarray:
     return out
 
 
+def is_reserve_flag(values: Iterable[object]) -> np.ndarray:
+    """True where a reserve-flag value means "reserved".
+
+    A value is reserved when it is one of :data:`RESERVE_TRUE_WORDS` (any case, spaces
+    around ignored), a non-zero number or ``True``; empty values, ``False``, 0 and every
+    other word are not.
+
+    Parameters
+    ----------
+    values
+        Flag values of any type (a Series, a list or an array).
+
+    Returns
+    -------
+    numpy.ndarray
+        (n,) bool.
+
+    Examples
+    --------
+    >>> is_reserve_flag(["Reserved", " x", "no", 2.0, 0, None, True, "maybe"]).tolist()
+    [True, True, False, True, False, False, True, False]
+    """
+    s = pd.Series(list(values) if not isinstance(values, pd.Series) else values, dtype=object)
+    num = pd.to_numeric(s, errors="coerce")
+    words = s.map(lambda v: "" if v is None else str(v).strip().lower())
+    return (words.isin(RESERVE_TRUE_WORDS) | (num.notna() & (num != 0))).to_numpy(dtype=bool)
+
+
 def _parse_flags(values: pd.Series) -> tuple[pd.Series, pd.Series]:
+    """Reserve flags and the values that are neither a flag word nor a number."""
+    yes = pd.Series(is_reserve_flag(values), index=values.index)
     txt = text_key(values).map(lambda v: "" if v is None else str(v).strip().lower())
-    yes = txt.isin(_TRUE)
-    num = pd.to_numeric(txt, errors="coerce")
-    yes |= num.notna() & (num != 0)
-    known = yes | txt.isin(_FALSE) | num.notna()
+    known = yes | txt.isin(_RESERVE_FALSE_WORDS) | pd.to_numeric(txt, errors="coerce").notna()
     return yes, ~known
 
 

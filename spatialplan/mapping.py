@@ -25,6 +25,7 @@ import pandas as pd
 
 from spatialplan._io import write_text_atomic
 from spatialplan.errors import OutputError, SettingsError
+from spatialplan.inventory import is_reserve_flag
 from spatialplan.outputs import (
     NOT_HARVESTED_COLOUR,
     OPENING_COLOUR,
@@ -37,8 +38,6 @@ from spatialplan.outputs import (
 __all__ = ["leaflet_assets", "write_map"]
 
 VENDOR = Path(__file__).parent / "vendor" / "leaflet"
-
-_TRUE = {"1", "true", "t", "yes", "y"}
 
 
 @cache
@@ -90,12 +89,7 @@ def _tooltip(row: dict[str, Any], labels: list[tuple[str, str, int]]) -> str:
 def _reserve_mask(frame: pd.DataFrame, col: str | None) -> np.ndarray:
     if not col or col not in frame.columns:
         return np.zeros(len(frame), dtype=bool)
-    s = frame[col]
-    if s.dtype == bool:
-        return s.fillna(False).to_numpy(dtype=bool)
-    num = pd.to_numeric(s, errors="coerce")
-    txt = s.astype(str).str.strip().str.lower().isin(_TRUE).to_numpy()
-    return np.where(num.notna().to_numpy(), num.fillna(0).to_numpy() != 0, txt)
+    return is_reserve_flag(frame[col])
 
 
 def _features(frame: gpd.GeoDataFrame, tips: list[str], kind: list[str]) -> dict[str, Any]:

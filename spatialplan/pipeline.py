@@ -474,7 +474,7 @@ def verify_plan(
     from spatialplan import verify
 
     sched = schedule_frame(inputs, bundle, period)
-    return sched, verify.verify_schedule(sched, settings or inputs.settings, inputs.growth)
+    return sched, verify.verify_schedule(sched, settings or inputs.settings, inputs.yield_table)
 
 
 def write_plan(

@@ -47,14 +47,15 @@ def command(
 ) -> None:
     """Check every rule of a harvest plan, trusting nothing the solver recorded.
 
-    Reads the `schedule` layer and the recorded settings and yield table of OUT.gpkg,
-    rebuilds adjacency and openings from the geometry, recomputes volumes, and prints each
+    Reads the `schedule` layer (and a `harvests` table when the plan has one) and the
+    recorded settings and yield table of OUT.gpkg, measures adjacency and openings from
+    the geometry with its own code, recomputes ages, volumes and values, and prints each
     broken rule (rule, period, stand ids, size) and a one-line verdict. The rules are the
     recorded ones; --settings replaces them and flags override single values. Exits 0
     when every rule holds and 1 when any is broken.
     """
     from spatialplan.settings import load_settings
-    from spatialplan.verify import read_plan, verify_schedule
+    from spatialplan.verify import read_harvests, read_plan, verify_schedule
 
     overrides = flag_overrides(kwargs)
     given = load_settings(settings_path, overrides) if settings_path is not None else None
@@ -62,7 +63,7 @@ def command(
     if settings is None:
         click.echo(f"note: {plan_path} records no settings; defaults and flags are used", err=True)
         settings = load_settings(None, overrides)
-    report = verify_schedule(schedule, settings, table)
+    report = verify_schedule(schedule, settings, table, harvests=read_harvests(plan_path))
     for note in report.notes:
         click.echo(f"note: {note}", err=True)
     for v in report.preexisting:
