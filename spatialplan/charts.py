@@ -27,6 +27,8 @@ import numpy as np  # noqa: E402
 from spatialplan._io import atomic_path  # noqa: E402
 
 if TYPE_CHECKING:
+    from collections.abc import Mapping
+
     from spatialplan.economics import RotationCurves
 
 __all__ += ["rotation_chart", "safe_file_stem"]
@@ -351,23 +353,36 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
 __all__ += ["comparison_chart"]
 
 
-def comparison_chart(table: Any, path: str | Path, title: str = "Scenario comparison") -> Path:
+def comparison_chart(
+    table: Any,
+    path: str | Path,
+    title: str = "Scenario comparison",
+    column_labels: Mapping[str, str] | None = None,
+    scenario_labels: Mapping[str, str] | None = None,
+) -> Path:
     """Write the scenario comparison chart (one PNG, four panels).
 
     Panels: NPV per scenario with the aspatial LP bound and the gap; the NPV cost of each
-    rule (``cost_*`` columns); harvest volume by period; area harvested and the largest
-    opening. Failed scenarios are shown as an empty slot labelled with their status.
+    rule (``cost_*`` columns; the cost of the spatial rules as a bar up to its upper
+    estimate with a tick at its lower estimate); harvest volume by period; area harvested
+    and the largest opening. Failed scenarios are shown as an empty slot labelled with
+    their status.
 
     Parameters
     ----------
     table
         Frame from :func:`spatialplan.scenarios.comparison_table` (columns ``scenario``,
-        ``status``, ``npv``, ``lp_bound``, ``gap``, ``verify_ok``, ``volume_m3_p<k>``,
+        ``status``, ``npv``, ``lp_bound``, ``gap``, ``verification``, ``volume_m3_p<k>``,
         ``area_harvested_ha``, ``largest_opening_ha`` and ``cost_*``).
     path
         Target PNG.
     title
         Figure title.
+    column_labels
+        Column -> legend words (:func:`spatialplan.scenarios.column_labels`); columns
+        without one are named as in the table.
+    scenario_labels
+        Scenario -> its settings in words, added to its name in the volume legend.
 
     Returns
     -------
@@ -384,7 +399,9 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
     lp = pd.to_numeric(df["lp_bound"], errors="coerce").to_numpy(float)
     gap = pd.to_numeric(df["gap"], errors="coerce").to_numpy(float)
     ran = np.isfinite(npv)
-    verified = df["verify_ok"].astype(bool).to_numpy() & ran
+    verified = (df["verification"].astype(str) == "passed").to_numpy() & ran
+    words = dict(column_labels or {})
+    settings_words = dict(scenario_labels or {})
     width_in = max(10.0, 0.55 * n + 4.0)
     fig, axes = plt.subplots(2, 2, figsize=(width_in, 9.5), layout="constrained")
     fig.suptitle(title, fontsize=14)
@@ -435,21 +452,35 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
 
     # 2. cost of the rules --------------------------------------------------------------
     ax = axes[0, 1]
-    cost_cols = [c for c in df.columns if str(c).startswith("cost_")]
+    # The lower estimate of the spatial rules' cost is drawn on the bar of the upper one.
+    lower_col = "cost_spatial_rules_lower"
+    cost_cols = [c for c in df.columns if str(c).startswith("cost_") and c != lower_col]
     if cost_cols:
         k = len(cost_cols)
         w = 0.8 / k
         for j, c in enumerate(cost_cols):
             v = pd.to_numeric(df[c], errors="coerce").to_numpy(float) / 1000.0
-            lab = "spatial rules (LP bound - NPV)" if c == "cost_spatial_rules" else c[5:]
+            xs = x - 0.4 + (j + 0.5) * w
             ax.bar(
-                x - 0.4 + (j + 0.5) * w,
+                xs,
                 np.nan_to_num(v),
                 width=w,
-                label=lab,
+                label=words.get(c, c),
                 edgecolor="#333333",
                 lw=0.4,
             )
+            if c == "cost_spatial_rules_upper" and lower_col in df.columns:
+                lo = pd.to_numeric(df[lower_col], errors="coerce").to_numpy(float) / 1000.0
+                ok_lo = np.isfinite(lo)
+                ax.plot(
+                    xs[ok_lo],
+                    lo[ok_lo],
+                    "_",
+                    color="#111111",
+                    ms=max(6.0, 40.0 * w),
+                    mew=2,
+                    label=words.get(lower_col, lower_col),
+                )
         ax.axhline(0, color="#333333", lw=0.8)
         ax.legend(fontsize=8)
     ax.set_ylabel("NPV given up (1000s)")
@@ -466,7 +497,9 @@ def comparison_chart(table: Any, path: str | Path, title: str = "Scenario compar
         if not ran[i] or not vcols:
             continue
         v = pd.to_numeric(df.loc[i, vcols], errors="coerce").to_numpy(float) / 1000.0
-        ax.plot(periods, v, "-o", ms=3, lw=1.3, color=cmap(i % cmap.N), label=names[i])
+        extra = settings_words.get(names[i], "")
+        lab = f"{names[i]}: {extra}" if extra else names[i]
+        ax.plot(periods, v, "-o", ms=3, lw=1.3, color=cmap(i % cmap.N), label=lab)
     ax.set_xlabel("Period")
     ax.set_ylabel("Volume (1000 m³)")
     if periods:

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import contextlib
+import re
 import socket
 import subprocess
 import sys
@@ -61,12 +62,20 @@ def test_compare_local_cluster_writes_table_and_chart(tmp_path: Path) -> None:
     assert r.exit_code == 0, r.output
     t = _check_outputs(out, ["open15", "openoff"])
     assert (t["status"] == "optimal").all()
-    assert t["verify_ok"].all()
+    assert (t["verification"] == "passed").all()
+    # Plain column names (letters, digits, "_"): what spreadsheets, GIS field names and
+    # SQL identifiers accept (common practice, no source).
+    assert all(re.fullmatch(r"[a-z][a-z0-9_]*", c) for c in t.columns), list(t.columns)
+    # The varied setting under its plain name, with the value each scenario ran with.
+    assert t["rules_max_opening_ha"].astype(str).tolist() == ["15.0", "off"]
     # A tighter opening limit cannot raise the optimal NPV (relaxation argument), so its
     # cost against the rule switched off is >= 0.
     t = t.set_index("scenario")
-    assert t.loc["open15", "cost_rules.max_opening_ha"] >= 0
-    assert t.loc["open15", "ref_rules.max_opening_ha"] == "openoff"
+    assert t.loc["open15", "cost_rules_max_opening_ha"] >= 0
+    assert t.loc["open15", "ref_rules_max_opening_ha"] == "openoff"
+    # The optimum lies between the NPV and the best proven bound, so the lower estimate of
+    # the cost of the spatial rules never exceeds the upper one.
+    assert (t["cost_spatial_rules_lower"] <= t["cost_spatial_rules_upper"] + 1e-6).all()
     assert {f"volume_m3_p{k}" for k in (1, 2, 3)} <= set(t.columns)
     assert (out / "open15.gpkg").is_file()
     assert (out / "openoff.gpkg").is_file()
@@ -85,9 +94,16 @@ def test_compare_failed_scenario_exit_code(tmp_path: Path) -> None:
     assert "impossible" in r.output
     assert "infeasible" in r.output
     assert "inputs: shipped" in r.output
+    # One message style: lowercase prefixes, "failed:" for a scenario without a plan.
+    assert "failed: impossible: infeasible" in r.output
+    assert "failed: 1 of 3 scenario(s) did not produce a verified plan: impossible" in r.output
+    assert "FAIL" not in r.output
     t = _check_outputs(out, ["impossible", "open15", "openoff"]).set_index("scenario")
     assert t.loc["impossible", "status"] == "infeasible"
     assert t.loc["open15", "status"] == "optimal"
+    # Verification in words; empty for a scenario without a plan.
+    assert t.loc["open15", "verification"] == "passed"
+    assert pd.isna(t.loc["impossible", "verification"])
 
 
 def test_compare_bad_key_names_it(tmp_path: Path) -> None:
@@ -96,6 +112,58 @@ def test_compare_bad_key_names_it(tmp_path: Path) -> None:
     assert r.exit_code == 1
     assert "rules.max_opening" in r.output
     assert "rules.max_opening_ha" in r.output
+
+
+def _shown(values: pd.Series) -> list[str]:
+    """The console form of a money column: whole numbers with thousands separators; the
+    whole column in k (thousand) once its largest value has 7 digits, in M (million)
+    from 10 digits (SI prefixes k and M, BIPM SI Brochure, 9th ed., table 7)."""
+    top = values.abs().max()
+    div, unit = (1e6, " M") if top >= 1e9 else (1e3, " k") if top >= 1e6 else (1.0, "")
+    return ["-" if pd.isna(v) else f"{v / div:,.0f}".replace("-0", "0") + unit for v in values]
+
+
+@pytest.mark.parametrize("columns", [80, 60])
+def test_compare_console_never_cuts_a_number(tmp_path: Path, monkeypatch, columns: int) -> None:
+    from spatialplan.cli import _common
+
+    # A sweep name makes long scenario names; the price makes NPVs of 7 digits.
+    p = _tiny(tmp_path)
+    text = p.read_text(encoding="utf-8").replace(
+        "[[sweep]]\n", '[[sweep]]\nname = "opening_limit"\n'
+    )
+    p.write_text(text.replace('price_per_m3" = 50.0', 'price_per_m3" = 80.0'), encoding="utf-8")
+    out = tmp_path / "cmp"
+    monkeypatch.setenv("COLUMNS", str(columns))  # rich reads the terminal width from it
+    _common.console.cache_clear()  # the console is made once per process: make it anew
+    try:
+        r = CliRunner().invoke(cli, ["compare", str(p), "--out", str(out)])
+    finally:
+        _common.console.cache_clear()
+    assert r.exit_code == 0, r.output
+    t = pd.read_csv(out / "comparison.csv")
+    assert t["npv"].max() >= 1e6  # the abbreviation is exercised
+    assert "…" not in r.output  # rich marks a cut cell with an ellipsis
+    table_lines = [ln for ln in r.output.splitlines() if ln[:1] in "┏┃┡│└"]
+    assert table_lines
+    assert max(len(ln) for ln in table_lines) <= columns
+    cells = {c.strip() for ln in table_lines for c in re.split("[┃│]", ln)}
+    for v in _shown(t["npv"]):
+        assert v in cells, (v, r.output)
+    for g in t["gap"]:
+        assert f"{100 * g:.2f} %" in cells
+    both = _shown(pd.concat([t["cost_spatial_rules_lower"], t["cost_spatial_rules_upper"]]))
+    lo, hi = both[: len(t)], both[len(t) :]
+    for a, b in zip(lo, hi, strict=True):
+        assert (b if a == b else f"{a} – {b}") in cells, (a, b, r.output)
+    for v in _shown(t["cost_rules_max_opening_ha"]):
+        assert v in cells
+    for s in t["scenario"]:
+        assert s in cells
+    assert {"passed"} <= cells
+    # The words beside the numbers: the cost of the spatial rules includes the solver gap.
+    assert "cost of spatial rules + solver gap (upper estimate)" in " ".join(r.output.split())
+    assert "k = thousand" in r.output
 
 
 def _free_port() -> int:
@@ -206,7 +274,7 @@ def test_compare_by_unit_cli(tmp_path: Path) -> None:
     assert r.exit_code == 0, r.output
     assert "different units" not in r.output
     t = _check_outputs(out, ["open15", "openoff"])
-    assert t["verify_ok"].all()
+    assert (t["verification"] == "passed").all()
     import geopandas as gpd
 
     sched = gpd.read_file(out / "open15.gpkg", layer="schedule")

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+import re
 from pathlib import Path
 
 import networkx as nx
@@ -178,6 +179,39 @@ def test_split_threads_stays_within_cores() -> None:
                 assert (w, t) == (cores, 1)
 
 
+def test_setting_columns_are_plain_and_never_clash(tmp_path: Path) -> None:
+    from spatialplan.scenarios import column_name, comparison_table
+    from spatialplan.settings import flatten_overrides
+
+    write_forest(tmp_path, n=12)
+    scen = load_scenarios(write_scenarios(tmp_path, {"a": {"rules.max_opening_ha": 20}}))
+    fixed = set(comparison_table(scen, {}).columns) - {"rules_max_opening_ha"}
+    # Brute force over every settings key: each maps to its own plain name (letters,
+    # digits, "_"), and none meets a column that is not a setting.
+    names = [column_name(k) for k in flatten_overrides(Settings().to_dict())]
+    assert len(set(names)) == len(names)
+    assert all(re.fullmatch(r"[A-Za-z0-9_]+", n) for n in names)
+    assert not set(names) & fixed
+    assert not [n for n in names if n.startswith(("cost_", "ref_", "volume_m3_p", "area_ha_p"))]
+
+
+def test_best_bound_is_the_tightest_proven_bound() -> None:
+    from spatialplan.scenarios import ScenarioResult, best_bound
+
+    # Both the LP relaxation and CP-SAT's bound are upper bounds on the optimum (LP
+    # relaxation of a MIP; CP-SAT's objective bound), so the smaller one is kept.
+    r = ScenarioResult("a", True, "time_limit", npv=90.0, lp_bound=110.0, cpsat_bound=100.0)
+    r.gap = 0.1
+    assert best_bound(r) == 100.0
+    r.cpsat_bound = None  # only sub-models were solved: the LP bound is all there is
+    assert best_bound(r) == 110.0
+    r.gap = 0.0  # the solver proved the plan optimal: the bound is the NPV itself
+    assert best_bound(r) == 90.0
+    r = ScenarioResult("b", True, "optimal", npv=90.0, lp_bound=89.9999, gap=1e-7)
+    assert best_bound(r) == 90.0  # a bound is never below a plan that reaches it
+    assert np.isnan(best_bound(ScenarioResult("c", False, "infeasible")))
+
+
 # ---------------------------------------------------------------------------------------
 # Dask
 # ---------------------------------------------------------------------------------------
@@ -208,7 +242,19 @@ def test_local_cluster_matches_sequential_runs(tmp_path: Path, client) -> None:
         assert sched.loc[s.name, "npv"] == pytest.approx(npv, rel=1e-9)
 
 
-def test_monotone_in_opening_size_and_flow_tolerance(tmp_path: Path, client) -> None:
+def test_monotone_in_opening_size_and_flow_tolerance(tmp_path: Path, client, monkeypatch) -> None:
+    import spatialplan.charts as charts
+
+    legends: list[str] = []
+    save = charts._save
+
+    def keep_legends(fig, path):  # read the chart's legends before it is written
+        legends.extend(
+            t.get_text() for ax in fig.axes if ax.get_legend() for t in ax.get_legend().get_texts()
+        )
+        return save(fig, path)
+
+    monkeypatch.setattr(charts, "_save", keep_legends)
     write_forest(tmp_path, n=30, seed=7)
     sweeps = [
         '[[sweep]]\nname = "a"\nset = { "rules.flow_tolerance" = 0.2 }\n'
@@ -231,15 +277,49 @@ def test_monotone_in_opening_size_and_flow_tolerance(tmp_path: Path, client) -> 
     assert t.loc["f_tol0.05", "npv"] <= t.loc["f_tol0.2", "npv"] + eps
     assert t.loc["f_tol0.2", "npv"] <= t.loc["f_toloff", "npv"] + eps
     # The aspatial LP relaxation bounds every plan from above (LP relaxation of a MIP).
-    assert (t["cost_spatial_rules"] >= -eps).all()
+    assert (t["cost_spatial_rules_upper"] >= -eps).all()
+    assert (t["cost_spatial_rules_lower"] >= -eps).all()
+    # The optimum lies between the NPV and every proven upper bound (LP bound, CP-SAT's
+    # bound), so the best bound is the smaller bound, never below the NPV.
+    bounds = t[["lp_bound", "cpsat_bound"]].min(axis=1)
+    assert (t["best_bound"] >= t["npv"] - eps).all()
+    assert (t["best_bound"] <= bounds + eps).all()
+    assert t["cost_spatial_rules_upper"].to_numpy() == pytest.approx(t["lp_bound"] - t["npv"])
+    assert t["cost_spatial_rules_lower"].to_numpy() == pytest.approx(
+        t["lp_bound"] - t["best_bound"]
+    )
+    # Proven optimal (gap 0): no solver shortfall, the two estimates agree.
+    proven = t["gap"] == 0
+    assert proven.any()
+    assert t.loc[proven, "cost_spatial_rules_lower"].to_numpy() == pytest.approx(
+        t.loc[proven, "cost_spatial_rules_upper"].to_numpy()
+    )
     # Cost of the rule: NPV of the loosest value at the same other settings minus NPV.
-    c = t["cost_rules.max_opening_ha"]
-    assert t.loc["a_open8", "ref_rules.max_opening_ha"] == "a_openoff"
+    c = t["cost_rules_max_opening_ha"]
+    assert t.loc["a_open8", "ref_rules_max_opening_ha"] == "a_openoff"
     assert c["a_open8"] == pytest.approx(t.loc["a_openoff", "npv"] - t.loc["a_open8", "npv"])
     assert c["a_openoff"] == 0.0
-    assert t.loc["f_tol0.05", "ref_rules.flow_tolerance"] == "f_toloff"
-    assert (t["cost_rules.flow_tolerance"].dropna() >= -eps).all()
+    assert t.loc["f_tol0.05", "ref_rules_flow_tolerance"] == "f_toloff"
+    assert (t["cost_rules_flow_tolerance"].dropna() >= -eps).all()
+    # The varied settings under plain column names, with the values each scenario ran with
+    # (the "f" sweep fixes the opening at 12 ha, the "a" sweep the tolerance at 0.2).
+    assert t.loc["a_open8", "rules_max_opening_ha"] == 8
+    assert t.loc["a_openoff", "rules_max_opening_ha"] == "off"
+    assert t.loc["f_tol0.05", "rules_max_opening_ha"] == 12
+    assert t.loc["a_open8", "rules_flow_tolerance"] == 0.2
+    assert t.loc["f_toloff", "rules_flow_tolerance"] == "off"
+    csv = pd.read_csv(tmp_path / "out" / "comparison.csv")
+    assert not [c for c in csv.columns if not re.fullmatch(r"[A-Za-z0-9_]+", c)]
+    assert list(csv.columns) == list(res.table.columns)
+    # The chart speaks words: readable settings, no dotted keys, the spatial rules' cost
+    # labelled as including the solver gap.
     assert (tmp_path / "out" / "comparison.png").stat().st_size > 10_000
+    assert "cost of spatial rules + solver gap (upper estimate)" in legends
+    assert "cost of spatial rules, lower estimate (best proven bound)" in legends
+    assert {"cost of max opening", "cost of flow tolerance"} <= set(legends)
+    assert "a_open8: max opening 8 ha" in legends
+    assert "f_tol0.05: flow tolerance 5 %" in legends
+    assert not [t for t in legends if "rules." in t or "rules_" in t]
 
 
 def test_infeasible_scenario_reported_others_complete(tmp_path: Path, client) -> None:

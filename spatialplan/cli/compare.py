@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import math
+import re
 import time
+from collections.abc import Iterable
 from typing import Any
 
 import click
@@ -180,27 +183,28 @@ def _run(
 
     def on_result(r: Any) -> None:
         dt = time.perf_counter() - t0
+        name = escape(r.name)
         if r.ok:
-            gap = "-" if r.gap != r.gap else f"{100 * r.gap:.2f} %"
-            mark = "[green]ok[/green]" if r.verify_ok else "[red]FAILED VERIFY[/red]"
+            verified = "verification passed" if r.verify_ok else "verification failed"
             progress.console.print(
-                f"{mark} {escape(r.name)}: {escape(r.status)}, NPV {r.npv:,.0f}, "
-                f"LP bound {r.lp_bound:,.0f}, gap {gap}, {r.wall_s:.1f} s "
+                f"{name}: {escape(r.status)}, NPV {r.npv:,.0f}, LP bound {r.lp_bound:,.0f}, "
+                f"gap {_gap_text(r.gap)}, {verified}, {r.wall_s:.1f} s "
                 f"[dim](at {dt:.0f} s on {escape(r.worker)})[/dim]"
             )
             if not r.verify_ok:
-                progress.console.print(f"    {escape(r.verify_verdict)}")
+                progress.console.print(f"[red]violation:[/red] {name}: {escape(r.verify_verdict)}")
             for m in r.messages:
-                if str(m).lower().startswith("warning"):
-                    progress.console.print(f"    {m}", markup=False)
+                if _is_warning(m):
+                    progress.console.print(f"[yellow]warning:[/yellow] {name}: {escape(_bare(m))}")
         else:
             progress.console.print(
-                f"[red]failed[/red] {escape(r.name)}: {escape(r.status)}: {escape(r.error or '')}"
+                f"[red]failed:[/red] {name}: {escape(r.status)}: {escape(r.error or '')}"
             )
             for d in r.diagnosis:
                 progress.console.print(f"    diagnosis: {escape(str(d))}")
             for m in r.messages:
-                progress.console.print(f"    {escape(m)}", markup=False)
+                word = "warning" if _is_warning(m) else "note"
+                progress.console.print(f"{word}: {name}: {escape(_bare(m))}")
         if state["task"] is not None:
             progress.advance(state["task"])
 
@@ -218,40 +222,145 @@ def _run(
         )
 
 
-def _summary(con: Any, result: Any) -> None:
-    import math
+_PREFIX = re.compile(r"^\s*(warning|note)\b[\s:-]*", re.IGNORECASE)
 
+
+def _is_warning(message: str) -> bool:
+    m = _PREFIX.match(str(message))
+    return m is not None and m.group(1).lower() == "warning"
+
+
+def _bare(message: str) -> str:
+    """A message without its own ``warning``/``note`` prefix (the console adds one)."""
+    return _PREFIX.sub("", str(message), count=1).strip()
+
+
+def _gap_text(gap: float) -> str:
+    if math.isnan(gap):
+        return "-"
+    return "no bound" if math.isinf(gap) else f"{100 * gap:.2f} %"
+
+
+#: Scale of a money column: (divide by, unit) when its largest value has 7+ digits.
+_SCALES = ((1e9, 1e6, " M"), (1e6, 1e3, " k"))
+
+
+def _scale(values: Iterable[Any]) -> tuple[float, str]:
+    """One scale for a whole column, so its values line up and compare."""
+    finite = [abs(float(v)) for v in values if _finite(v)]
+    top = max(finite, default=0.0)
+    for at, div, unit in _SCALES:
+        if top >= at:
+            return div, unit
+    return 1.0, ""
+
+
+def _finite(v: Any) -> bool:
+    try:
+        return math.isfinite(float(v))
+    except (TypeError, ValueError):
+        return False
+
+
+def _money(v: Any, scale: tuple[float, str]) -> str:
+    """``75,003 k`` for 75,003,123 at the scale ``(1e3, " k")``; ``-`` when missing."""
+    if not _finite(v):
+        return "-"
+    div, unit = scale
+    shown = f"{float(v) / div:,.0f}"
+    return ("0" if shown in ("-0", "0") else shown) + unit
+
+
+def _columns(tab: Any, labels: dict[str, str]) -> list[tuple[str, list[str], str]]:
+    """The console columns after ``scenario``: (header, cells, justify)."""
+    cols: list[tuple[str, list[str], str]] = [
+        ("status", [str(v) for v in tab["status"]], "left"),
+        ("verification", [str(v) or "-" for v in tab["verification"]], "left"),
+    ]
+    npv_scale = _scale(tab["npv"])
+    cols.append(("NPV", [_money(v, npv_scale) for v in tab["npv"]], "right"))
+    cols.append(("gap", [_gap_text(float(v)) for v in tab["gap"]], "right"))
+    lo, hi = tab["cost_spatial_rules_lower"], tab["cost_spatial_rules_upper"]
+    scale = _scale([*lo, *hi])
+    spans = []
+    for a, b in zip(lo, hi, strict=True):
+        sa, sb = _money(a, scale), _money(b, scale)
+        spans.append(sb if sa == sb or sa == "-" else f"{sa} – {sb}")
+    cols.append(("cost of spatial rules, lower – upper", spans, "right"))
+    for c in tab.columns:
+        if str(c).startswith("cost_") and not str(c).startswith("cost_spatial_rules"):
+            scale = _scale(tab[c])
+            cols.append((labels.get(c, c), [_money(v, scale) for v in tab[c]], "right"))
+    return cols
+
+
+def _fit(first: int, widths: list[int], total: int) -> list[list[int]]:
+    """Group the columns (by index) into tables no wider than ``total`` characters.
+
+    Every table repeats the first column (``first`` wide); a rich table with the default
+    box and padding is ``sum(widths) + 3 * columns + 1`` wide.
+
+    Examples
+    --------
+    >>> _fit(10, [8, 8, 8], 40)
+    [[0, 1], [2]]
+    """
+    groups: list[list[int]] = [[]]
+    used = first + 4
+    for i, w in enumerate(widths):
+        if groups[-1] and used + w + 3 > total:
+            groups.append([])
+            used = first + 4
+        groups[-1].append(i)
+        used += w + 3
+    return groups
+
+
+def _summary(con: Any, result: Any) -> None:
     from rich.table import Table
 
     tab = result.table
-    t = Table(title=f"Scenario comparison ({result.csv_path})")
-    width = max([len(str(s)) for s in tab["scenario"]] + [8])
-    t.add_column("scenario", no_wrap=True, min_width=width)
-    for c in ("status", "NPV", "LP bound", "gap", "spatial rules cost", "verify"):
-        t.add_column(c, justify="left" if c in ("status", "verify") else "right")
-
-    def num(v: Any, fmt: str = "{:,.0f}") -> str:
-        try:
-            f = float(v)
-        except (TypeError, ValueError):
-            return "-"
-        return "-" if math.isnan(f) else fmt.format(f)
-
-    for _, row in tab.iterrows():
-        t.add_row(
-            str(row["scenario"]),
-            str(row["status"]),
-            num(row["npv"]),
-            num(row["lp_bound"]),
-            num(100 * float(row["gap"]), "{:.2f} %") if row["gap"] == row["gap"] else "-",
-            num(row["cost_spatial_rules"]),
-            "pass" if bool(row["verify_ok"]) else ("FAIL" if row["output"] else "-"),
+    names = [str(s) for s in tab["scenario"]]
+    cols = _columns(tab, dict(result.labels))
+    # Each column as wide as its longest cell (or header word): nothing is cut, and a
+    # table that would not fit the terminal continues in a second one.
+    widths = [
+        max([len(c) for c in cells] + [len(w) for w in header.split()]) for header, cells, _ in cols
+    ]
+    first = max([len(n) for n in names] + [len("scenario")])
+    groups = _fit(first, widths, con.out.width)
+    for g, group in enumerate(groups):
+        title = "Scenario comparison" + (" (continued)" if g else "")
+        t = Table(title=title)
+        t.add_column("scenario", width=first)
+        for i in group:
+            header, _, justify = cols[i]
+            t.add_column(header, width=widths[i], justify=justify)  # type: ignore[arg-type]
+        for r, name in enumerate(names):
+            t.add_row(name, *(cols[i][1][r] for i in group))
+        con.out.print(t)
+    con.out.print(
+        "note: cost of spatial rules = LP bound (no spatial rules) - the optimal NPV, which "
+        "lies between the plan's NPV and its best proven bound: lower = LP bound - best "
+        "bound, upper = LP bound - NPV = cost of spatial rules + solver gap (upper estimate); "
+        "comparison.csv: cost_spatial_rules_lower, cost_spatial_rules_upper",
+        markup=False,
+    )
+    if any(str(c).startswith("cost_") and not str(c).startswith("cost_spatial") for c in tab):
+        con.out.print(
+            "note: cost of <setting> = NPV of the scenario with the loosest value of that "
+            "setting at the same other settings - this NPV; comparison.csv: "
+            "cost_<setting>, with ref_<setting> naming that scenario",
+            markup=False,
         )
-    con.out.print(t)
+    if any(c.endswith((" k", " M")) for _, cells, _ in cols for c in cells):
+        con.out.print("note: k = thousand, M = million", markup=False)
     con.out.print(f"wrote {result.csv_path}", markup=False)
     if result.chart_path:
         con.out.print(f"wrote {result.chart_path}", markup=False)
     if result.failed:
         con.err.print(
-            f"{len(result.failed)} scenario(s) failed: {', '.join(result.failed)}", markup=False
+            f"failed: {len(result.failed)} of {len(names)} scenario(s) did not produce a "
+            f"verified plan: {', '.join(result.failed)}",
+            markup=False,
         )

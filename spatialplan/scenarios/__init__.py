@@ -12,7 +12,9 @@ The parts of the job, one module each:
   load and merge tasks of a by-unit scenario, each returning a :class:`ScenarioResult`;
 * ``cluster`` - the Dask client (:class:`dask_client`, :func:`split_threads`);
 * ``comparison`` - run a scenario set and write the comparison table with the cost of
-  each rule (:func:`run_comparison`, :func:`comparison_table`, :func:`rule_costs`).
+  each rule (:func:`run_comparison`, :func:`comparison_table`, :func:`rule_costs`,
+  :func:`best_bound`); plain column names (:func:`column_name`) and the same columns in
+  words (:func:`setting_label`, :func:`column_labels`).
 
 Settings overrides as written in scenario files (dotted keys, ``"off"``) are applied by
 :func:`spatialplan.settings.apply_overrides`.
@@ -21,11 +23,17 @@ Settings overrides as written in scenario files (dotted keys, ``"off"``) are app
 from spatialplan.scenarios.cluster import dask_client, split_threads
 from spatialplan.scenarios.comparison import (
     RELAX_DIRECTION,
+    SPATIAL_COST_LABELS,
     ComparisonResult,
+    best_bound,
     check_outputs,
+    column_labels,
+    column_name,
     comparison_table,
     rule_costs,
     run_comparison,
+    scenario_labels,
+    setting_label,
 )
 from spatialplan.scenarios.scenario_file import (
     DEFAULT_SHIP_LIMIT_MB,
@@ -49,6 +57,7 @@ from spatialplan.scenarios.units import (
 __all__ = [
     "DEFAULT_SHIP_LIMIT_MB",
     "RELAX_DIRECTION",
+    "SPATIAL_COST_LABELS",
     "ComparisonResult",
     "InputFiles",
     "Scenario",
@@ -56,8 +65,11 @@ __all__ = [
     "ScenarioSet",
     "ScenarioTask",
     "UnitSolve",
+    "best_bound",
     "check_outputs",
     "check_units_settings",
+    "column_labels",
+    "column_name",
     "comparison_table",
     "cross_unit_edges",
     "dask_client",
@@ -67,6 +79,8 @@ __all__ = [
     "rule_costs",
     "run_comparison",
     "run_scenario_task",
+    "scenario_labels",
+    "setting_label",
     "solve_unit",
     "split_threads",
     "subset_inputs",

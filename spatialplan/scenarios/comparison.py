@@ -7,6 +7,12 @@ writes each scenario's GeoPackage into the output folder, then the comparison ta
 (``comparison.csv``, :func:`comparison_table`) with the cost of each rule
 (:func:`rule_costs`) and a chart.
 
+Column names of the table are plain (letters, digits and ``_``) so spreadsheets, GIS
+tools and databases take them as they are: a varied setting ``rules.max_opening_ha``
+is the column ``rules_max_opening_ha`` (:func:`column_name`), its cost
+``cost_rules_max_opening_ha``. The console and the chart label the same columns in words
+(:func:`setting_label`: "max opening 60 ha").
+
 Inputs reach the workers in one of two ways:
 
 * **shared** - workers read the input files from the same paths as the client (local
@@ -22,9 +28,10 @@ from __future__ import annotations
 
 import math
 import os
+import re
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -46,11 +53,17 @@ from spatialplan.settings import OFF, Settings, flatten_overrides
 
 __all__ = [
     "RELAX_DIRECTION",
+    "SPATIAL_COST_LABELS",
     "ComparisonResult",
+    "best_bound",
     "check_outputs",
+    "column_labels",
+    "column_name",
     "comparison_table",
     "rule_costs",
     "run_comparison",
+    "scenario_labels",
+    "setting_label",
 ]
 
 #: Which direction of a setting relaxes the rule: +1 larger is looser (``None`` = rule off
@@ -74,6 +87,137 @@ RELAX_DIRECTION: dict[str, int] = {
     "adjacency.corner_adjacency": 0,
 }
 
+#: Words for the two ends of the cost of the spatial rules (console, chart, docs).
+SPATIAL_COST_LABELS: dict[str, str] = {
+    "cost_spatial_rules_upper": "cost of spatial rules + solver gap (upper estimate)",
+    "cost_spatial_rules_lower": "cost of spatial rules, lower estimate (best proven bound)",
+}
+
+# Unit suffixes of settings names, as read aloud; fractions are shown in per cent.
+_UNITS: tuple[tuple[str, str], ...] = (
+    ("_per_m3", "per m³"),
+    ("_per_ha", "per ha"),
+    ("_m3", "m³"),
+    ("_ha", "ha"),
+    ("_yr", "yr"),
+    ("_pct", "%"),
+    ("_periods", "periods"),
+    ("_m", "m"),
+    ("_s", "s"),
+)
+_FRACTIONS = ("_rate", "_tolerance", "_fraction", "_share")
+_NOT_PLAIN = re.compile(r"[^A-Za-z0-9_]")
+
+
+def column_name(key: str) -> str:
+    """The comparison-table column of a dotted settings key: ``.`` (and any other
+    character that is not a letter, digit or ``_``) becomes ``_``.
+
+    Settings keys are ``<section>.<name>``, so the column keeps the section as a prefix
+    (``rules_``, ``economics_``, ``adjacency_`` ...) and cannot meet a fixed column such
+    as ``status`` or ``npv``.
+
+    Examples
+    --------
+    >>> column_name("rules.max_opening_ha")
+    'rules_max_opening_ha'
+    >>> column_name("economics.discount_rate")
+    'economics_discount_rate'
+    """
+    return _NOT_PLAIN.sub("_", key)
+
+
+def _is_off(value: Any) -> bool:
+    return value is None or (isinstance(value, str) and value == OFF)
+
+
+_NO_VALUE: Any = object()
+
+
+def _words(key: str) -> tuple[str, str, bool]:
+    """(name in words, unit, is a fraction) of a dotted settings key."""
+    name = key.rsplit(".", 1)[-1]
+    unit = ""
+    for suffix, word in _UNITS:
+        if name.endswith(suffix) and len(name) > len(suffix):
+            name, unit = name[: -len(suffix)], word
+            break
+    fraction = not unit and name.endswith(_FRACTIONS)
+    if fraction:
+        unit = "%"
+    return name.replace("green_up", "green-up").replace("_", " "), unit, fraction
+
+
+def setting_label(key: str, value: Any = _NO_VALUE) -> str:
+    """A settings key (and a value) in words, for legends and table headers.
+
+    The section prefix is dropped, the unit suffix is spoken after the value, fractions
+    (rates, tolerances, shares) are shown in per cent; ``None`` or ``"off"`` reads
+    ``off``, ``True``/``False`` read ``on``/``off``. Without a value the unit is put in
+    brackets.
+
+    Examples
+    --------
+    >>> setting_label("rules.max_opening_ha", 60)
+    'max opening 60 ha'
+    >>> setting_label("rules.max_opening_ha", "off")
+    'max opening off'
+    >>> setting_label("economics.discount_rate", 0.03)
+    'discount rate 3 %'
+    >>> setting_label("rules.max_opening_ha")
+    'max opening (ha)'
+    """
+    words, unit, fraction = _words(key)
+    if value is _NO_VALUE:
+        return f"{words} ({unit})" if unit else words
+    if _is_off(value):
+        return f"{words} off"
+    if isinstance(value, bool):
+        return f"{words} {'on' if value else 'off'}"
+    if isinstance(value, int | float):
+        if fraction:
+            return f"{words} {100 * float(value):,.4g} %"
+        shown = f"{value:,}" if isinstance(value, int) else f"{value:,.6g}"
+        return f"{words} {shown} {unit}".rstrip()
+    return f"{words} {value} {unit}".rstrip()
+
+
+def scenario_labels(scen: ScenarioSet) -> dict[str, str]:
+    """Scenario name -> the settings that define it, in words (chart legends).
+
+    Examples
+    --------
+    A scenario ``open60`` that sets ``rules.max_opening_ha = 60`` is labelled
+    ``"max opening 60 ha"``; a scenario that varies nothing gets an empty label.
+    """
+    return {
+        s.name: ", ".join(setting_label(k, v) for k, v in s.varied.items()) for s in scen.scenarios
+    }
+
+
+def column_labels(table: pd.DataFrame, scen: ScenarioSet) -> dict[str, str]:
+    """Column of :func:`comparison_table` -> its words in the console and the chart.
+
+    Covers the varied settings, their costs and the two ends of the cost of the spatial
+    rules (:data:`SPATIAL_COST_LABELS`).
+
+    Examples
+    --------
+    ``rules_max_opening_ha`` reads ``max opening (ha)``, ``cost_rules_max_opening_ha``
+    reads ``cost of max opening``.
+    """
+    keys = {column_name(k): k for s in scen.scenarios for k in _flat_settings(s.settings)}
+    out: dict[str, str] = {}
+    for c in table.columns:
+        c = str(c)
+        if c in SPATIAL_COST_LABELS:
+            out[c] = SPATIAL_COST_LABELS[c]
+        elif c.startswith("cost_") and c[5:] in keys:
+            out[c] = f"cost of {_words(keys[c[5:]])[0]}"
+        elif c in keys:
+            out[c] = setting_label(keys[c])
+    return out
+
 
 @dataclass
 class ComparisonResult:
@@ -84,6 +228,9 @@ class ComparisonResult:
     csv_path: Path
     chart_path: Path | None
     mode: str  # "shared" or "shipped"
+    #: Column -> words (:func:`column_labels`), scenario -> its settings in words.
+    labels: dict[str, str] = field(default_factory=dict)
+    scenario_labels: dict[str, str] = field(default_factory=dict)
 
     @property
     def failed(self) -> list[str]:
@@ -99,15 +246,54 @@ def _relax_score(value: Any, direction: int) -> float:
     return direction * float(value)
 
 
+def best_bound(result: ScenarioResult) -> float:
+    """The tightest proven upper bound on a scenario's optimal NPV.
+
+    The smaller of the aspatial LP bound and CP-SAT's bound on the full model (both
+    bound the optimum from above), never below the plan's own NPV; the NPV itself when
+    the solver's gap is 0 (the plan is proven optimal). NaN for a scenario without a
+    plan or without any finite bound.
+
+    Examples
+    --------
+    >>> from spatialplan.scenarios import ScenarioResult
+    >>> r = ScenarioResult("a", True, "time_limit", npv=90.0, lp_bound=110.0,
+    ...                    cpsat_bound=100.0, gap=0.1)
+    >>> best_bound(r)
+    100.0
+    """
+    if not result.ok or not math.isfinite(result.npv):
+        return math.nan
+    if result.gap == 0.0:
+        return float(result.npv)
+    bounds = [
+        float(b)
+        for b in (result.lp_bound, result.cpsat_bound)
+        if b is not None and math.isfinite(b)
+    ]
+    return max(float(result.npv), min(bounds)) if bounds else math.nan
+
+
 def rule_costs(scen: ScenarioSet, results: Mapping[str, ScenarioResult]) -> pd.DataFrame:
     """The NPV cost of each rule per scenario.
 
-    ``cost_spatial_rules`` is the aspatial LP bound minus the scenario's NPV (the LP
-    keeps the flow rules but drops opening size, green-up and integrality, so it is the
-    no-spatial-rules reference). For every rule key that differs between scenarios and
-    has a known relaxed side (:data:`RELAX_DIRECTION`, or ``relaxed`` in a sweep),
-    ``cost_<key>`` is the NPV of the scenario with the loosest value of that key at the
-    same other settings minus this scenario's NPV, and ``ref_<key>`` names that scenario.
+    The cost of the spatial rules is measured against the aspatial LP bound (the LP
+    keeps the flow rules but drops opening size, green-up, adjacency and integrality, so
+    it is the no-spatial-rules reference). The scenario's optimal NPV lies between its
+    NPV and its best proven bound (:func:`best_bound`), so that cost is given as two
+    columns:
+
+    * ``cost_spatial_rules_upper`` = LP bound - NPV: the cost of the spatial rules plus
+      the solver's own shortfall (gap), an upper estimate;
+    * ``cost_spatial_rules_lower`` = LP bound - best proven bound, a lower estimate; the
+      two are equal when the plan is proven optimal, and the lower one is 0 when the
+      only bound is the LP bound itself.
+
+    For every rule key that differs between scenarios and has a known relaxed side
+    (:data:`RELAX_DIRECTION`, or ``relaxed`` in a sweep), ``cost_<column>`` is the NPV of
+    the scenario with the loosest value of that key at the same other settings minus
+    this scenario's NPV, and ``ref_<column>`` names that scenario (``<column>`` is
+    :func:`column_name` of the key).
 
     Returns
     -------
@@ -123,9 +309,12 @@ def rule_costs(scen: ScenarioSet, results: Mapping[str, ScenarioResult]) -> pd.D
     keys = sorted({k for n in names for k in flat[n]})
     varying = [k for k in keys if len({repr(flat[n].get(k)) for n in names}) > 1]
     out = pd.DataFrame(index=pd.Index(names, name="scenario"))
-    npv = {n: results[n].npv if n in results and results[n].ok else math.nan for n in names}
-    lp = {n: results[n].lp_bound if n in results and results[n].ok else math.nan for n in names}
-    out["cost_spatial_rules"] = [lp[n] - npv[n] for n in names]
+    ran = {n: n in results and results[n].ok for n in names}
+    npv = {n: results[n].npv if ran[n] else math.nan for n in names}
+    lp = {n: results[n].lp_bound if ran[n] else math.nan for n in names}
+    best = {n: best_bound(results[n]) if ran[n] else math.nan for n in names}
+    out["cost_spatial_rules_upper"] = [lp[n] - npv[n] for n in names]
+    out["cost_spatial_rules_lower"] = [lp[n] - best[n] for n in names]
     for k in varying:
         if k not in direction:
             continue
@@ -136,18 +325,44 @@ def rule_costs(scen: ScenarioSet, results: Mapping[str, ScenarioResult]) -> pd.D
         cost, ref = [], []
         for n in names:
             group = groups[repr([flat[n].get(o) for o in others])]
-            ran = [m for m in group if math.isfinite(npv[m])]
-            if len({repr(flat[m].get(k)) for m in group}) < 2 or not ran:
+            done = [m for m in group if math.isfinite(npv[m])]
+            if len({repr(flat[m].get(k)) for m in group}) < 2 or not done:
                 cost.append(math.nan)
                 ref.append("")
                 continue
-            best = max(ran, key=lambda m: _relax_score(flat[m].get(k), direction[k]))
-            cost.append(npv[best] - npv[n])
-            ref.append(best)
+            loosest = max(done, key=lambda m: _relax_score(flat[m].get(k), direction[k]))
+            cost.append(npv[loosest] - npv[n])
+            ref.append(loosest)
         if any(r for r in ref):
-            out[f"cost_{k}"] = cost
-            out[f"ref_{k}"] = ref
+            out[f"cost_{column_name(k)}"] = cost
+            out[f"ref_{column_name(k)}"] = ref
     return out
+
+
+#: Columns of :func:`comparison_table` that are not settings (period columns aside).
+_FIXED_COLUMNS = frozenset(
+    {
+        "scenario",
+        "origin",
+        "status",
+        "error",
+        "diagnosis",
+        "npv",
+        "lp_bound",
+        "cpsat_bound",
+        "best_bound",
+        "gap",
+        "solve_time_s",
+        "wall_s",
+        "verification",
+        "verify_verdict",
+        "area_harvested_ha",
+        "volume_harvested_m3",
+        "largest_opening_ha",
+        "output",
+        "worker",
+    }
+)
 
 
 def _flat_settings(s: Settings) -> dict[str, Any]:
@@ -155,46 +370,76 @@ def _flat_settings(s: Settings) -> dict[str, Any]:
     return flatten_overrides(s.to_dict())
 
 
+def _shown(value: Any) -> Any:
+    """A setting as the table shows it: ``off`` for a rule switched off, lists as text."""
+    if _is_off(value):
+        return "off"
+    if isinstance(value, list | tuple | dict):
+        return str(value)
+    return value
+
+
 def comparison_table(
     scen: ScenarioSet, results: Mapping[str, ScenarioResult], out_dir: Path | None = None
 ) -> pd.DataFrame:
     """One row per scenario: what it set, how it ran, NPV, bounds, flows, cost of rules.
 
-    Columns: ``scenario``, ``origin``, the varied settings (``set:<key>``), ``status``,
-    ``error``, ``diagnosis``, ``npv``, ``lp_bound``, ``cpsat_bound``, ``gap``,
-    ``solve_time_s``, ``wall_s``, ``verify_ok``, ``verify_verdict``,
-    ``area_harvested_ha``, ``volume_harvested_m3``, ``largest_opening_ha``,
-    ``volume_m3_p<k>`` and ``area_ha_p<k>`` per period, the cost columns of
-    :func:`rule_costs`, ``output`` and ``worker``.
+    Columns (all plain names: letters, digits, ``_``):
+
+    * ``scenario``, ``origin``;
+    * one column per varied setting, named by :func:`column_name` (``rules.max_opening_ha``
+      -> ``rules_max_opening_ha``), holding the value the scenario ran with (``off`` for
+      a rule switched off);
+    * ``status``, ``error``, ``diagnosis``, ``npv``, ``lp_bound``, ``cpsat_bound``,
+      ``best_bound`` (:func:`best_bound`), ``gap``, ``solve_time_s``, ``wall_s``;
+    * ``verification`` (``passed`` / ``failed``; empty without a plan) and
+      ``verify_verdict``;
+    * ``area_harvested_ha``, ``volume_harvested_m3``, ``largest_opening_ha``,
+      ``volume_m3_p<k>`` and ``area_ha_p<k>`` per period;
+    * the cost columns of :func:`rule_costs` (``cost_spatial_rules_upper``,
+      ``cost_spatial_rules_lower``, ``cost_<column>``, ``ref_<column>``);
+    * ``output`` and ``worker``.
+
+    Raises
+    ------
+    ValueError
+        Two columns would get the same name (never for valid settings keys, which all
+        keep their section prefix).
     """
     varied_keys: list[str] = []
     for s in scen.scenarios:
         for k in s.varied:
             if k not in varied_keys:
                 varied_keys.append(k)
+    # Settings keys keep their section prefix, so this never fires for valid keys.
+    names = [column_name(k) for k in varied_keys]
+    clash = sorted({c for c in names if names.count(c) > 1} | (set(names) & _FIXED_COLUMNS))
+    if clash:
+        msg = f"comparison table: the setting column {clash[0]!r} clashes with another column"
+        raise ValueError(msg)
     P = max((s.settings.horizon.periods for s in scen.scenarios), default=0)
     rows = []
     for s in scen.scenarios:
         r = results.get(s.name) or ScenarioResult(s.name, False, "not_run", error="not run")
         row: dict[str, Any] = {"scenario": s.name, "origin": s.origin}
+        flat = _flat_settings(s.settings)
         for k in varied_keys:
-            v = s.overrides.get(k, "")
-            row[f"set:{k}"] = "off" if isinstance(v, str) and v == OFF else v
-        row.update(
-            {
-                "status": r.status,
-                "error": r.error or "",
-                "diagnosis": " | ".join(r.diagnosis),
-                "npv": r.npv,
-                "lp_bound": r.lp_bound,
-                "cpsat_bound": math.nan if r.cpsat_bound is None else r.cpsat_bound,
-                "gap": r.gap,
-                "solve_time_s": r.solve_time_s,
-                "wall_s": r.wall_s,
-                "verify_ok": r.verify_ok if r.ok else False,
-                "verify_verdict": r.verify_verdict,
-            }
-        )
+            # The value the scenario ran with, also where only another scenario set the key.
+            row[column_name(k)] = _shown(flat.get(k, s.varied.get(k, "")))
+        row |= {
+            "status": r.status,
+            "error": r.error or "",
+            "diagnosis": " | ".join(r.diagnosis),
+            "npv": r.npv,
+            "lp_bound": r.lp_bound,
+            "cpsat_bound": math.nan if r.cpsat_bound is None else r.cpsat_bound,
+            "best_bound": best_bound(r),
+            "gap": r.gap,
+            "solve_time_s": r.solve_time_s,
+            "wall_s": r.wall_s,
+            "verification": ("passed" if r.verify_ok else "failed") if r.ok else "",
+            "verify_verdict": r.verify_verdict,
+        }
         pdf = r.periods
         vols = np.full(P, np.nan)
         areas = np.full(P, np.nan)
@@ -424,6 +669,8 @@ def run_comparison(
             raise
 
     table = comparison_table(scen, results)
+    labels = column_labels(table, scen)
+    legend = scenario_labels(scen)
     csv_path = out / "comparison.csv"
     with atomic_path(csv_path) as tmp:
         table.to_csv(tmp, index=False)
@@ -432,6 +679,10 @@ def run_comparison(
         from spatialplan.charts import comparison_chart
 
         chart_path = comparison_chart(
-            table, out / "comparison.png", title=f"Scenario comparison: {scen.path.name}"
+            table,
+            out / "comparison.png",
+            title=f"Scenario comparison: {scen.path.name}",
+            column_labels=labels,
+            scenario_labels=legend,
         )
-    return ComparisonResult(table, results, csv_path, chart_path, mode)
+    return ComparisonResult(table, results, csv_path, chart_path, mode, labels, legend)
