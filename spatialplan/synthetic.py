@@ -8,12 +8,16 @@ and fires). Nothing here is real data.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import geopandas as gpd
 import numpy as np
 import pandas as pd
 import shapely
 
-__all__ = ["smooth_field", "synthetic_yield_table", "voronoi_forest"]
+from spatialplan.problem import Prescriptions
+
+__all__ = ["smooth_field", "synthetic_prescriptions", "synthetic_yield_table", "voronoi_forest"]
 
 
 def smooth_field(
@@ -156,3 +160,134 @@ def synthetic_yield_table(
                 {"stratum": s, "age": age, "volume": round(vol, 1), "diameter": round(dia, 1)}
             )
     return pd.DataFrame(rows)
+
+
+def _sequences(periods: int, gap: int, max_harvests: int) -> list[tuple[int, ...]]:
+    """Harvest-period sequences ``q1 < q2 < ...`` with ``q_{j+1} - q_j >= gap``, sorted."""
+    out: list[tuple[int, ...]] = []
+
+    def grow(seq: tuple[int, ...]) -> None:
+        out.append(seq)
+        if len(seq) < max_harvests:
+            for q in range(seq[-1] + gap, periods + 1):
+                grow((*seq, q))
+
+    if max_harvests > 0:
+        for q in range(1, periods + 1):
+            grow((q,))
+    return sorted(out)
+
+
+def synthetic_prescriptions(
+    age_start: np.ndarray,
+    volume_fn: Callable[[np.ndarray, np.ndarray], np.ndarray],
+    periods: int,
+    period_length_yr: float,
+    min_age_yr: float,
+    max_harvests: int,
+    rate: float,
+    price: float,
+    old_forest_age_yr: float | None = None,
+    harvestable: np.ndarray | None = None,
+) -> Prescriptions:
+    """Every clear-cut sequence over the horizon whose harvests all meet a minimum age.
+
+    Harvests happen at mid-period ``t = (p - 0.5) L``. The first harvest of stand ``i`` in
+    ``p`` needs ``age_start[i] + t >= min_age_yr``; the crop regenerates at once, so a
+    harvest in ``p`` after one in ``q`` finds age ``(p - q) L``, which must meet the minimum
+    too. Value of a harvest: ``volume x price x (1 + rate)^-t``; no costs, no ending value.
+    For tests, benchmarks and the demo only (the pipeline builds prescriptions from yield
+    tables and economics).
+
+    Parameters
+    ----------
+    age_start
+        (n,) ages at the start.
+    volume_fn
+        ``volume_fn(stand, age)`` -> volume per ha, vectorised over equal-length arrays
+        of stand positions and ages.
+    periods, period_length_yr
+        Horizon.
+    min_age_yr
+        Minimum age at every harvest.
+    max_harvests
+        Most harvests per prescription (1 gives the single-harvest model).
+    rate, price
+        Discount rate and price per m3.
+    old_forest_age_yr
+        Age from which a stand counts as old forest (fills ``old_mask``).
+    harvestable
+        (n,) bool; stands marked False get only the no-harvest prescription.
+
+    Examples
+    --------
+    >>> rx = synthetic_prescriptions(np.array([30.0]), lambda i, a: 2.0 * a, 4, 10.0,
+    ...                              min_age_yr=20.0, max_harvests=2, rate=0.0, price=1.0)
+    >>> [rx.periods_of(k).tolist() for k in range(rx.n_prescriptions)]
+    [[], [1], [1, 3], [1, 4], [2], [2, 4], [3], [4]]
+    >>> rx.harvest_volume_m3_ha[rx.harvest_start[2]:rx.harvest_start[3]].tolist()
+    [70.0, 40.0]
+    """
+    age0 = np.asarray(age_start, dtype=np.float64)
+    n, P, L = len(age0), int(periods), float(period_length_yr)
+    gap = max(1, int(np.ceil(min_age_yr / L - 1e-9)))
+    seqs = _sequences(P, gap, max_harvests)
+    first = np.array([q[0] for q in seqs], dtype=np.int64)
+    lens = np.array([len(q) for q in seqs], dtype=np.int64)
+    flat = np.array([p for q in seqs for p in q], dtype=np.int64)
+    s_off = np.concatenate([[0], np.cumsum(lens)])
+    # First eligible period of each stand: sequences are sorted by their first period.
+    mid = (np.arange(1, P + 1) - 0.5) * L
+    ok = age0[:, None] + mid[None, :] >= min_age_yr - 1e-9
+    q_min = np.where(ok.any(axis=1), ok.argmax(axis=1) + 1, P + 1)
+    if harvestable is not None:
+        q_min = np.where(np.asarray(harvestable, dtype=bool), q_min, P + 1)
+    s_from = np.searchsorted(first, q_min)
+    count = 1 + len(seqs) - s_from
+    stand_start = np.concatenate([[0], np.cumsum(count)]).astype(np.int64)
+    K = int(stand_start[-1])
+    stand = np.repeat(np.arange(n), count)
+    seq = np.full(K, -1, dtype=np.int64)
+    slot = np.ones(K, dtype=bool)
+    slot[stand_start[:-1]] = False
+    seq[slot] = np.concatenate([np.arange(a, len(seqs)) for a in s_from])
+    nh = np.where(seq >= 0, lens[np.maximum(seq, 0)], 0)
+    harvest_start = np.concatenate([[0], np.cumsum(nh)]).astype(np.int64)
+    owner = np.repeat(np.arange(K), nh)
+    within = np.arange(len(owner)) - harvest_start[owner]
+    hp = flat[s_off[seq[owner]] + within]
+    prev = np.where(within > 0, np.roll(hp, 1), 0)
+    h_stand = stand[owner]
+    age = np.where(within > 0, (hp - prev) * L, age0[h_stand] + (hp - 0.5) * L)
+    vol = np.asarray(volume_fn(h_stand, age), dtype=np.float64)
+    h_npv = vol * price * (1.0 + rate) ** -((hp - 0.5) * L)
+    last = np.zeros(K, dtype=np.int64)
+    last[owner] = hp  # harvests are in period order: the last write is the last harvest
+    end_age = np.where(last > 0, (P - last + 0.5) * L, age0[stand] + P * L)
+    one = np.uint64(1)
+    bits = np.left_shift(one, (hp - 1).astype(np.uint64))
+    mask = np.zeros(K, dtype=np.uint64)
+    np.bitwise_or.at(mask, owner, bits)
+    old = np.zeros(K, dtype=np.uint64)
+    if old_forest_age_yr is not None:
+        mark = np.zeros((K, P), dtype=np.int16)
+        mark[owner, hp - 1] = hp
+        lastq = np.maximum.accumulate(mark, axis=1)  # last harvest at or before p
+        cols = np.arange(1, P + 1)[None, :]
+        age_p = np.where(lastq > 0, (cols - lastq) * L, age0[stand][:, None] + mid[None, :])
+        weights = np.left_shift(one, np.arange(P, dtype=np.uint64))
+        is_old = age_p >= old_forest_age_yr - 1e-9
+        old = (is_old.astype(np.uint64) * weights[None, :]).sum(axis=1, dtype=np.uint64)
+    return Prescriptions(
+        stand_start=stand_start,
+        harvest_start=harvest_start,
+        harvest_period=hp.astype(np.int16),
+        harvest_volume_m3_ha=vol,
+        harvest_npv_per_ha=h_npv,
+        npv_per_ha=np.bincount(owner, weights=h_npv, minlength=K),
+        ending_value_per_ha=np.zeros(K),
+        harvest_mask=mask,
+        old_mask=old,
+        ending_volume_m3_ha=np.asarray(volume_fn(stand, end_age), dtype=np.float64),
+        ending_age_yr=end_age,
+    )

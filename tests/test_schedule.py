@@ -482,7 +482,7 @@ def test_local_search_plans_pass_independent_checker(soft: bool) -> None:
         for seed in (1, 2):
             res = anneal(
                 prep,
-                np.zeros(pr.n_stands, dtype=np.int64),
+                prep.empty_plan(),  # every stand on its no-harvest prescription
                 seed=seed,
                 round_moves=8_000,
                 patience=2,
@@ -491,14 +491,14 @@ def test_local_search_plans_pass_independent_checker(soft: bool) -> None:
             )
             assert rule_breaks(pr, res.period) == [], (k, seed)
             # The recorded NPV is the plan's NPV, and no legal plan beats the brute force.
-            assert res.npv == pytest.approx(plan_npv(pr, res.period), rel=1e-9, abs=1e-6)
+            assert res.npv == pytest.approx(plan_npv(pr, res.prescription), rel=1e-9, abs=1e-6)
             assert res.npv <= best * (1 + 1e-9) + 1e-6
             assert res.npv >= 0.0  # started from the empty plan
             # (case 3: the empty plan breaks the volume floor; only legal plans are recorded)
         if not soft:  # the hard-opening search finds a positive plan on each of these
             assert seen
-        for per in seen:  # every intermediate best plan is legal too
-            assert rule_breaks(pr, per) == [], k
+        for plan in seen:  # every intermediate best plan is legal too
+            assert rule_breaks(pr, prep.first_period(plan)) == [], k
 
 
 def _voronoi_problem(n: int, seed: int, periods: int = 5) -> PlanProblem:
@@ -524,7 +524,7 @@ def test_local_search_is_deterministic_for_a_seed() -> None:
 
     pr = _voronoi_problem(80, 3)
     prep = prepare(pr)
-    start = np.zeros(pr.n_stands, dtype=np.int64)
+    start = prep.empty_plan()
     a = anneal(prep, start, seed=11, round_moves=20_000, max_rounds=3)
     b = anneal(prep, start, seed=11, round_moves=20_000, max_rounds=3)
     c = anneal(prep, start, seed=12, round_moves=20_000, max_rounds=3)
@@ -543,7 +543,7 @@ def test_local_search_never_worsens_the_start() -> None:
     prep = prepare(pr)
     lp = solve_lp(pr, rows=prep.rows)
     start, info = greedy_plan(prep, lp.x, lp.price, float("inf"), order="balanced")
-    assert info["legal"] and rule_breaks(pr, start) == []
+    assert info["legal"] and rule_breaks(pr, prep.first_period(start)) == []
     start_npv = plan_npv(pr, start)
     for seed in (1, 2, 3):
         # A cold search (tiny temperature, one short round) must still keep the start.

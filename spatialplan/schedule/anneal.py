@@ -1,28 +1,33 @@
-"""Local search over stand-period assignments: simulated annealing with hard openings.
+"""Local search over prescription choices: simulated annealing with hard openings.
 
-The state is a full plan (one period or "not harvested" per stand). Moves, drawn at random:
+The state is a full plan (one prescription per stand). Every move changes the
+prescription of one or two stands; drawn at random:
 
-* *reassign* one stand to another of its eligible periods, to the period before or after
-  its current one, or to "not harvested";
-* *swap* the periods of two stands: a neighbour (shifts an opening) or any stand (keeps the
-  period volumes close while changing where the cuts fall).
+* *reassign* one stand: to any of its prescriptions, or to the one whose harvests are all
+  one period earlier or later, or whose first or last harvest is one period earlier or
+  later (for a single harvest these are the same move; shifting a harvest out of period 1
+  means no harvest);
+* *swap* the harvest periods of two stands: a neighbour (shifts an opening) or any stand
+  (keeps the period volumes close while changing where the cuts fall).
 
 The spatial rules are hard: a move is applied only if every opening it touches stays within
-the maximum (a search over the open neighbours in each period the new harvest keeps open,
-stopped as soon as the group passes the maximum area) and, with the unit restriction, no
-open neighbour. The rule rows (flow, targets, ending inventory) are a penalty in the
-acceptance test whose weight rises within a round, so the search may cross slightly
-infeasible plans to shift volume between periods; only plans that meet every row with a
-small margin are recorded as best. Acceptance is the Metropolis rule of simulated annealing
-(Kirkpatrick, Gelatt & Vecchi 1983, Science 220:671-680) with geometric cooling; its use for
+the maximum (a search over the open neighbours in each period the new prescription keeps
+the stand open, stopped as soon as the group passes the maximum area) and, with the unit
+restriction, no open neighbour. Openness comes from per-prescription bit masks. The rule
+rows (flow, targets, ending inventory, old forest) are a penalty in the acceptance test
+whose weight rises within a round, so the search may cross slightly infeasible plans to
+shift volume between periods; only plans that meet every row with a small margin are
+recorded as best. Acceptance is the Metropolis rule of simulated annealing (Kirkpatrick,
+Gelatt & Vecchi 1983, Science 220:671-680) with geometric cooling; its use for
 adjacency-constrained harvest scheduling goes back to Lockwood & Moore (1993, Canadian
 Journal of Forest Research 23:468-478, from memory).
 
 Each round cools from a start temperature to a low one over a fixed number of moves,
 starting from the best plan; rounds repeat until the deadline or until a few rounds in a
-row bring nothing. NPV and row left-hand sides are updated incrementally per move (O(rows)),
-so the loop runs tens of thousands of moves per second in pure Python. With a fixed seed
-and move budget the result is deterministic.
+row bring nothing. NPV and row left-hand sides are updated incrementally per move (O(rows),
+from a ``(K, R)`` table of row coefficients against the no-harvest prescription), so the
+loop runs tens of thousands of moves per second in pure Python. With a fixed seed and move
+budget the result is deterministic.
 """
 
 from __future__ import annotations
@@ -47,7 +52,8 @@ ROW_MARGIN = 1e-7
 class AnnealResult:
     """What :func:`anneal` found."""
 
-    period: np.ndarray  # best feasible plan (the start plan when nothing better was found)
+    prescription: np.ndarray  # best feasible plan (the start plan when nothing better was found)
+    period: np.ndarray  # its first harvest period per stand (0 = none)
     npv: float
     start_npv: float
     moves: int = 0
@@ -58,15 +64,47 @@ class AnnealResult:
     history: list = field(default_factory=list)  # (round, moves so far, best npv)
 
 
+def _bits(mask: int) -> tuple[int, ...]:
+    """0-based period columns set in a mask."""
+    out = []
+    while mask:
+        low = mask & -mask
+        out.append(low.bit_length() - 1)
+        mask ^= low
+    return tuple(out)
+
+
+def _shifted(mask: int, how: str, up: bool, P: int) -> int:
+    """The harvest mask with all, the first or the last harvest one period later/earlier.
+
+    Returns -1 when the shift leaves the horizon at its end; a harvest shifted out of
+    period 1 is dropped (the single-harvest move "period 1 -> no harvest").
+    """
+    if how == "all":
+        if up:
+            return -1 if mask >> (P - 1) else mask << 1
+        return mask >> 1
+    bit = mask & -mask if how == "first" else 1 << (mask.bit_length() - 1)
+    rest = mask ^ bit
+    if up:
+        nb = bit << 1
+        if nb >> P or nb & rest:
+            return -1
+        return rest | nb
+    nb = bit >> 1
+    if nb & rest:
+        return -1
+    return rest | nb
+
+
 class _State:
     """Plan, openness per period and row left-hand sides, all updated in place."""
 
-    def __init__(self, prep: Prep, period: np.ndarray) -> None:
+    def __init__(self, prep: Prep, plan: np.ndarray) -> None:
         n, P = prep.n, prep.P
         self.n, self.P = n, P
         self.nbrs = [prep.indices[prep.indptr[i] : prep.indptr[i + 1]].tolist() for i in range(n)]
         self.area = prep.opening_area.astype(float).tolist()
-        self.green = prep.green.astype(int).tolist()
         self.fixed = [bytearray(prep.fixed_open[:, p].astype(np.uint8).tobytes()) for p in range(P)]
         self.open = [bytearray(b) for b in self.fixed]
         self.hop = [bytearray(n) for _ in range(P)]  # harvest-open
@@ -75,65 +113,90 @@ class _State:
         self.mx = math.inf if mx is None else float(mx) * (1 - 1e-12)
         self.unit = bool(prep.unit)
         self.spatial = prep.spatial
-        el = prep.eligible
-        self.elig = [[True, *row] for row in el.tolist()]
-        self.options = [[0, *(np.nonzero(el[i])[0] + 1).tolist()] for i in range(n)]
-        v = np.where(el, prep.value, 0.0)
-        self.val = [[0.0, *row] for row in v.tolist()]
+        self.null = prep.null.tolist()
+        self.open_mask = prep.open_mask
+        # Open periods of every prescription (tuples shared between equal masks).
+        uniq, inv = np.unique(prep.open_mask, return_inverse=True)
+        tup = [_bits(int(m)) for m in uniq.tolist()]
+        self.obits = [tup[u] for u in inv.ravel().tolist()]
+        self.val = prep.rel_value.tolist()  # against the no-harvest prescription
+        self.base_value = float(prep.value[prep.null].sum())
+        allowed = prep.allowed
+        stand_of = prep.stand_of
+        ks = np.nonzero(allowed)[0]
+        split = np.searchsorted(stand_of[ks], np.arange(1, n))
+        self.options = [a.tolist() for a in np.split(ks, split)]
+        hm = prep.harvest_mask.tolist()
+        self.hmask = hm
+        # Per stand: harvest mask -> best allowed prescription with it (for swaps, shifts).
+        self.lut: list[dict[int, int]] = []
+        val = self.val
+        for opts in self.options:
+            d: dict[int, int] = {}
+            for k in opts:
+                m = hm[k]
+                if m not in d or val[k] > val[d[m]]:
+                    d[m] = k
+            self.lut.append(d)
+        multi = bool(np.any(np.diff(prep.rx.harvest_start) > 1))
+        self.shift: dict[tuple[str, bool], list[int]] = {}
+        for how in ("all", "first", "last") if multi else ("all",):
+            for up in (False, True):
+                out = [-1] * len(hm)
+                for i, opts in enumerate(self.options):
+                    d = self.lut[i]
+                    for k in opts:
+                        if hm[k]:
+                            m2 = _shifted(hm[k], how, up, P)
+                            if m2 >= 0:
+                                out[k] = d.get(m2, -1)
+                self.shift[(how, up)] = out
+        if not multi:
+            for up in (False, True):
+                self.shift[("first", up)] = self.shift[("last", up)] = self.shift[("all", up)]
         rows = prep.rows
         k = len(rows)
         self.k = k
-        self.D = np.zeros((n, P + 1, k))
-        const = np.zeros(k)
-        rhs = np.zeros(k)
-        margin = np.zeros(k)
-        for r, row in enumerate(rows):
-            d, c = row.x_coefs(n, P)
-            self.D[:, 1:, r] = np.where(el, d, 0.0)
-            const[r] = c
-            rhs[r] = row.rhs
-            margin[r] = ROW_MARGIN * max(abs(row.rhs), row.scale_ref)
-        self.const = const
-        self.cap = rhs - margin
+        self.D = prep.row_deltas  # (K, R)
+        self.const = rows.lhs(prep.null)
+        self.cap = rows.rhs - ROW_MARGIN * rows.scale
         # Penalty per unit of excess: one typical stand's contribution to the row costs
         # one typical stand's value (times the weight lambda).
         self.row_unit = np.ones(k)
         for r in range(k):
-            a = np.abs(self.D[:, :, r])
+            a = np.abs(self.D[allowed, r])
             nz = a[a > 0]
             if nz.size:
                 self.row_unit[r] = float(np.median(nz))
-        self.period = [0] * n
-        self.lhs = const.copy()
-        for i in np.nonzero(np.asarray(period) > 0)[0].tolist():
-            self.set(i, int(period[i]))
+        self.plan = list(self.null)
+        self.lhs = self.const.copy()
+        start = np.asarray(plan, dtype=np.int64)
+        for i in np.nonzero(start != prep.null)[0].tolist():
+            self.set(i, int(start[i]))
         self.recompute()
 
     def recompute(self) -> None:
         """Row left-hand sides from scratch (removes drift of the incremental sums)."""
-        per = np.asarray(self.period, dtype=np.int64)
-        self.lhs = self.const + self.D[np.arange(self.n), per].sum(axis=0)
+        self.lhs = self.const + self.D[np.asarray(self.plan, dtype=np.int64)].sum(axis=0)
 
-    def npv(self) -> float:
-        """NPV of the current plan."""
-        return float(sum(self.val[i][q] for i, q in enumerate(self.period) if q))
+    def npv(self, plan: list[int] | None = None) -> float:
+        """NPV of the current (or the given) plan."""
+        val = self.val
+        return self.base_value + float(sum(val[k] for k in (self.plan if plan is None else plan)))
 
-    def set(self, i: int, q: int) -> None:
-        """Harvest stand ``i`` (now uncut) in period ``q``."""
-        self.period[i] = q
-        P = self.P
-        for p in range(q - 1, min(q - 1 + self.green[i], P)):
+    def set(self, i: int, k: int) -> None:
+        """Give stand ``i`` (now on its no-harvest prescription) prescription ``k``."""
+        self.plan[i] = k
+        for p in self.obits[k]:
             self.open[p][i] = 1
             self.hop[p][i] = 1
 
     def unset(self, i: int) -> None:
-        """Leave stand ``i`` uncut."""
-        q = self.period[i]
-        if q:
-            for p in range(q - 1, min(q - 1 + self.green[i], self.P)):
-                self.open[p][i] = self.fixed[p][i]
-                self.hop[p][i] = 0
-            self.period[i] = 0
+        """Put stand ``i`` back on its no-harvest prescription."""
+        for p in self.obits[self.plan[i]]:
+            self.open[p][i] = self.fixed[p][i]
+            self.hop[p][i] = 0
+        self.plan[i] = self.null[i]
 
     def excess_near(self, p: int, i: int) -> tuple[float, int]:
         """Over-size area and count of breaching groups in period ``p`` touching stand ``i``.
@@ -170,33 +233,28 @@ class _State:
                 bad += 1
         return exc, bad
 
-    def move_soft(self, i: int, qn: int) -> tuple[float, int]:
-        """Give stand ``i`` period ``qn``; returns the change of over-size area and groups."""
-        qo = self.period[i]
-        g = self.green[i]
-        P = self.P
+    def move_soft(self, i: int, kn: int) -> tuple[float, int]:
+        """Give stand ``i`` prescription ``kn``; returns the change of over-size area and groups."""
+        ko = self.plan[i]
         d_exc = 0.0
         d_bad = 0
-        lo = min(qo - 1 if qo else P, qn - 1 if qn else P)
-        hi = max(min(qo - 1 + g, P) if qo else 0, min(qn - 1 + g, P) if qn else 0)
-        for p in range(lo, hi):
-            was = 1 if qo and qo - 1 <= p < qo - 1 + g else 0
-            now = 1 if qn and qn - 1 <= p < qn - 1 + g else 0
-            if was == now:
-                continue
+        was_m = int(self.open_mask[ko])
+        now_m = int(self.open_mask[kn])
+        for p in _bits(was_m ^ now_m):
+            now = (now_m >> p) & 1
             e0, b0 = self.excess_near(p, i)
             self.hop[p][i] = now
             self.open[p][i] = now | self.fixed[p][i]
             e1, b1 = self.excess_near(p, i)
             d_exc += e1 - e0
             d_bad += b1 - b0
-        self.period[i] = qn
+        self.plan[i] = kn
         return d_exc, d_bad
 
-    def can_add(self, i: int, q: int) -> bool:
-        """True when harvesting uncut stand ``i`` in period ``q`` keeps every opening legal."""
-        g = self.green[i]
-        if g <= 0 or not self.spatial:
+    def can_add(self, i: int, k: int) -> bool:
+        """True when giving stand ``i`` (now uncut) prescription ``k`` keeps every opening legal."""
+        periods = self.obits[k]
+        if not periods or not self.spatial:
             return True
         mx = self.mx
         area = self.area
@@ -207,7 +265,7 @@ class _State:
         nb = nbrs[i]
         unit = self.unit
         check_area = mx != math.inf
-        for p in range(q - 1, min(q - 1 + g, self.P)):
+        for p in periods:
             col = self.open[p]
             if unit:
                 for j in nb:
@@ -255,9 +313,9 @@ def anneal(
     prep
         Pre-computed problem.
     start
-        (n,) legal plan to start from (checked by the caller). Only plans meeting every
-        rule are recorded as best, so a start that breaks a row is returned unchanged
-        when no legal plan is found.
+        (n,) legal plan (prescription per stand) to start from (checked by the caller).
+        Only plans meeting every rule are recorded as best, so a start that breaks a row
+        is returned unchanged when no legal plan is found.
     seed
         Seed of the random moves; with the same seed and move budget the result is the same.
     deadline
@@ -283,7 +341,7 @@ def anneal(
     stop
         Called every few thousand moves; ``True`` stops the search (Ctrl-C, gap reached).
     on_best
-        Called with ``(period, npv)`` at the end of every round that improved the best plan.
+        Called with ``(plan, npv)`` at the end of every round that improved the best plan.
 
     Returns
     -------
@@ -293,33 +351,38 @@ def anneal(
     st = _State(prep, start)
     n = st.n
     movable = [i for i in range(n) if len(st.options[i]) > 1]
+    start_plan = np.asarray(start, dtype=np.int64).copy()
     start_npv = st.npv()
     res = AnnealResult(
-        period=np.asarray(start, dtype=np.int64).copy(), npv=start_npv, start_npv=start_npv
+        prescription=start_plan,
+        period=prep.first_period(start_plan),
+        npv=start_npv,
+        start_npv=start_npv,
     )
     if not movable:
         return res
     rng = np.random.default_rng(seed)
-    best_vals = [max(st.val[i]) for i in movable]
+    best_vals = [max(st.val[k] for k in st.options[i]) for i in movable]
     unit = float(np.mean([v for v in best_vals if v > 0])) if any(v > 0 for v in best_vals) else 1.0
     moves_per_round = int(round_moves or max(50_000, 400 * n))
     D, cap, k = st.D, st.cap, st.k
     soft = bool(soft and prep.max_opening is not None and not prep.unit)
     best_npv = start_npv
-    best_period = list(st.period)
+    best_plan = list(st.plan)
     idle = 0
     n_mov = len(movable)
     total_moves = 0
     accepted = 0
     stopped = False
+    sh_all_dn, sh_all_up = st.shift[("all", False)], st.shift[("all", True)]
+    sh_first_dn, sh_first_up = st.shift[("first", False)], st.shift[("first", True)]
+    sh_last_dn, sh_last_up = st.shift[("last", False)], st.shift[("last", True)]
     for rnd in range(max_rounds):
         # Each round starts from the best plan.
         for i in range(n):
-            if st.period[i] != best_period[i]:
+            if st.plan[i] != best_plan[i]:
                 st.unset(i)
-        for i in range(n):
-            if best_period[i] and not st.period[i]:
-                st.set(i, best_period[i])
+                st.set(i, best_plan[i])
         st.recompute()
         cur = best_npv
         round_best = best_npv
@@ -343,31 +406,52 @@ def anneal(
             r_opt = rng.random(BLOCK).tolist()
             r_acc = rng.random(BLOCK).tolist()
             inv_t = 1.0 / temp
-            period = st.period
+            plan = st.plan
+            null = st.null
             val = st.val
-            elig = st.elig
             options = st.options
             nbrs = st.nbrs
+            hmask = st.hmask
+            lut = st.lut
+            obits = st.obits
             for b in range(BLOCK):
                 i = movable[r_stand[b]]
-                qi = period[i]
+                ki = plan[i]
                 u = r_type[b]
                 j = -1
+                kj = knj = -1
                 if u < 0.55:
                     # reassign i
-                    opts = options[i]
                     w = r_opt[b]
-                    if w < 0.5 and qi:
-                        qn = qi - 1 if w < 0.25 else qi + 1
-                        if qn > st.P or not elig[i][qn]:
+                    if w < 0.5 and ki != null[i]:
+                        # Shift all (w < 1/6 of the half), the first or the last harvest.
+                        if w < 0.25:
+                            sh = (
+                                sh_all_dn
+                                if w < 0.0833
+                                else sh_first_dn
+                                if w < 0.1667
+                                else sh_last_dn
+                            )
+                        else:
+                            sh = (
+                                sh_all_up
+                                if w < 0.3333
+                                else sh_first_up
+                                if w < 0.4167
+                                else sh_last_up
+                            )
+                        kn = sh[ki]
+                        if kn < 0:
                             continue
                     else:
-                        qn = opts[int(w * len(opts)) % len(opts)]
-                        if qn == qi:
+                        opts = options[i]
+                        kn = opts[int(w * len(opts)) % len(opts)]
+                        if kn == ki:
                             continue
-                    dv = val[i][qn] - val[i][qi]
+                    dv = val[kn] - val[ki]
                     if k:
-                        nl = lhs + (D[i, qn] - D[i, qi])
+                        nl = lhs + (D[kn] - D[ki])
                 else:
                     if u < 0.8:
                         nb = nbrs[i]
@@ -376,13 +460,18 @@ def anneal(
                         j = nb[int(r_opt[b] * len(nb))]
                     else:
                         j = movable[int(r_opt[b] * n_mov)]
-                    qj = period[j]
-                    if qj == qi or not elig[i][qj] or not elig[j][qi]:
+                    kj = plan[j]
+                    mi = hmask[ki]
+                    mj = hmask[kj]
+                    if mi == mj:
                         continue
-                    qn = qj
-                    dv = val[i][qj] - val[i][qi] + val[j][qi] - val[j][qj]
+                    kn = lut[i].get(mj, -1)
+                    knj = lut[j].get(mi, -1)
+                    if kn < 0 or knj < 0:
+                        continue
+                    dv = val[kn] - val[ki] + val[knj] - val[kj]
                     if k:
-                        nl = lhs + (D[i, qj] - D[i, qi] + D[j, qi] - D[j, qj])
+                        nl = lhs + (D[kn] - D[ki] + D[knj] - D[kj])
                 if k:
                     npen = float(np.maximum(nl - cap, 0.0) @ wl)
                     delta = dv - (npen - pen)
@@ -394,16 +483,16 @@ def anneal(
                     # so the move fails the test whatever it does to the openings.
                     continue
                 if soft:
-                    de, db = st.move_soft(i, qn)
+                    de, db = st.move_soft(i, kn)
                     if j >= 0:
-                        de2, db2 = st.move_soft(j, qi)
+                        de2, db2 = st.move_soft(j, knj)
                         de += de2
                         db += db2
                     tot = delta - wm * de
                     if tot < 0.0 and r_acc[b] >= math.exp(tot * inv_t):
                         if j >= 0:
-                            st.move_soft(j, qn)
-                        st.move_soft(i, qi)
+                            st.move_soft(j, kj)
+                        st.move_soft(i, ki)
                         continue
                     bad += db
                     accepted += 1
@@ -413,39 +502,31 @@ def anneal(
                         lhs = nl
                     if bad == 0 and npen == 0.0 and cur > round_best + 1e-9 * abs(round_best):
                         round_best = cur
-                        best_period = list(period)
+                        best_plan = list(plan)
                     continue
                 # spatial test, applying the move
                 if j < 0:
                     st.unset(i)
-                    if qn and not st.can_add(i, qn):
-                        if qi:
-                            st.set(i, qi)
+                    if obits[kn] and not st.can_add(i, kn):
+                        st.set(i, ki)
                         continue
-                    if qn:
-                        st.set(i, qn)
+                    st.set(i, kn)
                 else:
-                    qj = qn
                     st.unset(i)
                     st.unset(j)
                     ok = True
-                    if qj:
-                        if st.can_add(i, qj):
-                            st.set(i, qj)
-                        else:
-                            ok = False
-                    if ok and qi:
-                        if st.can_add(j, qi):
-                            st.set(j, qi)
-                        else:
+                    if obits[kn]:
+                        ok = st.can_add(i, kn)
+                    if ok:
+                        st.set(i, kn)
+                        if obits[knj] and not st.can_add(j, knj):
                             ok = False
                             st.unset(i)
                     if not ok:
-                        if qi:
-                            st.set(i, qi)
-                        if qj:
-                            st.set(j, qj)
+                        st.set(i, ki)
+                        st.set(j, kj)
                         continue
+                    st.set(j, knj)
                 accepted += 1
                 cur += dv
                 pen = npen
@@ -453,25 +534,25 @@ def anneal(
                     lhs = nl
                 if npen == 0.0 and cur > round_best + 1e-9 * abs(round_best):
                     round_best = cur
-                    best_period = list(period)
+                    best_plan = list(plan)
             done += BLOCK
             total_moves += BLOCK
         st.lhs = lhs
         res.rounds = rnd + 1
         if round_best > best_npv + 1e-9 * max(abs(best_npv), 1.0):
             # Re-derive the value exactly (the incremental sum drifts by rounding only).
-            exact = float(sum(st.val[i][q] for i, q in enumerate(best_period) if q))
-            best_npv = exact
+            best_npv = st.npv(best_plan)
             res.improving_rounds += 1
             idle = 0
             if on_best is not None:
-                on_best(np.asarray(best_period, dtype=np.int64), best_npv)
+                on_best(np.asarray(best_plan, dtype=np.int64), best_npv)
         else:
             idle += 1
         res.history.append((rnd + 1, total_moves, best_npv))
         if stopped or idle >= patience:
             break
-    res.period = np.asarray(best_period, dtype=np.int64)
+    res.prescription = np.asarray(best_plan, dtype=np.int64)
+    res.period = prep.first_period(res.prescription)
     res.npv = best_npv
     res.moves = total_moves
     res.accepted = accepted

@@ -1,16 +1,20 @@
-"""Fast construction heuristic: LP-priced regret greedy with spatial checks, then flow repair.
+"""Fast construction heuristic: LP-priced greedy with spatial checks, then trim and fill.
 
-1. *Assign.* Each stand ranks its periods by the LP price of the cell (objective minus the
-   rule rows' dual prices times the cell's coefficients, so a period whose volume the LP
-   finds scarce costs more). Stands are placed in order of regret (best price minus
-   second best), each in its best period that still has room below the LP's volume for
-   that period and where the new opening stays legal. Openings are checked incrementally:
-   a search over the open stands of each period the harvest keeps open, stopped as soon as
-   the group passes the maximum area.
-2. *Trim.* While a rule row (flow, targets, ending inventory) is broken, the stand with the
-   lowest loss of value per unit of excess on the broken row is left uncut.
-3. *Fill.* Stands are added back wherever every row and the spatial rules still hold, last
-   periods first (with a falling flow, the later periods bound the earlier ones).
+Every stand starts on its no-harvest prescription; the construction gives some stands a
+harvesting prescription.
+
+1. *Assign.* Each prescription has an LP price (objective minus the quantities' dual prices
+   times its contributions, so a period whose volume the LP finds scarce costs more),
+   taken against the stand's no-harvest prescription. Stands are placed in one of four
+   orders (below), each on a prescription whose harvest periods still have room below the
+   LP's volume and where every new opening stays legal. Openings are checked
+   incrementally: a search over the open stands of each period the prescription keeps
+   open, stopped as soon as the group passes the maximum area.
+2. *Trim.* While a rule row (flow, targets, ending inventory, old forest) is broken, the
+   stand with the lowest loss of value per unit of excess on the broken row goes back to
+   its no-harvest prescription.
+3. *Fill.* Uncut stands get a prescription wherever every row and the spatial rules still
+   hold, last periods first (with a falling flow, the later periods bound the earlier ones).
 
 Everything runs on plain arrays and small Python loops over stands; a 10,000-stand
 instance takes a few seconds.
@@ -27,10 +31,20 @@ from spatialplan.schedule.model import Prep, check_plan
 __all__ = ["SpatialState", "greedy_plan"]
 
 
+def _bits(mask: int) -> list[int]:
+    """0-based period columns set in a mask."""
+    out = []
+    while mask:
+        low = mask & -mask
+        out.append(low.bit_length() - 1)
+        mask ^= low
+    return out
+
+
 class SpatialState:
     """Open stands per period with an incremental legality test for one more harvest."""
 
-    def __init__(self, prep: Prep, period: np.ndarray | None = None) -> None:
+    def __init__(self, prep: Prep, plan: np.ndarray | None = None) -> None:
         self.prep = prep
         self.nbrs = [
             prep.indices[prep.indptr[i] : prep.indptr[i + 1]].tolist() for i in range(prep.n)
@@ -38,22 +52,28 @@ class SpatialState:
         self.area = prep.opening_area.tolist()
         self.fixed = prep.fixed_open
         self.open = prep.fixed_open.copy()
-        self.period = np.zeros(prep.n, dtype=np.int64)
-        if period is not None:
-            for i in np.nonzero(period > 0)[0]:
-                self.set(int(i), int(period[i]))
+        self.plan = prep.null.copy()
+        self.cut = np.zeros(prep.n, dtype=bool)
+        self._bits: dict[int, list[int]] = {}
+        if plan is not None:
+            for i in np.nonzero(np.asarray(plan) != prep.null)[0]:
+                self.set(int(i), int(plan[i]))
 
-    def window(self, i: int, q: int) -> range:
-        """0-based period columns a harvest of stand ``i`` in period ``q`` keeps open."""
-        return range(q - 1, min(q - 1 + int(self.prep.green[i]), self.prep.P))
+    def window(self, k: int) -> list[int]:
+        """0-based period columns prescription ``k`` keeps its stand harvest-open."""
+        m = int(self.prep.open_mask[k])
+        b = self._bits.get(m)
+        if b is None:
+            b = self._bits[m] = _bits(m)
+        return b
 
-    def can_add(self, i: int, q: int) -> bool:
-        """True when harvesting stand ``i`` (now uncut) in period ``q`` breaks no spatial rule."""
+    def can_add(self, i: int, k: int) -> bool:
+        """True when giving uncut stand ``i`` prescription ``k`` breaks no spatial rule."""
         prep = self.prep
         if not prep.spatial:
             return True
         mx = prep.max_opening
-        for p in self.window(i, q):
+        for p in self.window(k):
             col = self.open[:, p]
             if prep.unit and any(col[j] for j in self.nbrs[i]):
                 return False
@@ -65,8 +85,8 @@ class SpatialState:
             seen = {i}
             stack = [i]
             while stack:
-                k = stack.pop()
-                for j in self.nbrs[k]:
+                s = stack.pop()
+                for j in self.nbrs[s]:
                     if j not in seen and col[j]:
                         seen.add(j)
                         total += self.area[j]
@@ -75,44 +95,34 @@ class SpatialState:
                         stack.append(j)
         return True
 
-    def set(self, i: int, q: int) -> None:
-        """Record a harvest of stand ``i`` in period ``q`` (``i`` must be uncut)."""
-        self.period[i] = q
-        for p in self.window(i, q):
+    def set(self, i: int, k: int) -> None:
+        """Give stand ``i`` (now uncut) prescription ``k``."""
+        self.plan[i] = k
+        self.cut[i] = k != self.prep.null[i]
+        for p in self.window(k):
             self.open[i, p] = True
 
     def unset(self, i: int) -> None:
-        """Remove the harvest of stand ``i``."""
-        q = int(self.period[i])
-        if q == 0:
-            return
-        for p in self.window(i, q):
+        """Put stand ``i`` back on its no-harvest prescription."""
+        k = int(self.plan[i])
+        for p in self.window(k):
             self.open[i, p] = self.fixed[i, p]
-        self.period[i] = 0
+        self.plan[i] = self.prep.null[i]
+        self.cut[i] = False
 
 
 class _RowState:
     """Left-hand sides of the rule rows with O(rows) updates per move."""
 
-    def __init__(self, prep: Prep, period: np.ndarray) -> None:
-        n, P = prep.n, prep.P
-        self.rows = prep.rows
-        k = len(self.rows)
-        self.const = np.zeros(k)
-        self.rhs = np.array([r.rhs for r in self.rows])
-        self.margin = np.array([1e-7 * max(abs(r.rhs), r.scale_ref) for r in self.rows])
-        # _d[r] is the (n, P) change of row r when a stand goes from uncut to period p.
-        self._d: list[np.ndarray] = []
-        for j, r in enumerate(self.rows):
-            d, c = r.x_coefs(n, P)
-            self._d.append(d)
-            self.const[j] = c
-        self.lhs = self.const.copy()
-        for i in np.nonzero(period > 0)[0]:
-            self.lhs += self.delta(int(i), int(period[i]))
+    def __init__(self, prep: Prep, plan: np.ndarray) -> None:
+        rows = prep.rows
+        self.D = prep.row_deltas  # (K, R), against the no-harvest prescription
+        self.rhs = rows.rhs
+        self.margin = 1e-7 * rows.scale
+        self.lhs = rows.lhs(prep.null) + self.D[np.asarray(plan, dtype=np.int64)].sum(axis=0)
 
-    def delta(self, i: int, q: int) -> np.ndarray:
-        return np.array([d[i, q - 1] for d in self._d]) if self._d else np.zeros(0)
+    def delta(self, k: int) -> np.ndarray:
+        return self.D[k]
 
     def ok_after(self, dlt: np.ndarray) -> bool:
         return bool(np.all(self.lhs + dlt <= self.rhs - self.margin)) if dlt.size else True
@@ -121,53 +131,104 @@ class _RowState:
         return np.nonzero(self.lhs > self.rhs - self.margin)[0]
 
 
-def _assign_regret(
-    st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray, lp_x: np.ndarray
-) -> int:
-    n, P = price.shape
-    order_p = np.argsort(-price, axis=1)  # best period first
-    srt = np.take_along_axis(price, order_p, axis=1)
-    best = srt[:, 0]
-    second = np.where(np.isfinite(srt[:, 1]), srt[:, 1], 0.0) if P > 1 else np.zeros(n)
-    second = np.maximum(second, 0.0)  # leaving the stand uncut is always an option
+class _Cands:
+    """Candidate prescriptions: harvest lists, volumes and stand rankings by price."""
+
+    def __init__(self, prep: Prep, price: np.ndarray, lp_x: np.ndarray) -> None:
+        rx = prep.rx
+        K, P = prep.n_rx, prep.P
+        self.price = price  # (K,) against the no-harvest prescription; -inf = not a candidate
+        hk = np.repeat(np.arange(K), np.diff(rx.harvest_start))
+        hp = np.asarray(rx.harvest_period, dtype=np.int64) - 1
+        area = np.asarray(prep.problem.area_ha, dtype=np.float64)
+        hv = area[prep.stand_of[hk]] * np.asarray(rx.harvest_volume_m3_ha, dtype=np.float64)
+        self.hk, self.hp, self.hv = hk, hp, hv
+        self.hs = rx.harvest_start.tolist()
+        self.hp_l, self.hv_l = hp.tolist(), hv.tolist()
+        self.target: np.ndarray = np.bincount(hp, weights=hv * lp_x[hk], minlength=P)[:P]
+        fin = np.isfinite(price)
+        best = np.full(prep.n, -np.inf)
+        np.maximum.at(best, prep.stand_of[fin], price[fin])
+        self.best = best  # best candidate price of every stand
+        # Loss of each prescription against the stand's best (inf when not a candidate).
+        self.loss = np.where(
+            fin, np.where(np.isfinite(best), best, 0.0)[prep.stand_of] - price, np.inf
+        )
+
+    def harvests(self, k: int) -> zip:
+        a, b = self.hs[k], self.hs[k + 1]
+        return zip(self.hp_l[a:b], self.hv_l[a:b], strict=True)
+
+    def period_lists(self, need_volume: bool = True) -> list[list[int]]:
+        """Per period, candidate prescriptions harvesting in it, least loss then most volume."""
+        ok = np.isfinite(self.price[self.hk]) & (self.price[self.hk] > 0)
+        if need_volume:
+            ok &= self.hv > 0
+        out = []
+        hk, hp, hv = self.hk[ok], self.hp[ok], self.hv[ok]
+        loss = self.loss[hk]
+        for pc in range(len(self.target)):
+            s = hp == pc
+            order = np.lexsort((-hv[s], loss[s]))
+            out.append(hk[s][order].tolist())
+        return out
+
+    def room(self, V: np.ndarray, k: int, skip: int = -1) -> bool:
+        """No harvest period of ``k`` (other than ``skip``) goes past its LP volume by half."""
+        for p, v in self.harvests(k):
+            if p != skip and V[p] + v > self.target[p] + 0.5 * v:
+                return False
+        return True
+
+    def add(self, V: np.ndarray, k: int) -> None:
+        for p, v in self.harvests(k):
+            V[p] += v
+
+    def vol_in(self, k: int, pc: int) -> float:
+        return sum(v for p, v in self.harvests(k) if p == pc)
+
+
+def _by_stand(prep: Prep, price: np.ndarray) -> list[list[int]]:
+    """Per stand, its candidate prescriptions with a positive price, best first."""
+    ks = np.nonzero(np.isfinite(price) & (price > 0))[0]
+    ks = ks[np.lexsort((-price[ks], prep.stand_of[ks]))]
+    split = np.searchsorted(prep.stand_of[ks], np.arange(1, prep.n))
+    return [a.tolist() for a in np.split(ks, split)]
+
+
+def _assign_regret(st: SpatialState, c: _Cands, lp_x: np.ndarray, prep: Prep) -> int:
+    lists = _by_stand(prep, c.price)
+    n = prep.n
+    best = np.full(n, -np.inf)
+    second = np.zeros(n)
+    for i, lst in enumerate(lists):
+        if lst:
+            best[i] = c.price[lst[0]]
+            # Leaving the stand uncut (price 0) is always an option.
+            second[i] = max(c.price[lst[1]], 0.0) if len(lst) > 1 else 0.0
+    share = np.bincount(prep.stand_of, weights=lp_x * (prep.harvest_mask != 0), minlength=n)
     regret = np.where(np.isfinite(best), best - second, -np.inf)
-    cand = np.nonzero(np.isfinite(best) & (best > 0) & (lp_x.sum(axis=1) > 1e-6))[0]
+    cand = np.nonzero(np.isfinite(best) & (best > 0) & (share > 1e-6))[0]
     cand = cand[np.argsort(-regret[cand], kind="stable")]
-    V = np.zeros(P)
+    V = np.zeros(prep.P)
     skips = 0
     for i in cand.tolist():
-        for pc in order_p[i].tolist():
-            if not np.isfinite(price[i, pc]) or price[i, pc] <= 0:
-                break
-            if V[pc] + vol[i, pc] > target[pc] + 0.5 * vol[i, pc]:
+        for k in lists[i]:
+            if not c.room(V, k):
                 continue
-            if not st.can_add(i, pc + 1):
+            if not st.can_add(i, k):
                 skips += 1
                 continue
-            st.set(i, pc + 1)
-            V[pc] += vol[i, pc]
+            st.set(i, k)
+            c.add(V, k)
             break
     return skips
 
 
-def _loss(price: np.ndarray) -> np.ndarray:
-    """Opportunity loss of each cell against the stand's best LP period (inf if ineligible)."""
-    fin = np.isfinite(price)
-    best = np.max(np.where(fin, price, -np.inf), axis=1, initial=-np.inf)
-    best = np.where(np.isfinite(best), best, 0.0)
-    return np.where(fin, best[:, None] - np.where(fin, price, 0.0), np.inf)
-
-
-def _assign_balanced(
-    st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray
-) -> int:
+def _assign_balanced(st: SpatialState, c: _Cands, P: int) -> int:
     """Water-filling: always top up the period furthest below its LP volume."""
-    P = price.shape[1]
-    loss = _loss(price)
-    lists = []
-    for pc in range(P):
-        ok = np.nonzero(np.isfinite(price[:, pc]) & (price[:, pc] > 0) & (vol[:, pc] > 0))[0]
-        lists.append(ok[np.lexsort((-vol[ok, pc], loss[ok, pc]))].tolist())
+    lists = c.period_lists()
+    target = c.target
     ptr = [0] * P
     V = np.zeros(P)
     skips = 0
@@ -178,17 +239,21 @@ def _assign_balanced(
         lst = lists[pc]
         placed = False
         while ptr[pc] < len(lst):
-            i = lst[ptr[pc]]
+            k = lst[ptr[pc]]
             ptr[pc] += 1
-            if st.period[i]:
+            i = int(st.prep.stand_of[k])
+            if st.cut[i]:
                 continue
-            if V[pc] >= target[pc] - 0.5 * vol[i, pc]:
+            v = c.vol_in(k, pc)
+            if V[pc] >= target[pc] - 0.5 * v:
                 break
-            if not st.can_add(i, pc + 1):
+            if not c.room(V, k, skip=pc):
+                continue
+            if not st.can_add(i, k):
                 skips += 1
                 continue
-            st.set(i, pc + 1)
-            V[pc] += vol[i, pc]
+            st.set(i, k)
+            c.add(V, k)
             placed = True
             break
         if not placed:
@@ -196,55 +261,76 @@ def _assign_balanced(
     return skips
 
 
-def _assign_sequential(
-    st: SpatialState, price: np.ndarray, vol: np.ndarray, target: np.ndarray, backward: bool = False
-) -> int:
-    P = price.shape[1]
-    loss = _loss(price)
+def _assign_sequential(st: SpatialState, c: _Cands, P: int, backward: bool = False) -> int:
+    lists = c.period_lists()
+    V = np.zeros(P)
     skips = 0
     for pc in range(P - 1, -1, -1) if backward else range(P):
-        ok = np.nonzero(np.isfinite(price[:, pc]) & (price[:, pc] > 0) & (vol[:, pc] > 0))[0]
-        ok = ok[np.lexsort((-vol[ok, pc], loss[ok, pc]))]
-        v = 0.0
-        for i in ok.tolist():
-            if st.period[i]:
+        for k in lists[pc]:
+            i = int(st.prep.stand_of[k])
+            if st.cut[i]:
                 continue
-            if v >= target[pc] - 0.5 * vol[i, pc]:
+            v = c.vol_in(k, pc)
+            if V[pc] >= c.target[pc] - 0.5 * v:
                 break
-            if not st.can_add(i, pc + 1):
+            if not c.room(V, k, skip=pc):
+                continue
+            if not st.can_add(i, k):
                 skips += 1
                 continue
-            st.set(i, pc + 1)
-            v += vol[i, pc]
+            st.set(i, k)
+            c.add(V, k)
     return skips
 
 
-def _assign_rounded(st: SpatialState, price: np.ndarray, lp_x: np.ndarray) -> int:
-    """Round the LP (each stand to its largest share), keeping openings legal.
+def _assign_rounded(st: SpatialState, c: _Cands, lp_x: np.ndarray, prep: Prep) -> int:
+    """Round the LP (each stand to its largest harvesting share), keeping openings legal.
 
     Stands go in order of their LP share (whole shares first) and, within that, of price;
-    a stand whose LP period would break an opening tries its other periods by price.
+    a stand whose LP prescription would break an opening tries its others by price.
     """
-    share = lp_x.max(axis=1)
-    first = lp_x.argmax(axis=1)
-    cand = np.nonzero(share > 0.5)[0]
-    pf = price[cand, first[cand]]
-    cand = cand[np.lexsort((-pf, -np.round(share[cand], 6)))]
-    order_p = np.argsort(-price, axis=1)
+    lists = _by_stand(prep, c.price)
+    xs = np.where(prep.choice, lp_x, -1.0)
+    n = prep.n
+    share = np.full(n, -1.0)
+    np.maximum.at(share, prep.stand_of, xs)
+    # The first prescription of each stand reaching its largest share.
+    hit = np.nonzero((xs == share[prep.stand_of]) & (xs > 0.5))[0]
+    stands, pos = np.unique(prep.stand_of[hit], return_index=True)
+    first = hit[pos]
+    pf = np.where(np.isfinite(c.price[first]), c.price[first], -np.inf)
+    order = np.lexsort((-pf, -np.round(share[stands], 6)))
     skips = 0
-    for i in cand.tolist():
-        q = int(first[i])
-        if st.can_add(i, q + 1):
-            st.set(i, q + 1)
+    for i, k in zip(stands[order].tolist(), first[order].tolist(), strict=True):
+        if st.can_add(i, k):
+            st.set(i, k)
             continue
         skips += 1
-        for pc in order_p[i].tolist():
-            if not np.isfinite(price[i, pc]) or price[i, pc] <= 0:
-                break
-            if pc != q and st.can_add(i, pc + 1):
-                st.set(i, pc + 1)
+        for k2 in lists[i]:
+            if k2 != k and st.can_add(i, k2):
+                st.set(i, k2)
                 break
     return skips
+
+
+def _as_shares(prep: Prep, lp_x: np.ndarray) -> np.ndarray:
+    """(K,) prescription shares; an (n, P) array of period shares is accepted when every
+    prescription harvests at most once (the single-harvest model)."""
+    x = np.asarray(lp_x, dtype=np.float64)
+    if x.shape == (prep.n_rx,):
+        return x
+    if x.shape != (prep.n, prep.P):
+        msg = f"LP shares must have shape ({prep.n_rx},) or ({prep.n}, {prep.P})"
+        raise ValueError(msg)
+    rx = prep.rx
+    counts = np.diff(rx.harvest_start)
+    if np.any(counts > 1):
+        msg = "(n, P) LP shares need single-harvest prescriptions; pass (K,) shares"
+        raise ValueError(msg)
+    out = np.zeros(prep.n_rx)
+    one = counts == 1
+    out[one] = x[prep.stand_of[one], rx.harvest_period[rx.harvest_start[:-1][one]] - 1]
+    return out
 
 
 def greedy_plan(
@@ -262,73 +348,84 @@ def greedy_plan(
     prep
         Pre-computed problem.
     lp_x
-        (n, P) LP solution; its period volumes are the targets.
+        (K,) LP share of every prescription (an (n, P) array of period shares is accepted
+        for single-harvest prescriptions); its period volumes are the targets.
     lp_price
-        (n, P) LP cell prices (see :class:`~spatialplan.schedule.bound.LpResult`), or
-        ``None`` to rank by objective value.
+        (K,) LP prices (see :class:`~spatialplan.schedule.bound.LpResult`), or ``None``
+        to rank by objective value.
     deadline
         ``time.perf_counter()`` value after which the heuristic stops adding stands.
     slack
         Relative room above the LP volume of each period during assignment.
     order
         ``"sequential"``: fill period 1, then 2, ... each up to its LP volume with the
-        stands that lose least against their best LP period; ``"regret"``: place stands
-        in order of regret, each in its best period with room.
+        prescriptions that lose least against their stand's best; ``"balanced"``: always
+        top up the period furthest below its LP volume; ``"regret"``: place stands in
+        order of regret, each on its best prescription with room; ``"lp_round"``: round
+        the LP; ``"backward"``: sequential from the last period.
 
     Returns
     -------
-    (period, info)
-        The plan (all-zero when nothing legal was found) and counts of what each phase
-        did. The plan is checked with :func:`~spatialplan.schedule.model.check_plan`;
-        ``info["legal"]`` says whether it passed.
+    (plan, info)
+        The plan (prescription per stand; all no-harvest when nothing legal was found)
+        and counts of what each phase did. The plan is checked with
+        :func:`~spatialplan.schedule.model.check_plan`; ``info["legal"]`` says whether it
+        passed.
     """
     n, P = prep.n, prep.P
-    pr = prep.problem
-    elig = prep.eligible
-    price = np.where(elig, prep.value if lp_price is None else lp_price, -np.inf)
-    vol = np.where(elig, pr.area_ha[:, None] * pr.volume_m3_ha, 0.0)
-    target = (vol * lp_x).sum(axis=0) * (1.0 + slack)
+    x = _as_shares(prep, lp_x)
+    raw = prep.value if lp_price is None else np.asarray(lp_price, dtype=np.float64)
+    # Prices against the no-harvest prescription; only allowed harvesting ones compete.
+    with np.errstate(invalid="ignore"):
+        base = raw[prep.null][prep.stand_of]
+        price = np.where(
+            prep.choice & np.isfinite(raw), raw - np.where(np.isfinite(base), base, 0.0), -np.inf
+        )
+    c = _Cands(prep, price, x)
+    c.target = c.target * (1.0 + slack)
     info: dict = {}
     st = SpatialState(prep)
-    rows = _RowState(prep, st.period)
 
     # ---- 1. assignment ------------------------------------------------------------------
     if order == "regret":
-        n_spatial_skip = _assign_regret(st, price, vol, target, lp_x)
+        n_spatial_skip = _assign_regret(st, c, x, prep)
     elif order == "lp_round":
-        n_spatial_skip = _assign_rounded(st, price, lp_x)
+        n_spatial_skip = _assign_rounded(st, c, x, prep)
     elif order == "backward":
-        n_spatial_skip = _assign_sequential(st, price, vol, target, backward=True)
+        n_spatial_skip = _assign_sequential(st, c, P, backward=True)
     elif order == "balanced":
-        n_spatial_skip = _assign_balanced(st, price, vol, target)
+        n_spatial_skip = _assign_balanced(st, c, P)
     else:
-        n_spatial_skip = _assign_sequential(st, price, vol, target)
-    rows = _RowState(prep, st.period)
-    info["assigned"] = int((st.period > 0).sum())
+        n_spatial_skip = _assign_sequential(st, c, P)
+    rows = _RowState(prep, st.plan)
+    # lhs above counts D of uncut stands as 0 (their delta against themselves).
+    info["assigned"] = int(st.cut.sum())
     info["spatial_skips"] = n_spatial_skip
 
     # ---- 2. trim until every row holds --------------------------------------------------
     removed = 0
+    rel = prep.rel_value
     for _ in range(4 * n + 10):
         bad = rows.violated()
         if bad.size == 0:
             break
         r = int(bad[np.argmax((rows.lhs - rows.rhs)[bad] / np.maximum(rows.margin[bad], 1e-12))])
-        d = rows._d[r]
-        cut = np.nonzero(st.period > 0)[0]
+        cut = np.nonzero(st.cut)[0]
         if cut.size == 0:
             break
-        red = d[cut, st.period[cut] - 1]  # removing the stand lowers the row by this
+        ks = st.plan[cut]
+        red = rows.D[ks, r]  # going back to no harvest lowers the row by this
         helpful = red > 0
         if not helpful.any():
             break
-        cut, red = cut[helpful], red[helpful]
-        loss = prep.value[cut, st.period[cut] - 1]
+        cut, ks, red = cut[helpful], ks[helpful], red[helpful]
+        loss = rel[ks]
         need = rows.lhs[r] - rows.rhs[r] + rows.margin[r]
         # Prefer stands that cover the excess on their own, then the cheapest per unit.
         score = np.maximum(loss, 0.0) / np.minimum(red, need)
-        i = int(cut[np.argmin(score)])
-        rows.lhs -= rows.delta(i, int(st.period[i]))
+        j = int(np.argmin(score))
+        i = int(cut[j])
+        rows.lhs -= rows.delta(int(ks[j]))
         st.unset(i)
         removed += 1
     info["trimmed"] = removed
@@ -336,40 +433,43 @@ def greedy_plan(
     # ---- 3. fill: add wherever every rule still holds ---------------------------------
     added = 0
     if rows.violated().size == 0:
-        prio = np.where(elig, prep.value if lp_price is None else lp_price, -np.inf)
+        ok_k = np.isfinite(price) & (rel > 0)
         lists = []
         for pc in range(P):
-            ok = np.nonzero(np.isfinite(prio[:, pc]) & (prep.value[:, pc] > 0))[0]
-            lists.append(ok[np.argsort(-prio[ok, pc], kind="stable")].tolist())
+            s = (c.hp == pc) & ok_k[c.hk]
+            ks = c.hk[s]
+            lists.append(ks[np.argsort(-price[ks], kind="stable")].tolist())
         dead: list[set[int]] = [set() for _ in range(P)]
+        stand_of = prep.stand_of
         progress = True
         while progress and time.perf_counter() < deadline:
             progress = False
             for pc in range(P - 1, -1, -1):
                 lst = lists[pc]
                 tried = 0
-                for i in lst:
-                    if st.period[i] or i in dead[pc]:
+                for k in lst:
+                    i = int(stand_of[k])
+                    if st.cut[i] or k in dead[pc]:
                         continue
                     tried += 1
                     if tried > 200:
                         break
-                    dlt = rows.delta(i, pc + 1)
+                    dlt = rows.delta(k)
                     if not rows.ok_after(dlt):
                         continue
-                    if not st.can_add(i, pc + 1):
-                        dead[pc].add(i)  # openings only grow while filling
+                    if not st.can_add(i, k):
+                        dead[pc].add(k)  # openings only grow while filling
                         continue
-                    st.set(i, pc + 1)
+                    st.set(i, k)
                     rows.lhs += dlt
                     added += 1
                     progress = True
                     break
-                lists[pc] = [i for i in lst if not st.period[i] and i not in dead[pc]]
+                lists[pc] = [k for k in lst if not st.cut[stand_of[k]] and k not in dead[pc]]
     info["filled"] = added
-    period = st.period.copy()
-    legal = not check_plan(prep, period)
+    plan = st.plan.copy()
+    legal = not check_plan(prep, plan)
     if not legal:
-        period = np.zeros(n, dtype=np.int64)
+        plan = prep.empty_plan()
     info["legal"] = legal
-    return period, info
+    return plan, info

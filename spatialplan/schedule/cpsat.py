@@ -1,24 +1,31 @@
 """CP-SAT models of the scheduling problem: the full model and spatial-window sub-models.
 
-One Boolean ``x[i, p]`` per eligible (stand, period) and ``AtMostOne`` per stand. The
-opening rules are *cover* clauses over minimal over-size connected stand sets, generated
-lazily from the plans CP-SAT proposes (see :func:`spatialplan.schedule.model.extract_covers`):
-for a set ``S`` and period ``p`` the clause says "not every stand of ``S`` is open in
-``p``". Openness of a stand in ``p`` is a Boolean ``o[i, p]`` equal to the OR of the
-``x[i, q]`` with ``p - G_i + 1 <= q <= p`` (made only when a clause needs it; when the
-window holds one ``x`` the ``x`` itself is used). Stands open from the start are constants.
+One Boolean ``x_k`` per allowed harvesting prescription ``k`` and ``AtMostOne`` per stand:
+the stand's no-harvest prescription is the implicit last choice, so exactly one
+prescription per stand is chosen. The harvest indicator of stand ``i`` in period ``p`` is
+the linear expression ``sum x_k`` over its prescriptions harvesting in ``p``, and its
+openness ``o[i, p]`` is ``sum x_k`` over its prescriptions that keep it harvest-open in
+``p`` (every harvest opens the stand for ``G_i`` periods; at most one ``x_k`` of a stand
+is 1, so the sum is 0/1). The opening rules are *cover* clauses over minimal over-size
+connected stand sets, generated lazily from the plans CP-SAT proposes (see
+:func:`spatialplan.schedule.model.extract_covers`): for a set ``S`` and period ``p`` the
+clause says "not every stand of ``S`` is open in ``p``". A Boolean equal to ``o[i, p]`` is
+made only when a clause needs it (when one ``x_k`` keeps the stand open in ``p``, that
+``x_k`` itself is used). Stands open from the start are constants.
 
-A *sub-model* frees only some stands; the others keep the period of a base plan and
+A *sub-model* frees only some stands; the others keep the prescription of a base plan and
 enter the clauses and the rule rows as constants. The full model is the sub-model that
 frees every stand.
 
 Integer scaling (CP-SAT needs integer coefficients). Objective: ``round(s_obj * c)`` with
-``s_obj = 1e7 / max |c|``; the largest error on one stand is reported, and the sum of the
-per-stand maxima is added to CP-SAT's bound so the bound stays valid in real units. Rows
-``sum d x <= b``: each coefficient is rounded *up* (``ceil(s d)``) and the right-hand
-side *down* (``floor(s b - safety)``), with ``s = 1e6 / max |d|``. Since ``ceil(s d) >=
-s d`` and ``x >= 0``, every integer-feasible plan satisfies the real row with a margin, so
-a plan CP-SAT accepts also passes a float64 check (it is re-checked anyway).
+``c`` the value of a prescription against the stand's no-harvest one and ``s_obj = 1e7 /
+max |c|``; the largest error on one stand is reported, and the sum of the per-stand maxima
+is added to CP-SAT's bound so the bound stays valid in real units. Rows ``sum d x <= b``
+(``d`` against the no-harvest prescription): each coefficient is rounded *up* (``ceil(s
+d)``) and the right-hand side *down* (``floor(s b - safety)``), with ``s = 1e6 / max |d|``.
+Since ``ceil(s d) >= s d`` and ``x >= 0``, every integer-feasible plan satisfies the real
+row with a margin, so a plan CP-SAT accepts also passes a float64 check (it is re-checked
+anyway).
 """
 
 from __future__ import annotations
@@ -45,19 +52,28 @@ class Scaling:
     """Objective scale and the resulting rounding errors (currency units)."""
 
     s_obj: float
-    int_value: np.ndarray  # (n, P) int64 objective coefficients
-    max_coef_error: float  # largest |round(s c) / s - c| over cells
-    total_error_bound: float  # sum over stands of the largest cell error
+    int_value: np.ndarray  # (K,) int64 objective coefficients against the no-harvest rx
+    max_coef_error: float  # largest |round(s c) / s - c| over prescriptions
+    total_error_bound: float  # sum over stands of the largest prescription error
+    offset: float = 0.0  # value of the plan that harvests nothing (the objective's constant)
 
 
 def make_scaling(prep: Prep) -> Scaling:
     """Integer objective coefficients for a problem."""
-    v = np.where(prep.eligible, prep.value, 0.0)
+    v = np.where(prep.choice, prep.rel_value, 0.0)
     mx = float(np.abs(v).max()) if v.size else 0.0
     s = OBJ_TARGET / mx if mx > 0 else 1.0
     iv = np.rint(v * s).astype(np.int64)
     err = np.abs(iv / s - v)
-    return Scaling(s, iv, float(err.max(initial=0.0)), float(err.max(axis=1, initial=0.0).sum()))
+    per_stand = np.zeros(prep.n)
+    np.maximum.at(per_stand, prep.stand_of, err)
+    return Scaling(
+        s,
+        iv,
+        float(err.max(initial=0.0)),
+        float(per_stand.sum()),
+        float(prep.value[prep.null].sum()),
+    )
 
 
 class CoverPool:
@@ -110,7 +126,7 @@ class SolveOut:
     """What one CP-SAT call returned."""
 
     status: str  # "optimal", "feasible", "infeasible", "unknown", "invalid"
-    period: np.ndarray | None
+    plan: np.ndarray | None  # prescription per stand
     objective_int: float | None
     bound_int: float | None
     wall_s: float
@@ -118,16 +134,17 @@ class SolveOut:
 
 
 class SubModel:
-    """A CP-SAT model freeing ``free`` stands, the others fixed at ``base`` periods.
+    """A CP-SAT model freeing ``free`` stands, the others fixed at a base plan.
 
     Parameters
     ----------
     prep
         Pre-computed problem.
     free
-        Positions of the stands whose harvest period is decided here.
+        Positions of the stands whose prescription is decided here.
     base
-        (n,) plan giving the periods of the other stands (values of free stands ignored).
+        (n,) plan giving the prescriptions of the other stands (values of free stands
+        ignored).
     scaling
         Objective scaling shared by all models of one solve.
     unit_edges
@@ -143,31 +160,31 @@ class SubModel:
         unit_edges: bool = True,
     ) -> None:
         self.prep = prep
-        n, P = prep.n, prep.P
+        n = prep.n
         self.m = cp_model.CpModel()
         m = self.m
         self.free = np.asarray(free, dtype=np.int64)
         self.is_free = np.zeros(n, dtype=bool)
         self.is_free[self.free] = True
         base = np.asarray(base, dtype=np.int64).copy()
-        base[self.is_free] = 0
+        base[self.is_free] = prep.null[self.is_free]
         self.base = base
         _, self.base_hop = prep.open_matrices(base)
-        # x variables
-        elig = prep.eligible[self.free]
-        fi, fp = np.nonzero(elig)
-        si = self.free[fi]
+        # x variables: allowed harvesting prescriptions of the free stands (sorted by k,
+        # hence by stand).
+        ks = np.nonzero(prep.choice & self.is_free[prep.stand_of])[0]
+        si = prep.stand_of[ks]
+        self.cell_k = ks
         self.cell_i = si
-        self.cell_p = fp
-        self.xvars = [m.new_bool_var(f"x{i}_{p + 1}") for i, p in zip(si, fp, strict=True)]
+        self.xvars = [m.new_bool_var(f"x{k}") for k in ks.tolist()]
         self.xidx = np.array([v.index for v in self.xvars], dtype=np.int64)
-        self.cell_of: dict[tuple[int, int], int] = {
-            (int(i), int(p)): k for k, (i, p) in enumerate(zip(si, fp, strict=True))
-        }
-        starts = np.searchsorted(si, self.free, side="left")
-        ends = np.searchsorted(si, self.free, side="right")
+        starts = np.searchsorted(si, np.arange(n), side="left")
+        ends = np.searchsorted(si, np.arange(n), side="right")
+        self._span = (starts, ends)
+        self._omask = prep.open_mask[ks]
         self.n_amo = 0
-        for a, b in zip(starts, ends, strict=True):
+        for i in self.free.tolist():
+            a, b = int(starts[i]), int(ends[i])
             if b - a > 1:
                 m.add_at_most_one(self.xvars[a:b])
                 self.n_amo += 1
@@ -176,25 +193,31 @@ class SubModel:
         self.n_rows = 0
         self.row_tightening = 0.0
         self.added: set[int] = set()
-        # rule rows
-        for r in prep.rows:
-            d, _ = r.x_coefs(n, P)
-            dv = d[si, fp]
+        # rule rows, against the no-harvest prescriptions
+        rows = prep.rows
+        if len(rows) and len(ks):
+            D = rows.coefs(ks) - rows.coefs(prep.null[si])
+        else:
+            D = np.zeros((len(ks), len(rows)))
+        const_all = rows.lhs(base)  # free stands on no harvest in ``base``
+        mag_all = rows.magnitude(base)
+        for r, row in enumerate(rows):
+            dv = D[:, r]
             nz = np.nonzero(dv)[0]
-            const = r.lhs(base)  # free stands uncut in ``base``
+            const = float(const_all[r])
             if nz.size == 0:
                 continue
             mx = float(np.abs(dv[nz]).max())
             s = ROW_TARGET / mx
             coefs = np.ceil(dv[nz] * s).astype(np.int64)
             # Bound on the float error of rhs - const (zero when both are exact zeros).
-            safety = 1e-12 * (abs(r.rhs) + r.lhs(base, absolute=True))
-            rhs_real = r.rhs - const - safety
+            safety = 1e-12 * (abs(row.rhs) + float(mag_all[r]))
+            rhs_real = row.rhs - const - safety
             rhs = math.floor(rhs_real * s)
             self.row_tightening = max(
                 self.row_tightening,
                 float(
-                    ((coefs - dv[nz] * s).sum() + (rhs_real * s - rhs)) / s / max(r.scale_ref, 1)
+                    ((coefs - dv[nz] * s).sum() + (rhs_real * s - rhs)) / s / max(row.scale_ref, 1)
                 ),
             )
             m.add(
@@ -202,7 +225,7 @@ class SubModel:
             )
             self.n_rows += 1
         # objective
-        coef = scaling.int_value[si, fp]
+        coef = scaling.int_value[ks]
         nzo = np.nonzero(coef)[0]
         m.maximize(
             cp_model.LinearExpr.weighted_sum([self.xvars[k] for k in nzo], coef[nzo].tolist())
@@ -216,20 +239,17 @@ class SubModel:
         key = (i, p)
         if key in self.ovars:
             return self.ovars[key]
-        g = int(self.prep.green[i])
-        ks = [
-            self.cell_of[(i, q)] for q in range(max(0, p - g + 1), p + 1) if (i, q) in self.cell_of
-        ]
-        if not ks:
+        a, b = int(self._span[0][i]), int(self._span[1][i])
+        bit = np.uint64(1) << np.uint64(p)
+        pos = [a + int(t) for t in np.nonzero(self._omask[a:b] & bit)[0]]
+        if not pos:
             return None
-        if len(ks) == 1:
-            v = self.xvars[ks[0]]
+        if len(pos) == 1:
+            v = self.xvars[pos[0]]
         else:
+            # o[i, p] = sum of the x_k keeping the stand open in p (at most one is 1).
             v = self.m.new_bool_var(f"o{i}_{p + 1}")
-            xs = [self.xvars[k] for k in ks]
-            for x in xs:
-                self.m.add_implication(x, v)
-            self.m.add_bool_or(xs).only_enforce_if(v)
+            self.m.add(cp_model.LinearExpr.sum([self.xvars[t] for t in pos]) == v)
         self.ovars[key] = v
         return v
 
@@ -299,20 +319,19 @@ class SubModel:
             self.add_cover(frozenset((int(a), int(b))))
 
     # ---- hints and solving --------------------------------------------------------------
-    def hint(self, period: np.ndarray) -> None:
-        """Use ``period`` (values of the free stands) as the solution hint."""
+    def hint(self, plan: np.ndarray) -> None:
+        """Use ``plan`` (prescriptions of the free stands) as the solution hint."""
         m = self.m
         m.clear_hints()
-        per = np.asarray(period)
-        on = per[self.cell_i] == self.cell_p + 1
+        per = np.asarray(plan, dtype=np.int64)
+        on = per[self.cell_i] == self.cell_k
         for v, b in zip(self.xvars, on.tolist(), strict=True):
             m.add_hint(v, b)
+        om = self.prep.open_mask
         for (i, p), v in self.ovars.items():
             if v.index in self._xset():
                 continue
-            g = int(self.prep.green[i])
-            q = int(per[i])
-            m.add_hint(v, q > 0 and p - g + 1 <= q - 1 <= p)
+            m.add_hint(v, bool((int(om[per[i]]) >> p) & 1))
 
     def _xset(self) -> set[int]:
         if not hasattr(self, "_xs"):
@@ -402,8 +421,8 @@ class SubModel:
         if name in ("optimal", "feasible"):
             sol = np.asarray(solver.response_proto.solution, dtype=np.int64)
             on = sol[self.xidx] > 0
-            per = self.base.copy()
-            per[self.cell_i[on]] = self.cell_p[on] + 1
-            return SolveOut(name, per, solver.objective_value, solver.best_objective_bound, wall)
+            plan = self.base.copy()
+            plan[self.cell_i[on]] = self.cell_k[on]
+            return SolveOut(name, plan, solver.objective_value, solver.best_objective_bound, wall)
         bound = solver.best_objective_bound if name == "unknown" else None
         return SolveOut(name, None, None, bound, wall)

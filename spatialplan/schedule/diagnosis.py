@@ -1,8 +1,10 @@
 """Why a problem is infeasible: relax one rule family at a time, then bisect its setting.
 
 Families: flow (tolerance, non-declining), openings (maximum opening size, unit
-restriction), minimum age (needs ``PlanProblem.eligible_no_min_age``), ending inventory
-(volume floor, mean-age floor) and targets (per-period volume/area bounds). A family that
+restriction), minimum age (needs ``PlanProblem.eligible_no_min_age`` and the
+single-harvest model, whose prescriptions follow ``eligible``), ending inventory (volume
+floor, mean-age floor), old forest (the retained share) and targets (per-period
+volume/area bounds). A family that
 makes the problem feasible when dropped is then relaxed only as far as needed, found by
 bisection on a feasibility check: the aspatial LP first (LP-infeasible means infeasible),
 then the greedy heuristic (a legal plan means feasible), then CP-SAT on the full model
@@ -34,17 +36,24 @@ def is_feasible(problem: PlanProblem, time_limit_s: float = 5.0, workers: int = 
 
     t0 = time.perf_counter()
     prep = prepare(problem)
-    zero = np.zeros((prep.n, prep.P))
+    zero = np.zeros(prep.n_rx)
     lp = solve_lp(
-        problem, rows=prep.rows, eligible=prep.eligible, objective=zero, time_limit_s=time_limit_s
+        problem,
+        rows=prep.rows,
+        allowed=prep.allowed,
+        objective=zero,
+        time_limit_s=time_limit_s,
+        rx=prep.rx,
     )
     if lp.status == "infeasible":
         return False
-    if not check_plan(prep, np.zeros(prep.n, dtype=np.int64)):
+    if not check_plan(prep, prep.empty_plan()):
         return True
-    lp2 = solve_lp(problem, rows=prep.rows, eligible=prep.eligible, time_limit_s=time_limit_s)
-    if lp2.status == "optimal":
-        _, info = greedy_plan(prep, lp2.x, lp2.price, t0 + time_limit_s, order="balanced")
+    lp2 = solve_lp(
+        problem, rows=prep.rows, allowed=prep.allowed, time_limit_s=time_limit_s, rx=prep.rx
+    )
+    if lp2.status == "optimal" and lp2.x_rx is not None:
+        _, info = greedy_plan(prep, lp2.x_rx, lp2.price, t0 + time_limit_s, order="balanced")
         if info.get("legal"):
             return True
     left = time_limit_s - (time.perf_counter() - t0)
@@ -65,9 +74,7 @@ def is_feasible(problem: PlanProblem, time_limit_s: float = 5.0, workers: int = 
         t0=t0,
         lp_value=float("inf"),
     )
-    sub = SubModel(
-        prep, np.nonzero(prep.eligible.any(axis=1))[0], np.zeros(prep.n, dtype=np.int64), scaling
-    )
+    sub = SubModel(prep, np.nonzero(prep.has_choice)[0], prep.empty_plan(), scaling)
     res = lazy_rounds(ctx, sub, left, "diagnose", first_slice_s=max(left / 4, 0.2))
     if res == "infeasible":
         return False
@@ -155,7 +162,11 @@ def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:
         families.append(
             ("openings", dataclasses.replace(problem, max_opening_ha=None, unit_restriction=False))
         )
-    if problem.eligible_no_min_age is not None and (problem.min_age_yr or 0) > 0:
+    if (
+        problem.eligible_no_min_age is not None
+        and (problem.min_age_yr or 0) > 0
+        and problem.prescriptions is None
+    ):
         families.append(("minimum age", _with_min_age(problem, 0.0)))
     if fr.ending_volume_min_m3 is not None or fr.ending_mean_age_min_yr is not None:
         families.append(
@@ -164,6 +175,8 @@ def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:
                 _flow(problem, ending_volume_min_m3=None, ending_mean_age_min_yr=None),
             )
         )
+    if fr.old_forest_min_share is not None:
+        families.append(("old forest", _flow(problem, old_forest_min_share=None)))
     if any(
         v is not None for v in (fr.volume_min_m3, fr.volume_max_m3, fr.area_min_ha, fr.area_max_ha)
     ):
@@ -258,6 +271,12 @@ def _detail(
                 v = _bisect(lambda x: feas(_flow(pr, ending_mean_age_min_yr=x)), e, 0.0)
                 msgs.append(f"ending mean age {_fmt(e)} yr is infeasible, {_fmt(v)} yr is feasible")
         return msgs or ["drop the ending-inventory rules"]
+    if name == "old forest":
+        sh = float(fr.old_forest_min_share or 0.0)
+        if feas(_flow(problem, old_forest_min_share=0.0)):
+            v = _bisect(lambda x: feas(_flow(problem, old_forest_min_share=x)), sh, 0.0)
+            return [f"old-forest share {sh:.3g} is infeasible, {v:.3g} is feasible"]
+        return ["drop the old-forest rule"]
     # targets
     pairs = [
         ("volume_min_m3", "period volume minimum", "m3", 0.0),
@@ -282,10 +301,16 @@ def _detail(
             continue
         others = {k: None for k, *_ in pairs + tops if k != key}
         pr = _flow(problem, **others)
-        a_ha = np.asarray(problem.area_ha, float)[:, None]
-        total = (
-            (a_ha * problem.volume_m3_ha).sum() if unit == "m3" else (a_ha.sum() * problem.periods)
-        )
+        a_ha = np.asarray(problem.area_ha, float)
+        if unit != "m3":
+            total = float(a_ha.sum()) * problem.periods
+        elif problem.prescriptions is None:
+            total = float((a_ha[:, None] * problem.volume_m3_ha).sum())
+        else:
+            # Above every harvest of every prescription: no period can hold more.
+            rx = problem.rx()
+            owner = np.repeat(np.arange(rx.n_prescriptions), np.diff(rx.harvest_start))
+            total = float((a_ha[rx.stand_of[owner]] * rx.harvest_volume_m3_ha).sum())
         big = float(total) + 1.0
         if feas(_flow(pr, **{key: big})):
             v = _bisect(_flow_check(feas, pr, key), float(cur), big)

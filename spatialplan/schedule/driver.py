@@ -10,10 +10,11 @@ Public entry points:
 
 How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling model"):
 
-1. LP bound with HiGHS; its dual prices rank the periods of every stand.
+1. LP bound with HiGHS (one variable per prescription); its dual prices rank the
+   prescriptions of every stand.
 2. Regret greedy with incremental opening checks, flow repair and fill: a legal plan
    within seconds (:mod:`spatialplan.schedule.construct`).
-3. Simulated annealing over stand-period assignments with hard opening checks and
+3. Simulated annealing over prescription choices with hard opening checks and
    penalised rule rows (:mod:`spatialplan.schedule.anneal`): on large models until the
    deadline, on small and medium ones for a share of the time.
 4. Small and medium models: CP-SAT (:mod:`spatialplan.schedule.cpsat`) on the full model
@@ -41,12 +42,12 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from spatialplan.errors import InfeasibleError, NoSolutionError
-from spatialplan.problem import PlanProblem
+from spatialplan.problem import PlanProblem, Prescriptions
 from spatialplan.schedule.anneal import anneal
 from spatialplan.schedule.bound import LpResult, lp_bound, solve_lp
 from spatialplan.schedule.construct import greedy_plan
 from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
-from spatialplan.schedule.model import check_plan, plan_npv, prepare
+from spatialplan.schedule.model import check_plan, plan_harvests, plan_npv, prepare
 from spatialplan.schedule.windows import SearchCtx, lazy_rounds, lns, seed_pair_covers
 from spatialplan.settings import SolverSettings
 
@@ -60,8 +61,8 @@ __all__ = [
     "solve",
 ]
 
-# Local search then CP-SAT on the full model up to this many harvest variables; local
-# search alone above.
+# Local search then CP-SAT on the full model up to this many prescription variables
+# (allowed prescriptions that harvest); local search alone above.
 FULL_MODEL_MAX_VARS = 6_000
 # Share of the remaining time the local search may use before CP-SAT on small models.
 LOCAL_SHARE_FULL = 0.4
@@ -85,14 +86,15 @@ class PlanResult:
     Attributes
     ----------
     period
-        (n,) harvest period per stand, 0 = not harvested, else ``1 .. P``.
+        (n,) first harvest period per stand, 0 = not harvested, else ``1 .. P`` (the only
+        harvest in the single-harvest model; see :meth:`harvests` for all of them).
     status
         ``"optimal"`` (gap within ``settings.gap`` or proven), ``"feasible"``,
         ``"time_limit"`` (best plan when time ran out), ``"interrupted"`` (best plan when
         the user pressed Ctrl-C), ``"infeasible"`` or ``"no_solution"`` (the last two are
         raised as errors by :func:`solve`).
     npv
-        NPV of ``period`` recomputed in float64 from the problem arrays.
+        NPV of the plan recomputed in float64 from the problem's prescriptions.
     cpsat_bound
         CP-SAT's upper bound on the full model in real units (``None`` when only
         sub-models were solved).
@@ -105,6 +107,10 @@ class PlanResult:
     stats
         Model size, rounds, covers, scaling and rounding errors, heuristic NPV, time to
         first plan, what each component found, warnings.
+    prescription
+        (n,) chosen prescription per stand: a global index into ``problem.rx()``
+        (``None`` only for results assembled from a ``period`` array alone, which then
+        means the single-harvest prescriptions).
     """
 
     period: np.ndarray
@@ -115,6 +121,21 @@ class PlanResult:
     gap: float
     solve_time_s: float
     stats: dict = field(default_factory=dict)
+    prescription: np.ndarray | None = None
+
+    def harvests(
+        self, problem: PlanProblem, rx: Prescriptions | None = None
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Every harvest of the plan as ``(stand, harvest_no, period)`` arrays.
+
+        ``harvest_no`` counts each stand's harvests from 1; rows are ordered by stand,
+        then period. ``rx`` defaults to ``problem.rx()``.
+        """
+        if self.prescription is None:
+            per = np.asarray(self.period, dtype=np.int64)
+            stand = np.nonzero(per > 0)[0]
+            return stand, np.ones(len(stand), dtype=np.int64), per[stand]
+        return plan_harvests(problem.rx() if rx is None else rx, self.prescription)
 
 
 def gap(npv: float, bound: float) -> float:
@@ -236,34 +257,34 @@ def solve(
         for order in HEURISTIC_ORDERS:
             if time.perf_counter() >= deadline and best_h is not None:
                 break
-            if lp.status == "optimal":
-                period, info = greedy_plan(prep, lp.x, lp.price, deadline, order=order)
+            if lp.status == "optimal" and lp.x_rx is not None:
+                plan, info = greedy_plan(prep, lp.x_rx, lp.price, deadline, order=order)
             else:
-                period, info = greedy_plan(
-                    prep, np.ones((prep.n, prep.P)) / prep.P, None, deadline, order=order
-                )
-            info["npv"] = plan_npv(problem, period) if info.get("legal") else None
+                # No LP solution: spread every stand evenly over its harvest periods.
+                even = np.where(prep.harvest_mask != 0, 1.0 / max(prep.P, 1), 0.0)
+                plan, info = greedy_plan(prep, even, None, deadline, order=order)
+            info["npv"] = plan_npv(problem, plan, prep.rx) if info.get("legal") else None
             hinfo[order] = info
             if info.get("legal") and (best_h is None or info["npv"] > best_h[1]):
-                best_h = (period, info["npv"], order)
+                best_h = (plan, info["npv"], order)
         stats["heuristic_time_s"] = round(time.perf_counter() - th, 3)
         stats["heuristic"] = hinfo
         if best_h is not None:
             ctx.offer(best_h[0], "heuristic")
             stats["heuristic_order"] = best_h[2]
         stats["heuristic_npv"] = None if best_h is None else best_h[1]
-        empty = np.zeros(prep.n, dtype=np.int64)
+        empty = prep.empty_plan()
         if ctx.best is None and not check_plan(prep, empty):
             ctx.offer(empty, "empty")
         # 3. improvement
-        n_vars = int(prep.eligible.sum())
+        n_vars = prep.n_vars
         strategy = _strategy
         if strategy == "auto":
             strategy = "full" if n_vars <= FULL_MODEL_MAX_VARS else "local"
         stats["strategy"] = strategy
         infeasible = False
         if strategy != "heuristic" and not ctx.stopped() and n_vars > 0:
-            if ctx.best is None or (not ctx.best.any() and strategy != "local"):
+            if ctx.best is None or (not prep.harvests_any(ctx.best) and strategy != "local"):
                 # No legal start for the local search: let CP-SAT find one first.
                 infeasible = _full(ctx, settings, stats, until_first=True)
             if not infeasible and ctx.best is not None and strategy in ("full", "local"):
@@ -306,10 +327,10 @@ def solve(
     if problems:  # never expected: every accepted plan was checked
         msg = "internal error: the best plan breaks rules: " + "; ".join(problems[:3])
         raise NoSolutionError(msg)
-    npv = plan_npv(problem, final)
+    npv = plan_npv(problem, final, prep.rx)
     bound = _bound(ctx)
     plan_gap = gap(npv, bound)
-    empty_plan = not final.any()
+    empty_plan = not prep.harvests_any(final)
     stats["empty_plan"] = bool(empty_plan)
     if empty_plan and lp_value > 0:
         stats["warnings"].append(
@@ -325,7 +346,7 @@ def solve(
     else:
         status = "feasible"
     return PlanResult(
-        period=final.copy(),
+        period=prep.first_period(final),
         status=status,
         npv=npv,
         cpsat_bound=ctx.cpsat_bound,
@@ -333,6 +354,7 @@ def solve(
         gap=plan_gap,
         solve_time_s=elapsed,
         stats=stats,
+        prescription=final.copy(),
     )
 
 
@@ -348,8 +370,8 @@ def _bound(ctx: SearchCtx) -> float:
 def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bool) -> bool:
     """CP-SAT on the full model with lazy covers; returns True when proven infeasible."""
     prep = ctx.prep
-    free = np.nonzero(prep.eligible.any(axis=1))[0]
-    base = np.zeros(prep.n, dtype=np.int64)
+    free = np.nonzero(prep.has_choice)[0]
+    base = prep.empty_plan()
     tb = time.perf_counter()
     sub = SubModel(prep, free, base, ctx.scaling)
     stats["model_build_s"] = round(time.perf_counter() - tb, 3)
@@ -386,8 +408,8 @@ def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bo
     return False
 
 
-def _offer_local(ctx: SearchCtx, period: np.ndarray) -> None:
-    ctx.offer(period, "local")
+def _offer_local(ctx: SearchCtx, plan: np.ndarray) -> None:
+    ctx.offer(plan, "local")
 
 
 def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: bool) -> None:
@@ -430,7 +452,7 @@ def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: boo
 
 
 def _first_slice(prep) -> float:
-    return float(min(5.0, 0.5 + prep.eligible.sum() / 4000.0))
+    return float(min(5.0, 0.5 + prep.n_vars / 4000.0))
 
 
 def diagnose(problem: PlanProblem, settings: SolverSettings) -> list[str]:

@@ -12,7 +12,7 @@ fixed at the proposal, and the window is solved by lazy rounds.
 
 *Spatial LNS.* Large neighbourhood search (Shaw 1998, from memory) over windows of the
 adjacency graph: a breadth-first ball of a few hundred stands around a seed stand is freed,
-every other stand keeps its period in the best plan (and enters the openings and the flow
+every other stand keeps its prescription in the best plan (and enters the openings and the flow
 rows as constants), the window is re-optimised with CP-SAT, and improvements are kept.
 Windows adapt their size to how fast CP-SAT closes them.
 """
@@ -77,15 +77,15 @@ class SearchCtx:
         """Add ``k`` to a counter in ``stats``."""
         self.stats[key] = self.stats.get(key, 0) + k
 
-    def offer(self, period: np.ndarray, source: str) -> bool:
-        """Keep ``period`` when it is legal and better than the best plan."""
-        v = plan_npv(self.prep.problem, period)
+    def offer(self, plan: np.ndarray, source: str) -> bool:
+        """Keep ``plan`` (prescription per stand) when it is legal and better than the best."""
+        v = plan_npv(self.prep.problem, plan, self.prep.rx)
         if self.best is not None and v <= self.best_npv + 1e-9 * max(abs(self.best_npv), 1.0):
             return False
-        if check_plan(self.prep, period):
+        if check_plan(self.prep, plan):
             self.bump("rejected_" + source)
             return False
-        self.best = np.asarray(period, dtype=np.int64).copy()
+        self.best = np.asarray(plan, dtype=np.int64).copy()
         self.best_npv = v
         el = time.perf_counter() - self.t0
         self.stats.setdefault("time_to_first_plan_s", round(el, 3))
@@ -115,9 +115,9 @@ def seed_pair_covers(prep: Prep, pool: CoverPool) -> int:
     return k
 
 
-def _new_covers(ctx: SearchCtx, period: np.ndarray, breaches: list) -> int:
+def _new_covers(ctx: SearchCtx, plan: np.ndarray, breaches: list) -> int:
     prep = ctx.prep
-    _, hop = prep.open_matrices(period)
+    _, hop = prep.open_matrices(plan)
     k = 0
     for p, grp in breaches:
         for s in extract_covers(prep, p, grp, hop):
@@ -127,8 +127,8 @@ def _new_covers(ctx: SearchCtx, period: np.ndarray, breaches: list) -> int:
 
 
 def _ball(prep: Prep, seed: int, size: int, extra: np.ndarray | None = None) -> np.ndarray:
-    """Breadth-first ball of ``size`` stands with eligible cells around ``seed``."""
-    has = np.asarray(prep.eligible.any(axis=1), dtype=bool)
+    """Breadth-first ball of ``size`` stands with a harvesting prescription around ``seed``."""
+    has = prep.has_choice
     seen = {seed}
     dq = deque([seed])
     out: list[int] = []
@@ -181,15 +181,16 @@ def lazy_rounds(
         if full and out.bound_int is not None and out.status in ("optimal", "feasible"):
             # Only a search that reached a solution reports a proven bound; a bound below a
             # legal plan already found cannot be one (an unfinished call reports junk).
-            b = out.bound_int / ctx.scaling.s_obj + ctx.scaling.total_error_bound
+            sc = ctx.scaling
+            b = out.bound_int / sc.s_obj + sc.offset + sc.total_error_bound
             if b >= ctx.best_npv - 1e-6 * max(abs(ctx.best_npv), 1.0):
                 ctx.cpsat_bound = b if ctx.cpsat_bound is None else min(ctx.cpsat_bound, b)
-        if out.period is None:
+        if out.plan is None:
             slice_s *= 2
             continue
-        br = spatial_breaches(ctx.prep, out.period)
+        br = spatial_breaches(ctx.prep, out.plan)
         if not br:
-            ctx.offer(out.period, source)
+            ctx.offer(out.plan, source)
             if out.status == "optimal":
                 if full:
                     ctx.proven = True
@@ -198,17 +199,17 @@ def lazy_rounds(
             slice_s *= 2
             continue
         ctx.bump("rounds")
-        new = _new_covers(ctx, out.period, br)
+        new = _new_covers(ctx, out.plan, br)
         sub.add_covers(ctx.pool)
         if repair and not ctx.stopped():
-            _repair(ctx, out.period, br)
+            _repair(ctx, out.plan, br)
         if new == 0:
             # Should not happen (every breach yields a new cover); avoid a busy loop.
             slice_s *= 2
     return result
 
 
-def _repair(ctx: SearchCtx, period: np.ndarray, breaches: list) -> None:
+def _repair(ctx: SearchCtx, plan: np.ndarray, breaches: list) -> None:
     """Make a near-legal plan legal by re-solving the offending openings and their ring."""
     prep = ctx.prep
     stands = set()
@@ -216,14 +217,14 @@ def _repair(ctx: SearchCtx, period: np.ndarray, breaches: list) -> None:
         for i in grp:
             stands.add(int(i))
             stands.update(int(j) for j in prep.neighbours(int(i)))
-    has = np.asarray(prep.eligible.any(axis=1), dtype=bool)
+    has = prep.has_choice
     free = np.array(sorted(i for i in stands if has[i]), dtype=np.int64)
     if free.size == 0:
         return
-    sub = SubModel(prep, free, period, ctx.scaling)
+    sub = SubModel(prep, free, plan, ctx.scaling)
     budget = min(max(1.0, 0.002 * free.size), ctx.left())
     # Hint with the proposal itself: the legal plan wanted is the one closest to it.
-    lazy_rounds(ctx, sub, budget, "repair", first_slice_s=budget, hint=period)
+    lazy_rounds(ctx, sub, budget, "repair", first_slice_s=budget, hint=plan)
     ctx.bump("repairs")
 
 
@@ -231,7 +232,7 @@ def lns(ctx: SearchCtx, window: int = 250, window_time_s: float = 4.0) -> None:
     """Spatial large neighbourhood search from ``ctx.best`` until the deadline."""
     prep = ctx.prep
     rng = np.random.default_rng(ctx.seed)
-    has = np.nonzero(prep.eligible.any(axis=1))[0]
+    has = np.nonzero(prep.has_choice)[0]
     if has.size == 0 or ctx.best is None:
         return
     order = list(rng.permutation(has))
