@@ -283,8 +283,10 @@ class HarvestPlan:
     Attributes
     ----------
     schedule
-        The ``schedule`` layer: the stand attributes plus ``period`` (empty when not
-        harvested), ``harvest_year``, ``age_at_harvest``, ``volume_m3``, ``value``,
+        The ``schedule`` layer: the stand attributes plus ``period`` (first harvest,
+        empty when not harvested), ``harvest_count``, ``harvest_periods``,
+        ``harvest_mid_year``, ``age_at_harvest_yr``, ``volume_m3``, ``npv`` (the stand's
+        share of the plan NPV, ending value included), ``ending_value_npv``,
         ``opening_id`` ... in the input CRS.
     openings
         The ``openings`` layer: one polygon per opening and period.
@@ -303,6 +305,9 @@ class HarvestPlan:
         What the plan was built from (:func:`write_outputs` needs them).
     messages
         Notes from reading and building the problem.
+    harvests
+        The ``harvests`` table: one row per harvest (a stand may be cut more than once),
+        with the age and stratum of the crop cut, volume, gross value and NPV.
     """
 
     schedule: gpd.GeoDataFrame
@@ -315,6 +320,7 @@ class HarvestPlan:
     inputs: PlanInputs
     bundle: PlanBundle
     messages: tuple[str, ...] = ()
+    harvests: pd.DataFrame | None = None
 
     @property
     def settings(self) -> Settings:
@@ -348,7 +354,7 @@ class HarvestPlan:
 
     @property
     def verdict(self) -> str:
-        """One line from the independent check: PASS or FAIL with counts."""
+        """One line from the independent check: ``passed`` or ``failed`` with counts."""
         return str(self.verify.verdict)
 
 
@@ -413,13 +419,12 @@ def plan(
     ...     "economics.price_per_m3": 40.0, "horizon.periods": 3,
     ...     "solver.time_limit_s": 1.0, "solver.workers": 1})
     >>> result = plan(voronoi_forest(12, seed=1), synthetic_yield_table(), settings)
-    >>> result.verdict.startswith("PASS"), result.npv <= result.lp_bound
+    >>> result.verdict.startswith("passed"), result.npv <= result.lp_bound
     (True, True)
     >>> result.periods["period"].tolist()
     [1, 2, 3]
     """
-    from spatialplan import outputs, runtable, schedule, verify
-    from spatialplan.pipeline import build_problem, schedule_frame
+    from spatialplan.pipeline import plan_layers, solve_plan
 
     if isinstance(stands, PlanInputs):
         if yields is not None:
@@ -428,41 +433,22 @@ def plan(
         inputs = _with_settings(stands, settings)
     else:
         inputs = read_inputs(stands, yields, settings)
-    s = inputs.settings
-    bundle = build_problem(inputs)
-    result = schedule.solve(bundle.problem, s.solver, on_progress=on_progress)
-    # The same layers pipeline.write_plan writes, built in memory.
-    sched = schedule_frame(inputs, bundle, result.period)
-    report = verify.verify_schedule(sched, s, inputs.yield_table)
-    problem = bundle.problem
-    openings, stand_opening = outputs.opening_table(
-        sched,
-        problem.edges,
-        s.horizon.periods,
-        problem.green_up_periods,
-        problem.initially_open,
-        s.rules.max_opening_ha,
-        problem.opening_area_ha,
-        id_col=s.fields.id_field,
-    )
-    sched["opening_id"] = stand_opening
-    run = runtable.plan_run_info(
-        inputs,
-        result,
-        report.verdict,
-        {"violations": str(len(report.violations)), "max_opening_ha": str(s.rules.max_opening_ha)},
-    )
+    bundle, result = solve_plan(inputs, on_progress=on_progress)
+    # The same layers pipeline.write_plan writes, built in memory by the same function.
+    layers, report = plan_layers(inputs, bundle, result)
+    run = layers["run"]
     return HarvestPlan(
-        schedule=sched,
-        openings=openings,
-        periods=outputs.period_table(sched, s, openings),
-        strata=outputs.strata_table(sched, s),
-        run=run,
+        schedule=layers["schedule"],
+        openings=layers["openings"],
+        periods=layers["periods"],
+        strata=layers["strata"],
+        run=dict(zip(run["key"], run["value"], strict=True)),
         verify=report,
         result=result,
         inputs=inputs,
         bundle=bundle,
         messages=tuple(inputs.messages + bundle.messages),
+        harvests=layers["harvests"],
     )
 
 
@@ -516,6 +502,8 @@ def verify_plan(
     plan: HarvestPlan | gpd.GeoDataFrame | str | Path,
     settings: SettingsSource = None,
     yields: YieldsSource | Any = None,
+    *,
+    harvests: pd.DataFrame | None = None,
 ) -> Any:
     """Check every rule of a plan, independently of the solver, as ``spatialplan verify``.
 
@@ -531,6 +519,11 @@ def verify_plan(
     yields
         Yield table for the flow and ending-inventory checks (CSV, DataFrame, or a
         growth model). Default: the plan's own, or the table recorded in the GeoPackage.
+    harvests
+        A ``harvests`` table (one row per harvest: stand id, ``period`` ...) for a plan
+        that cuts stands more than once. Default: the plan's own (a :class:`HarvestPlan`
+        or the GeoPackage's ``harvests`` table); for a GeoDataFrame, its ``period``
+        column.
 
     Returns
     -------
@@ -554,16 +547,17 @@ def verify_plan(
     (False, [('max_opening', 1, ('A', 'B'))])
     """
     from spatialplan.growth import GrowthModel, YieldTable
-    from spatialplan.verify import read_plan, verify_schedule
+    from spatialplan.verify import read_harvests, read_plan, verify_schedule
 
     s = None if settings is None else _settings(settings)
     if isinstance(plan, HarvestPlan):
         s = s or plan.settings
         table = plan.inputs.growth if yields is None else yields
-        return verify_schedule(plan.schedule, s, _yields(table, s))
+        given = plan.harvests if harvests is None else harvests
+        return verify_schedule(plan.schedule, s, _yields(table, s), harvests=given)
     if isinstance(plan, gpd.GeoDataFrame):
         s = s or Settings()
-        return verify_schedule(plan, s, _yields(yields, s))
+        return verify_schedule(plan, s, _yields(yields, s), harvests=harvests)
     yields_path = yields if isinstance(yields, (str, Path)) else None
     schedule, recorded, table = read_plan(plan, None, yields_path, settings=s)
     if isinstance(yields, (pd.DataFrame, YieldTable, GrowthModel)):
@@ -571,7 +565,9 @@ def verify_plan(
     if recorded is None:  # as the command's note says
         warnings.warn(f"{plan} records no settings; the defaults are used", stacklevel=2)
     rules = recorded or Settings()
-    return verify_schedule(schedule, rules, _yields(table, rules))
+    if harvests is None:
+        harvests = read_harvests(plan)
+    return verify_schedule(schedule, rules, _yields(table, rules), harvests=harvests)
 
 
 def _yields(yields: Any, settings: Settings) -> Any:

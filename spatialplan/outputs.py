@@ -1,12 +1,13 @@
 """Plan outputs for GIS staff: openings, summary tables, the plan GeoPackage, a period raster.
 
-The functions here take plain data (the schedule GeoDataFrame with an integer ``period``
-column, numpy arrays from the planning problem, settings) and return frames or write
-files. Every file is written through :func:`spatialplan._io.atomic_path`, so a failure
+The functions here take plain data (the schedule GeoDataFrame, the ``harvests`` table with
+one row per harvest or, for a plan that harvests each stand at most once, the schedule's
+integer ``period`` column; numpy arrays from the planning problem; settings) and return
+frames or write files. Every file is written through :func:`spatialplan._io.atomic_path`, so a failure
 part-way never leaves a half-written output and an earlier file stays intact.
 
 Openness follows ``docs/architecture.md``: a stand harvested in period ``q`` is open in
-periods ``q .. q + G - 1``; a stand young at the start is open where ``initially_open``
+periods ``q .. q + G - 1``, after every one of its harvests; a stand young at the start is open where ``initially_open``
 says so. An *opening* is a connected group (over the adjacency edges) of stands open
 in the same period.
 """
@@ -36,6 +37,8 @@ __all__ = [
     "NOT_HARVESTED_COLOUR",
     "OPENING_COLOUR",
     "RESERVE_COLOUR",
+    "harvest_events",
+    "open_matrix",
     "opening_table",
     "period_colours",
     "period_table",
@@ -99,20 +102,80 @@ def _period_array(values: Any) -> np.ndarray:
     return s.to_numpy(dtype=np.int64)
 
 
+def harvest_events(
+    schedule: pd.DataFrame, harvests: pd.DataFrame | None = None, id_col: str = "stand_id"
+) -> tuple[np.ndarray, np.ndarray]:
+    """Every harvest of a plan as ``(stand position, period)`` arrays.
+
+    From the ``harvests`` table when given (its ``id_col`` matched to the schedule's),
+    else from the schedule's ``period`` column (one harvest per stand).
+
+    Raises
+    ------
+    ValueError
+        The harvests table names a stand the schedule lacks.
+
+    Examples
+    --------
+    >>> sched = pd.DataFrame({"stand_id": ["a", "b", "c"], "period": [2, None, 1]})
+    >>> [x.tolist() for x in harvest_events(sched)]
+    [[0, 2], [2, 1]]
+    >>> h = pd.DataFrame({"stand_id": ["a", "a", "c"], "period": [2, 7, 1]})
+    >>> [x.tolist() for x in harvest_events(sched, h)]
+    [[0, 0, 2], [2, 7, 1]]
+    """
+    if harvests is None:
+        per = _period_array(schedule["period"])
+        stand = np.flatnonzero(per > 0)
+        return stand, per[stand]
+    index = pd.Index(schedule[id_col].astype(str))
+    pos = index.get_indexer(harvests[id_col].astype(str))
+    if (pos < 0).any():
+        missing = sorted(set(harvests[id_col].astype(str)[pos < 0]))[:10]
+        msg = f"harvests table names stands not in the schedule: {', '.join(missing)}"
+        raise ValueError(msg)
+    per = _period_array(harvests["period"])
+    keep = per > 0
+    return pos[keep].astype(np.int64), per[keep]
+
+
 def open_matrix(
-    period: np.ndarray, periods: int, green_up_periods: np.ndarray, initially_open: np.ndarray
+    period: np.ndarray,
+    periods: int,
+    green_up_periods: np.ndarray,
+    initially_open: np.ndarray | None,
+    stand: np.ndarray | None = None,
 ) -> np.ndarray:
     """(n, P) bool: stand open in period ``p`` (column ``p - 1``).
 
-    Harvested in ``q`` -> open in ``q .. q + G - 1``; or open because young at the start.
+    Harvested in ``q`` -> open in ``q .. q + G - 1`` (after every harvest); or open
+    because young at the start. ``period`` is the (n,) harvest period per stand (0 =
+    none), or with ``stand`` the periods of harvest events of those stand positions
+    (``n`` is then the length of ``green_up_periods`` or ``initially_open``).
+
+    >>> open_matrix(np.array([1, 4]), 5, 2, None, stand=np.array([0, 0])).astype(int).tolist()
+    [[1, 1, 0, 1, 1]]
     """
     per = np.asarray(period, dtype=np.int64)
-    n = len(per)
+    if stand is None:
+        n = len(per)
+        stand = np.arange(n)
+    elif initially_open is not None:
+        n = np.shape(initially_open)[0]
+    else:
+        n = max(int(np.size(green_up_periods)), int(np.max(stand, initial=-1)) + 1)
+    st = np.asarray(stand, dtype=np.int64)
     g = np.broadcast_to(np.asarray(green_up_periods, dtype=np.int64), (n,))
+    out = np.zeros((n, periods), dtype=bool)
     p = np.arange(1, periods + 1)[None, :]
-    harvested = (per[:, None] > 0) & (p >= per[:, None]) & (p <= per[:, None] + g[:, None] - 1)
-    init = np.zeros((n, periods), dtype=bool) if initially_open is None else initially_open
-    return harvested | np.asarray(init, dtype=bool).reshape(n, periods)
+    cut = per > 0
+    q, i = per[cut][:, None], st[cut]
+    span = (p >= q) & (p <= q + g[i][:, None] - 1)
+    rows, cols = np.nonzero(span)
+    out[i[rows], cols] = True
+    if initially_open is not None:
+        out |= np.asarray(initially_open, dtype=bool).reshape(n, periods)
+    return out
 
 
 def opening_table(
@@ -124,14 +187,15 @@ def opening_table(
     max_opening_ha: float | None,
     opening_area_ha: np.ndarray,
     id_col: str = "stand_id",
+    harvests: pd.DataFrame | None = None,
 ) -> tuple[gpd.GeoDataFrame, np.ndarray]:
-    """Openings of every period, dissolved, and the opening of each harvested stand.
+    """Openings of every period, dissolved, and the opening of each stand's first harvest.
 
     Parameters
     ----------
     schedule
-        Stands by position ``0 .. n-1`` with an integer ``period`` column (0 or null =
-        not harvested), ``id_col`` and geometry.
+        Stands by position ``0 .. n-1`` with ``id_col``, geometry and, without
+        ``harvests``, an integer ``period`` column (0 or null = not harvested).
     edges
         (m, 2) adjacent stand positions.
     periods
@@ -143,25 +207,41 @@ def opening_table(
     max_opening_ha
         The area limit recorded beside each opening (``None`` = no limit, stored as NaN).
     opening_area_ha
-        (n,) area each stand counts toward opening size.
+        (n,) area each stand counts toward opening size (gross).
     id_col
         Stand id column.
+    harvests
+        The ``harvests`` table (``id_col``, ``period``): every harvest opens its stand
+        for ``G`` periods. Default: the schedule's ``period`` column.
 
     Returns
     -------
     openings : geopandas.GeoDataFrame
         One row per opening per period: ``opening_id`` (``"P03-0007"``), ``period``,
-        ``area_ha``, ``stand_count``, ``new_harvest_ha`` (area harvested in that very
-        period), ``max_opening_ha``, ``stand_ids`` (comma-separated), geometry (in the
-        schedule's CRS).
+        ``gross_area_ha``, ``stand_count``, ``new_harvest_gross_ha`` (area harvested in
+        that very period), ``max_opening_ha`` (the limit), ``stand_ids``
+        (comma-separated), geometry (in the schedule's CRS).
     stand_opening : numpy.ndarray
-        (n,) text: the opening a stand belongs to in its harvest period, ``""`` when not
-        harvested (or not open in its harvest period, e.g. green-up 0).
+        (n,) text: the opening a stand belongs to in its first harvest's period, ``""``
+        when not harvested.
     """
     n = len(schedule)
-    per = _period_array(schedule["period"])
+    stand, per = harvest_events(schedule, harvests, id_col)
     area = np.asarray(opening_area_ha, dtype=float).reshape(n)
-    is_open = open_matrix(per, periods, green_up_periods, initially_open)
+    init = (
+        np.zeros((n, periods), dtype=bool)
+        if initially_open is None
+        else np.asarray(initially_open, dtype=bool).reshape(n, periods)
+    )
+    is_open = open_matrix(per, periods, green_up_periods, init, stand=stand)
+    cut_in = np.zeros((n, periods + 2), dtype=bool)  # stand harvested in that period
+    cut_in[stand, np.clip(per, 0, periods + 1)] = True
+    first = np.zeros(n, dtype=np.int64)
+    order = np.lexsort((per, stand))
+    s_sorted, p_sorted = stand[order], per[order]
+    head = np.ones(len(order), dtype=bool)
+    head[1:] = s_sorted[1:] != s_sorted[:-1]
+    first[s_sorted[head]] = p_sorted[head]
     e = np.asarray(edges, dtype=np.int64).reshape(-1, 2)
     ids = schedule[id_col].astype(str).to_numpy()
     geoms = np.asarray(schedule.geometry.values)
@@ -182,30 +262,30 @@ def opening_table(
         members = np.flatnonzero(op)
         labs = lab[members]
         # Number openings by their first stand position so ids are stable across runs.
-        uniq, first = np.unique(labs, return_index=True)
-        order = np.argsort(members[first])
+        uniq, first_at = np.unique(labs, return_index=True)
+        rank = np.argsort(members[first_at])
         seq = np.empty(len(uniq), dtype=np.int64)
-        seq[order] = np.arange(1, len(uniq) + 1)
+        seq[rank] = np.arange(1, len(uniq) + 1)
         seq_of = seq[np.searchsorted(uniq, labs)]
         swidth = max(4, len(str(len(uniq))))
         for k in range(1, len(uniq) + 1):
             idx = members[seq_of == k]
             oid = f"P{p:0{width}d}-{k:0{swidth}d}"
-            newly = idx[per[idx] == p]
-            stand_opening[newly] = oid
+            newly = idx[cut_in[idx, p]]
+            stand_opening[newly[first[newly] == p]] = oid
             rows.append(
                 {
                     "opening_id": oid,
                     "period": p,
-                    "area_ha": float(area[idx].sum()),
+                    "gross_area_ha": float(area[idx].sum()),
                     "stand_count": len(idx),
-                    "new_harvest_ha": float(area[newly].sum()),
+                    "new_harvest_gross_ha": float(area[newly].sum()),
                     "max_opening_ha": limit,
                     "stand_ids": ",".join(ids[idx]),
                 }
             )
             out_geoms.append(shapely.union_all(geoms[idx]))
-    cols = ["opening_id", "period", "area_ha", "stand_count", "new_harvest_ha",
+    cols = ["opening_id", "period", "gross_area_ha", "stand_count", "new_harvest_gross_ha",
             "max_opening_ha", "stand_ids"]  # fmt: skip
     frame = pd.DataFrame(rows, columns=cols)
     frame["period"] = frame["period"].astype(np.int64)
@@ -239,10 +319,51 @@ def _area_column(frame: pd.DataFrame, area_col: str | None) -> str:
     return "net_area_ha" if "net_area_ha" in frame.columns else "area_ha"
 
 
-def _col(frame: pd.DataFrame, name: str) -> np.ndarray:
-    if name not in frame.columns:
-        return np.full(len(frame), np.nan)
-    return pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=float)
+def _col(frame: pd.DataFrame, *names: str) -> np.ndarray:
+    """The first of ``names`` that ``frame`` has, as floats (NaN when it has none)."""
+    for name in names:
+        if name in frame.columns:
+            return pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=float)
+    return np.full(len(frame), np.nan)
+
+
+def _harvest_npv(schedule: pd.DataFrame) -> np.ndarray:
+    """Discounted value of the (single) harvest of each stand from the schedule alone.
+
+    ``npv`` less ``ending_value_npv`` (the stand's share of the plan NPV holds its ending
+    value too); ``value`` in plans written before the estate model.
+    """
+    if "npv" in schedule.columns:
+        return np.nan_to_num(_col(schedule, "npv")) - np.nan_to_num(
+            _col(schedule, "ending_value_npv")
+        )
+    return np.nan_to_num(_col(schedule, "value"))
+
+
+def _event_figures(
+    schedule: pd.DataFrame, harvests: pd.DataFrame | None, id_col: str, area_col: str | None
+) -> dict[str, np.ndarray]:
+    """Stand, period, net area, volume, values and age of every harvest."""
+    stand, per = harvest_events(schedule, harvests, id_col)
+    area = np.nan_to_num(_col(schedule, _area_column(schedule, area_col)))[stand]
+    if harvests is None:
+        figures = {
+            "volume": np.nan_to_num(_col(schedule, "volume_m3")),
+            "npv": _harvest_npv(schedule),
+            "gross": _col(schedule, "gross_value"),
+            "age": _col(schedule, "age_at_harvest_yr", "age_at_harvest"),
+        }
+        figures = {k: v[stand] for k, v in figures.items()}
+    else:
+        keep = _period_array(harvests["period"]) > 0
+        h = harvests[keep]
+        figures = {
+            "volume": np.nan_to_num(_col(h, "volume_m3")),
+            "npv": np.nan_to_num(_col(h, "npv")),
+            "gross": _col(h, "gross_value"),
+            "age": _col(h, "age_at_harvest_yr", "age_at_harvest"),
+        }
+    return {"stand": stand, "period": per, "area": area, **figures}
 
 
 def period_table(
@@ -251,61 +372,75 @@ def period_table(
     openings: pd.DataFrame | None = None,
     *,
     area_col: str | None = None,
+    harvests: pd.DataFrame | None = None,
+    id_col: str = "stand_id",
+    standing_volume_m3: np.ndarray | None = None,
+    old_forest_share: np.ndarray | None = None,
 ) -> pd.DataFrame:
-    """Per-period summary of a plan.
+    """Per-period summary of a plan; every harvest counts in its period.
 
     Parameters
     ----------
     schedule
-        Stand frame with ``period`` (0/null = not harvested), ``area_ha`` or
-        ``net_area_ha``, ``volume_m3`` (stand total), ``value`` (discounted), and optionally
-        ``gross_value`` (undiscounted net value) and ``age_at_harvest``.
+        Stand frame with ``net_area_ha`` (or ``area_ha``) and ``id_col``; without
+        ``harvests`` also ``period`` (0/null = not harvested), ``volume_m3``, ``npv`` and
+        ``ending_value_npv`` (or ``value``), optionally ``gross_value`` and
+        ``age_at_harvest_yr`` of the one harvest of each stand.
     settings
         :class:`spatialplan.settings.Settings` (or the same tree as nested dicts): reads
-        ``horizon.periods``, ``horizon.period_length_yr`` and the flow rules.
+        ``horizon`` (periods, length, start year), the flow rules and
+        ``rules.max_opening_ha``.
     openings
         Frame from :func:`opening_table` (for the largest opening per period).
     area_col
         Harvested-area column (default ``net_area_ha`` when present, else ``area_ha``).
+    harvests
+        The ``harvests`` table (``id_col``, ``period``, ``volume_m3``, ``gross_value``,
+        ``npv``, ``age_at_harvest_yr``), one row per harvest.
+    id_col
+        Stand id column of ``schedule`` and ``harvests``.
+    standing_volume_m3, old_forest_share
+        (P,) standing volume and old-forest share of the gross area at mid-period (the
+        pipeline computes them from the growth model); NaN when not given.
 
     Returns
     -------
     pandas.DataFrame
-        One row per period ``1 .. P``: ``period``, ``start_yr``, ``mid_yr``, ``end_yr``
-        (years from the plan start), ``harvest_area_ha``, ``harvest_volume_m3``,
-        ``gross_value``, ``discounted_value``, ``mean_age_at_harvest_yr`` (area weighted),
-        ``stands_harvested``, ``opening_count``, ``largest_opening_ha`` (largest opening
-        holding a harvest of the period), ``largest_other_opening_ha`` (largest opening
-        with no harvest of the period: young stands from before the plan or earlier cuts),
-        ``flow_lower_m3``, ``flow_upper_m3`` (volume bounds that applied to this period
-        given the previous period's harvest, the tolerance, non-declining flow and the
-        per-period targets; NaN = unbounded), ``flow_ok``, ``area_lower_ha``,
-        ``area_upper_ha``.
+        One row per period ``1 .. P``: ``period``, ``start_year``, ``end_year``,
+        ``mid_year`` (calendar years: ``start_year = horizon.start_year + (p - 1) L``),
+        ``harvest_net_area_ha``, ``harvest_volume_m3``, ``gross_value`` (undiscounted,
+        before costs), ``npv`` (discounted net value of the period's harvests),
+        ``mean_age_at_harvest_yr`` (area weighted), ``stands_harvested`` (harvests in the
+        period), ``opening_count``, ``largest_opening_ha`` (gross, largest opening holding
+        a harvest of the period), ``largest_other_opening_ha`` (largest opening with no
+        harvest of the period: young stands from before the plan or earlier cuts),
+        ``max_opening_ha`` (the limit), ``flow_lower_m3``, ``flow_upper_m3`` (volume
+        bounds that applied to this period given the previous period's harvest, the
+        tolerance, non-declining flow and the per-period targets; NaN = unbounded),
+        ``flow_ok``, ``area_lower_ha``, ``area_upper_ha``, ``old_forest_share``,
+        ``standing_volume_m3``.
     """
     P = int(_get(settings, "horizon.periods", 10))
     L = float(_get(settings, "horizon.period_length_yr", 5.0))
+    year0 = float(_get(settings, "horizon.start_year", 0))
     tol = _get(settings, "rules.flow_tolerance")
     non_declining = bool(_get(settings, "rules.non_declining", False))
     vmin = _get(settings, "rules.period_volume_min_m3")
     vmax = _get(settings, "rules.period_volume_max_m3")
     amin = _get(settings, "rules.period_area_min_ha")
     amax = _get(settings, "rules.period_area_max_ha")
+    limit = _get(settings, "rules.max_opening_ha")
 
-    per = _period_array(schedule["period"])
-    area = np.nan_to_num(_col(schedule, _area_column(schedule, area_col)))
-    vol = np.nan_to_num(_col(schedule, "volume_m3"))
-    val = np.nan_to_num(_col(schedule, "value"))
-    gross = _col(schedule, "gross_value")
-    age = _col(schedule, "age_at_harvest")
-
-    idx = np.clip(per, 0, P)  # bincount slot 0 collects unharvested stands
+    ev = _event_figures(schedule, harvests, id_col, area_col)
+    idx = np.clip(ev["period"], 0, P)  # bincount slot 0 collects periods out of range
 
     def by_period(x: np.ndarray) -> np.ndarray:
         return np.bincount(idx, weights=x, minlength=P + 1)[1:]
 
+    area, age, gross = ev["area"], ev["age"], ev["gross"]
     h_area = by_period(area)
-    h_vol = by_period(vol)
-    disc = by_period(val)
+    h_vol = by_period(ev["volume"])
+    disc = by_period(ev["npv"])
     gross_p = by_period(np.nan_to_num(gross)) if np.isfinite(gross).any() else np.full(P, np.nan)
     ok_age = np.isfinite(age)
     age_w = np.bincount(idx[ok_age], weights=(age * area)[ok_age], minlength=P + 1)[1:]
@@ -322,12 +457,9 @@ def period_table(
     n_open = np.zeros(P, dtype=np.int64)
     if openings is not None and len(openings):
         op = openings["period"].to_numpy(dtype=np.int64)
-        oa = openings["area_ha"].to_numpy(dtype=float)
-        new = (
-            openings["new_harvest_ha"].to_numpy(dtype=float) > 0
-            if "new_harvest_ha" in openings.columns
-            else np.ones(len(openings), dtype=bool)
-        )
+        oa = _col(openings, "gross_area_ha", "area_ha")
+        new_ha = _col(openings, "new_harvest_gross_ha", "new_harvest_ha")
+        new = np.where(np.isnan(new_ha), 1.0, new_ha) > 0
         ok = (op >= 1) & (op <= P)
         np.maximum.at(largest, op[ok & new] - 1, oa[ok & new])
         np.maximum.at(largest_other, op[ok & ~new] - 1, oa[ok & ~new])
@@ -355,27 +487,33 @@ def period_table(
         np.isnan(upper) | (h_vol <= upper + slack)
     )
 
-    start = np.arange(P) * L
+    def per_period(x: np.ndarray | None) -> np.ndarray:
+        return np.full(P, np.nan) if x is None else np.asarray(x, dtype=float).reshape(P)
+
+    start = year0 + np.arange(P) * L
     return pd.DataFrame(
         {
             "period": np.arange(1, P + 1, dtype=np.int64),
-            "start_yr": start,
-            "mid_yr": start + 0.5 * L,
-            "end_yr": start + L,
-            "harvest_area_ha": h_area,
+            "start_year": start,
+            "end_year": start + L,
+            "mid_year": start + 0.5 * L,
+            "harvest_net_area_ha": h_area,
             "harvest_volume_m3": h_vol,
             "gross_value": gross_p,
-            "discounted_value": disc,
+            "npv": disc,
             "mean_age_at_harvest_yr": mean_age,
             "stands_harvested": count.astype(np.int64),
             "opening_count": n_open.astype(np.int64),
             "largest_opening_ha": largest,
             "largest_other_opening_ha": largest_other,
+            "max_opening_ha": np.full(P, np.nan if limit is None else float(limit)),
             "flow_lower_m3": lower,
             "flow_upper_m3": upper,
             "flow_ok": flow_ok,
             "area_lower_ha": np.full(P, np.nan if amin is None else float(amin)),
             "area_upper_ha": np.full(P, np.nan if amax is None else float(amax)),
+            "old_forest_share": per_period(old_forest_share),
+            "standing_volume_m3": per_period(standing_volume_m3),
         }
     )
 
@@ -386,45 +524,60 @@ def strata_table(
     *,
     area_col: str | None = None,
     stratum_col: str = "stratum",
+    harvests: pd.DataFrame | None = None,
+    id_col: str = "stand_id",
 ) -> pd.DataFrame:
-    """Harvest by stratum and period (every combination, zeros included).
+    """Harvest by stratum of the crop cut and period (every combination, zeros included).
 
     Parameters
     ----------
     schedule
-        Stand frame with ``period``, ``stratum_col``, an area column and ``volume_m3``.
+        Stand frame with ``stratum_col`` (the stratum at the start), an area column and,
+        without ``harvests``, ``period`` and ``volume_m3``.
     settings
         Settings tree (reads ``horizon.periods``).
     area_col
         Area column (default ``net_area_ha`` when present, else ``area_ha``).
     stratum_col
         Stratum label column.
+    harvests
+        The ``harvests`` table (``id_col``, ``period``, ``stratum`` of the crop cut,
+        ``volume_m3``); a regenerated crop counts in its own stratum.
+    id_col
+        Stand id column of ``schedule`` and ``harvests``.
 
     Returns
     -------
     pandas.DataFrame
-        Columns ``stratum``, ``period``, ``harvest_area_ha``, ``harvest_volume_m3``,
-        ``stratum_area_ha`` (all stands of the stratum), sorted by stratum then period.
+        Columns ``stratum``, ``period``, ``harvest_net_area_ha``, ``harvest_volume_m3``,
+        ``stratum_net_area_ha`` (net area of the stands of the stratum at the start),
+        sorted by stratum then period.
     """
     P = int(_get(settings, "horizon.periods", 10))
-    per = _period_array(schedule["period"])
-    area = np.nan_to_num(_col(schedule, _area_column(schedule, area_col)))
-    vol = np.nan_to_num(_col(schedule, "volume_m3"))
-    strat = schedule[stratum_col].astype(str).to_numpy()
-    labels, code = np.unique(strat, return_inverse=True)
+    ev = _event_figures(schedule, harvests, id_col, area_col)
+    start = schedule[stratum_col].astype(str).to_numpy()
+    if harvests is not None and "stratum" in harvests.columns:
+        keep = _period_array(harvests["period"]) > 0
+        cut = harvests.loc[keep, "stratum"].astype(str).to_numpy()
+    else:
+        cut = start[ev["stand"]]
+    labels, code = np.unique(np.concatenate([start, cut]), return_inverse=True)
+    code_start, code_cut = code[: len(start)], code[len(start) :]
     S = len(labels)
-    harvested = (per >= 1) & (per <= P)
-    slot = code * P + (per - 1)
-    h_area = np.bincount(slot[harvested], weights=area[harvested], minlength=S * P)
-    h_vol = np.bincount(slot[harvested], weights=vol[harvested], minlength=S * P)
-    total = np.bincount(code, weights=area, minlength=S)
+    per = ev["period"]
+    ok = (per >= 1) & (per <= P)
+    slot = code_cut[ok] * P + (per[ok] - 1)
+    h_area = np.bincount(slot, weights=ev["area"][ok], minlength=S * P)
+    h_vol = np.bincount(slot, weights=ev["volume"][ok], minlength=S * P)
+    area = np.nan_to_num(_col(schedule, _area_column(schedule, area_col)))
+    total = np.bincount(code_start, weights=area, minlength=S)
     return pd.DataFrame(
         {
             "stratum": np.repeat(labels, P),
             "period": np.tile(np.arange(1, P + 1, dtype=np.int64), S),
-            "harvest_area_ha": h_area,
+            "harvest_net_area_ha": h_area,
             "harvest_volume_m3": h_vol,
-            "stratum_area_ha": np.repeat(total, P),
+            "stratum_net_area_ha": np.repeat(total, P),
         }
     )
 

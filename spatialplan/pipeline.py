@@ -29,7 +29,10 @@ __all__ = [
     "PlanOutcome",
     "StandAreas",
     "build_problem",
+    "chosen_prescriptions",
+    "harvests_frame",
     "load_inputs",
+    "plan_layers",
     "run_plan",
     "schedule_frame",
     "solve_plan",
@@ -40,23 +43,39 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-# Output columns added to the stand attributes in the `schedule` layer.
+# Output columns added to the stand attributes in the `schedule` layer (docs/architecture.md).
 PLAN_COLUMNS = (
     "period",
-    "harvest_year",
-    "age_at_harvest",
+    "harvest_count",
+    "harvest_periods",
+    "harvest_mid_year",
+    "age_at_harvest_yr",
     "volume_m3",
     "gross_value",
-    "value",
+    "npv",
+    "ending_value_npv",
     "stratum",
     "area_ha",
     "net_area_ha",
     "reserve",
+    "operable",
     "green_up_periods",
     "slope_pct_mean",
     "steep_share",
     "harvest_system",
     "opening_id",
+)
+
+# Columns of the `harvests` table after the stand id (named as the input id field).
+HARVEST_COLUMNS = (
+    "harvest",
+    "period",
+    "harvest_mid_year",
+    "age_at_harvest_yr",
+    "stratum",
+    "volume_m3",
+    "gross_value",
+    "npv",
 )
 
 
@@ -267,18 +286,13 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     P, L = s.horizon.periods, s.horizon.period_length_yr
     strata = st["stratum"].to_numpy(dtype=object)
     age0 = st["age"].to_numpy(dtype=float)
-    area = st["area_ha"].to_numpy(dtype=float)
     messages: list[str] = []
+    areas = stand_areas(inputs)
+    area, net_area = areas.area_ha, areas.net_area_ha
+    reserve, operable = areas.reserve, areas.operable
     hc = None
-    operable = np.ones(n, dtype=bool)
     if inputs.terrain is not None:
-        tf = inputs.terrain.stands
-        hc = tf["harvest_cost_per_m3"].to_numpy(dtype=float)
-        operable = tf["operable"].to_numpy(dtype=bool)
-    net_area = area.copy()
-    if inputs.net is not None:
-        net_area = np.minimum(area, inputs.net.stands["net_area_ha"].to_numpy(dtype=float))
-    reserve = st["reserve"].to_numpy(dtype=bool) | (net_area <= 1e-6)
+        hc = inputs.terrain.stands["harvest_cost_per_m3"].to_numpy(dtype=float)
     cost_class = st["cost_class"].to_numpy(dtype=object) if s.fields.cost_class_field else None
     values = economics.harvest_values(
         strata, age0, inputs.growth, s, harvest_cost_per_m3=hc, cost_class=cost_class
@@ -349,35 +363,201 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     return PlanBundle(problem, values, adj, net_area, reserve, messages)
 
 
-def schedule_frame(inputs: PlanInputs, bundle: PlanBundle, period: np.ndarray) -> gpd.GeoDataFrame:
-    """The ``schedule`` layer: original attributes plus the plan, in the input CRS."""
+def chosen_prescriptions(problem: PlanProblem, plan: Any) -> np.ndarray:
+    """(n,) prescription index (global, into ``problem.rx()``) of every stand's plan.
+
+    Parameters
+    ----------
+    problem
+        The planning problem.
+    plan
+        A :class:`spatialplan.schedule.PlanResult` (its ``prescription``; a result that
+        holds only a ``period`` array means one harvest per stand in that period, 0 =
+        none) or an (n,) array of prescription indices.
+
+    Raises
+    ------
+    ValueError
+        A period array names a period that is none of a stand's prescriptions, or the
+        indices are out of range or belong to other stands.
+    """
+    from spatialplan.schedule.model import plan_from_periods
+
+    rx = problem.rx()
+    if hasattr(plan, "period"):
+        k = getattr(plan, "prescription", None)
+        if k is None:
+            return plan_from_periods(rx, np.asarray(plan.period, dtype=np.int64))
+        plan = k
+    k = np.asarray(plan, dtype=np.int64)
+    n = problem.n_stands
+    if k.shape != (n,) or (
+        n and (k.min() < 0 or np.any(rx.stand_of[np.clip(k, 0, None)] != np.arange(n)))
+    ):
+        msg = f"a plan needs one prescription of each stand ({n} stands)"
+        raise ValueError(msg)
+    return k
+
+
+@dataclass(frozen=True)
+class _Harvests:
+    """Every harvest of a plan by position (rows sorted by stand, then period)."""
+
+    stand: np.ndarray  # (H,) stand position
+    number: np.ndarray  # (H,) 1, 2, ... per stand
+    period: np.ndarray  # (H,) 1-based
+    age_yr: np.ndarray  # (H,) age of the crop cut, at mid-period
+    stratum: np.ndarray  # (H,) stratum of the crop cut
+    volume_m3: np.ndarray  # (H,) on the stand's net area
+    gross_value: np.ndarray  # (H,) volume x price, undiscounted
+    npv: np.ndarray  # (H,) discounted net value, regeneration cost included
+    crops: list[np.ndarray]  # crops[c]: (n,) stratum standing after c harvests
+
+
+def _crop_strata(inputs: PlanInputs, count: int) -> list[np.ndarray]:
+    """``crops[c]``: (n,) stratum standing after ``c`` harvests, ``c = 0 .. count``."""
+    from spatialplan.prescriptions import regenerated_strata, regeneration_map
+
+    crops = [inputs.inventory.stands["stratum"].to_numpy(dtype=object)]
+    if count > 0:
+        regen = regeneration_map(inputs.settings.regeneration, inputs.growth)
+        for _ in range(count):
+            crops.append(regenerated_strata(crops[-1], regen, inputs.growth))
+    return crops
+
+
+def _plan_harvests(inputs: PlanInputs, bundle: PlanBundle, k: np.ndarray) -> _Harvests:
+    """The harvests of prescriptions ``k`` with the crop each cuts, its volume and values.
+
+    Volumes and NPVs come from the prescriptions (what the scheduler optimised), per ha
+    times the stand's net area; the crop's age and stratum follow the regrowth convention
+    of :mod:`spatialplan.prescriptions`; the gross value is volume x price by the crop's
+    mean diameter (:func:`spatialplan.economics.stumpage_price`).
+    """
+    from spatialplan.economics import stumpage_price
+
+    s = inputs.settings
+    L, delay = s.horizon.period_length_yr, s.regeneration.delay_yr
+    rx = bundle.problem.rx()
+    h0 = rx.harvest_start[k]
+    counts = (rx.harvest_start[k + 1] - h0).astype(np.int64)
+    stand = np.repeat(np.arange(len(k)), counts)
+    offset = np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts, counts)
+    h = np.repeat(h0, counts) + offset
+    period = np.asarray(rx.harvest_period, dtype=np.int64)[h]
+    first = offset == 0
+    previous = np.where(
+        first, 0, np.asarray(rx.harvest_period, dtype=np.int64)[np.maximum(h - 1, 0)]
+    )
+    age0 = inputs.inventory.stands["age"].to_numpy(dtype=float)
+    age = np.where(first, age0[stand] + (period - 0.5) * L, (period - previous) * L - delay)
+    crops = _crop_strata(inputs, int(counts.max(initial=0)))
+    stratum = np.empty(len(h), dtype=object)
+    for c in range(len(crops) - 1):
+        at = offset == c
+        stratum[at] = crops[c][stand[at]]
+    net = np.asarray(bundle.net_area_ha, dtype=float)[stand]
+    vol_ha = np.asarray(rx.harvest_volume_m3_ha, dtype=float)[h]
+    if len(h):
+        grown = np.maximum(age, 0.0)
+        price = stumpage_price(inputs.growth.diameter(stratum, grown), s.economics)
+    else:
+        price = np.zeros(0)
+    return _Harvests(
+        stand=stand,
+        number=offset + 1,
+        period=period,
+        age_yr=age,
+        stratum=stratum,
+        volume_m3=vol_ha * net,
+        gross_value=vol_ha * price * net,
+        npv=np.asarray(rx.harvest_npv_per_ha, dtype=float)[h] * net,
+        crops=crops,
+    )
+
+
+def _harvests_frame(inputs: PlanInputs, hv: _Harvests) -> pd.DataFrame:
+    s = inputs.settings
+    L = s.horizon.period_length_yr
+    ids = inputs.inventory.attributes[s.fields.id_field].to_numpy()
+    return pd.DataFrame(
+        {
+            s.fields.id_field: ids[hv.stand],
+            "harvest": hv.number.astype(np.int64),
+            "period": hv.period.astype(np.int64),
+            "harvest_mid_year": s.horizon.start_year + (hv.period - 0.5) * L,
+            "age_at_harvest_yr": hv.age_yr,
+            "stratum": hv.stratum.astype(str),
+            "volume_m3": hv.volume_m3,
+            "gross_value": hv.gross_value,
+            "npv": hv.npv,
+        }
+    )
+
+
+def harvests_frame(inputs: PlanInputs, bundle: PlanBundle, plan: Any) -> pd.DataFrame:
+    """The ``harvests`` table: one row per harvest of the plan, sorted by stand then period.
+
+    Parameters
+    ----------
+    inputs, bundle
+        What the plan was built from.
+    plan
+        A :class:`spatialplan.schedule.PlanResult` or an (n,) array of prescription
+        indices (:func:`chosen_prescriptions`).
+
+    Returns
+    -------
+    pandas.DataFrame
+        The stand id (column named as ``fields.id_field``), ``harvest`` (1, 2, ... per
+        stand), ``period``, ``harvest_mid_year`` (calendar year at mid-period),
+        ``age_at_harvest_yr`` and ``stratum`` of the crop cut, ``volume_m3`` and
+        ``gross_value`` (volume x price, undiscounted) on the stand's net area, ``npv``
+        (that harvest's discounted net value, regeneration cost included, the ending
+        value of the stand excluded).
+    """
+    k = chosen_prescriptions(bundle.problem, plan)
+    return _harvests_frame(inputs, _plan_harvests(inputs, bundle, k))
+
+
+def _schedule_frame(
+    inputs: PlanInputs, bundle: PlanBundle, k: np.ndarray, hv: _Harvests
+) -> gpd.GeoDataFrame:
     s = inputs.settings
     inv = inputs.inventory
     st = inv.stands
-    P, L = s.horizon.periods, s.horizon.period_length_yr
-    period = np.asarray(period, dtype=int)
+    L = s.horizon.period_length_yr
     n = len(st)
-    cut = period > 0
-    col = np.clip(period - 1, 0, P - 1)
-    rows = np.arange(n)
-    hv = bundle.values
-    t = (period - 0.5) * L
+    rx = bundle.problem.rx()
     attrs = inv.attributes.copy()
     renamed = {c: f"{c}_input" for c in attrs.columns if c in PLAN_COLUMNS}
     if renamed:
         attrs = attrs.rename(columns=renamed)
-    area_net = bundle.net_area_ha
+    area_net = np.asarray(bundle.net_area_ha, dtype=float)
+    count = np.bincount(hv.stand, minlength=n).astype(np.int64)
+    cut = count > 0
+    first = np.zeros(n, dtype=np.int64)
+    first_row = np.flatnonzero(hv.number == 1)
+    first[hv.stand[first_row]] = first_row
+    period = np.where(cut, hv.period[first] if len(hv.period) else 0, 0)
+    joined = pd.Series(hv.period.astype(str)).groupby(hv.stand).agg(";".join)
     out = pd.DataFrame(index=range(n))
-    out["period"] = pd.Series(np.where(cut, period, 0), dtype="Int64").where(cut, pd.NA)
-    out["harvest_year"] = np.where(cut, s.horizon.start_year + t, np.nan)
-    out["age_at_harvest"] = np.where(cut, st["age"].to_numpy() + t, np.nan)
-    out["volume_m3"] = np.where(cut, hv.volume_m3_ha[rows, col] * area_net, 0.0)
-    out["gross_value"] = np.where(cut, hv.gross_value_per_ha[rows, col] * area_net, 0.0)
-    out["value"] = np.where(cut, bundle.problem.npv_per_ha[rows, col] * area_net, 0.0)
+    out["period"] = pd.Series(period, dtype="Int64").where(cut, pd.NA)
+    out["harvest_count"] = count
+    out["harvest_periods"] = joined.reindex(range(n), fill_value="").to_numpy(dtype=object)
+    out["harvest_mid_year"] = np.where(cut, s.horizon.start_year + (period - 0.5) * L, np.nan)
+    out["age_at_harvest_yr"] = np.where(cut, hv.age_yr[first] if len(hv.age_yr) else 0, np.nan)
+    out["volume_m3"] = np.bincount(hv.stand, weights=hv.volume_m3, minlength=n)
+    out["gross_value"] = np.bincount(hv.stand, weights=hv.gross_value, minlength=n)
+    # The stand's share of the plan NPV: its prescription's value (harvests and the
+    # discounted ending value), so the column adds up to the plan's NPV.
+    out["npv"] = np.asarray(rx.npv_per_ha, dtype=float)[k] * area_net
+    out["ending_value_npv"] = np.asarray(rx.ending_value_per_ha, dtype=float)[k] * area_net
     out["stratum"] = st["stratum"].to_numpy()
     out["area_ha"] = st["area_ha"].to_numpy()
     out["net_area_ha"] = area_net
     out["reserve"] = bundle.reserve.astype(int)
+    out["operable"] = stand_areas(inputs).operable.astype(int)
     out["green_up_periods"] = bundle.problem.green_up_periods
     if inputs.terrain is not None:
         tf = inputs.terrain.stands
@@ -387,6 +567,181 @@ def schedule_frame(inputs: PlanInputs, bundle: PlanBundle, period: np.ndarray) -
     frame = pd.concat([attrs.reset_index(drop=True), out], axis=1)
     geom = st.geometry.to_crs(inv.source_crs) if st.crs != inv.source_crs else st.geometry
     return gpd.GeoDataFrame(frame, geometry=geom.values, crs=inv.source_crs)
+
+
+def schedule_frame(inputs: PlanInputs, bundle: PlanBundle, plan: Any) -> gpd.GeoDataFrame:
+    """The ``schedule`` layer: original attributes plus the plan, in the input CRS.
+
+    Parameters
+    ----------
+    inputs, bundle
+        What the plan was built from.
+    plan
+        A :class:`spatialplan.schedule.PlanResult` or an (n,) array of prescription
+        indices (:func:`chosen_prescriptions`).
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        One row per stand: its attributes (an attribute named like an output column is
+        kept as ``<name>_input``), then ``period`` (first harvest, null when none),
+        ``harvest_count``, ``harvest_periods`` (``"3;12"``), ``harvest_mid_year`` and
+        ``age_at_harvest_yr`` (first harvest), ``volume_m3`` and ``gross_value`` (all
+        harvests), ``npv`` (the stand's share of the plan NPV: every harvest and the
+        discounted ending value), ``ending_value_npv``, ``stratum``, ``area_ha`` (gross),
+        ``net_area_ha``, ``reserve``, ``operable``, ``green_up_periods`` and, with a DEM,
+        ``slope_pct_mean``, ``steep_share``, ``harvest_system``. ``opening_id`` is added by
+        :func:`plan_layers`.
+    """
+    k = chosen_prescriptions(bundle.problem, plan)
+    return _schedule_frame(inputs, bundle, k, _plan_harvests(inputs, bundle, k))
+
+
+def _forest_state(
+    inputs: PlanInputs, bundle: PlanBundle, hv: _Harvests
+) -> tuple[np.ndarray, np.ndarray]:
+    """Standing volume (m3) and old-forest share of the gross area at every mid-period.
+
+    Ages follow the regrowth convention (a stand cut in ``q`` is ``(p - q) L - delay`` old
+    at mid-period ``p >= q``: standing volume after the period's harvests); the share is
+    NaN when ``rules.old_forest_age_yr`` is off.
+    """
+    s = inputs.settings
+    P, L = s.horizon.periods, s.horizon.period_length_yr
+    delay = s.regeneration.delay_yr
+    st = inputs.inventory.stands
+    n = len(st)
+    p = np.arange(1, P + 1)
+    latest = np.zeros((n, P), dtype=np.int64)
+    crop_no = np.zeros((n, P), dtype=np.int64)
+    if len(hv.stand):
+        latest[hv.stand, hv.period - 1] = hv.period
+        np.add.at(crop_no, (hv.stand, hv.period - 1), 1)
+    latest = np.maximum.accumulate(latest, axis=1)
+    crop_no = np.cumsum(crop_no, axis=1)
+    age0 = st["age"].to_numpy(dtype=float)
+    age = np.where(
+        latest > 0, (p[None, :] - latest) * L - delay, age0[:, None] + (p - 0.5)[None, :] * L
+    )
+    grown = np.maximum(age, 0.0)
+    per_ha = np.zeros((n, P))
+    for c, strata in enumerate(hv.crops):
+        at = crop_no == c
+        if at.any():
+            per_ha = np.where(at, inputs.growth.volume(strata, grown), per_ha)
+    standing = (per_ha * np.asarray(bundle.net_area_ha, dtype=float)[:, None]).sum(axis=0)
+    old_age = s.rules.old_forest_age_yr
+    gross = np.asarray(bundle.problem.opening_area_ha, dtype=float)
+    if old_age is None or gross.sum() <= 0:
+        share = np.full(P, np.nan)
+    else:
+        share = (gross[:, None] * (age >= old_age - 1e-9)).sum(axis=0) / gross.sum()
+    return standing, share
+
+
+def _sustained_yield(inputs: PlanInputs, bundle: PlanBundle, crops: list[np.ndarray]) -> Any:
+    """LTSY over the net harvestable area (reserves and inoperable stands count 0 ha)."""
+    from spatialplan import economics
+    from spatialplan.errors import SettingsError
+
+    areas = stand_areas(inputs)
+    regrown = _crop_strata(inputs, 1)[1] if len(crops) < 2 else crops[1]
+    try:
+        return economics.long_term_sustained_yield(
+            regrown,
+            np.where(areas.harvestable, areas.net_area_ha, 0.0),
+            inputs.growth,
+            inputs.settings,
+            bundle.values.harvest_cost_per_m3,
+        )
+    except SettingsError:  # a Faustmann rotation needs a discount rate > 0
+        return None
+
+
+def plan_layers(
+    inputs: PlanInputs,
+    bundle: PlanBundle,
+    result: Any,
+    verify_settings: Settings | None = None,
+    run_extra: dict[str, str] | None = None,
+) -> tuple[dict[str, Any], Any]:
+    """The layers and tables of a plan, in memory, and its independent verification.
+
+    Parameters
+    ----------
+    inputs, bundle
+        What the plan was built from.
+    result
+        Anything with the fields of :class:`spatialplan.schedule.PlanResult`.
+    verify_settings
+        Rules to verify against and to draw the flow band of the ``periods`` table from
+        (default: ``inputs.settings``).
+    run_extra
+        More key/value rows for the ``run`` table.
+
+    Returns
+    -------
+    layers : dict
+        ``schedule`` (GeoDataFrame), ``harvests``, ``openings`` (GeoDataFrame),
+        ``periods``, ``strata`` and ``run`` (DataFrames), as written into the GeoPackage.
+    report : spatialplan.verify.VerifyReport
+        The independent check of the schedule and harvests.
+    """
+    from spatialplan import outputs, runtable, verify
+
+    s = inputs.settings
+    vs = verify_settings or s
+    problem = bundle.problem
+    k = chosen_prescriptions(problem, result)
+    hv = _plan_harvests(inputs, bundle, k)
+    sched = _schedule_frame(inputs, bundle, k, hv)
+    harvests = _harvests_frame(inputs, hv)
+    report = verify.verify_schedule(sched, vs, inputs.yield_table, harvests=harvests)
+    id_col = s.fields.id_field
+    openings, stand_opening = outputs.opening_table(
+        sched,
+        problem.edges,
+        s.horizon.periods,
+        problem.green_up_periods,
+        problem.initially_open,
+        s.rules.max_opening_ha,
+        problem.opening_area_ha,
+        id_col=id_col,
+        harvests=harvests,
+    )
+    sched["opening_id"] = stand_opening
+    standing, old_share = _forest_state(inputs, bundle, hv)
+    periods_df = outputs.period_table(
+        sched,
+        vs,
+        openings,
+        harvests=harvests,
+        id_col=id_col,
+        standing_volume_m3=standing,
+        old_forest_share=old_share,
+    )
+    strata_df = outputs.strata_table(sched, s, harvests=harvests, id_col=id_col)
+    info = runtable.plan_run_info(
+        inputs,
+        result,
+        report.verdict,
+        {
+            "violations": str(len(report.violations)),
+            "max_opening_ha": str(s.rules.max_opening_ha),
+            **(run_extra or {}),
+        },
+        ending_value_npv=float(sched["ending_value_npv"].sum()),
+        sustained_yield=_sustained_yield(inputs, bundle, hv.crops),
+    )
+    layers: dict[str, Any] = {
+        "schedule": sched,
+        "harvests": harvests,
+        "openings": openings,
+        "periods": periods_df,
+        "strata": strata_df,
+        "run": runtable.run_table(info),
+    }
+    return layers, report
 
 
 def run_plan(
@@ -453,7 +808,7 @@ def solve_plan(
 def verify_plan(
     inputs: PlanInputs,
     bundle: PlanBundle,
-    period: np.ndarray,
+    plan: Any,
     settings: Settings | None = None,
 ) -> tuple[gpd.GeoDataFrame, Any]:
     """The ``schedule`` layer of a plan and its independent verification.
@@ -462,19 +817,26 @@ def verify_plan(
     ----------
     inputs, bundle
         What the plan was built from.
-    period
-        (n,) harvest period per stand, 0 = not harvested.
+    plan
+        A :class:`spatialplan.schedule.PlanResult` or an (n,) array of prescription
+        indices (:func:`chosen_prescriptions`).
     settings
         Rules to verify against (default: ``inputs.settings``).
 
     Returns
     -------
     (geopandas.GeoDataFrame, spatialplan.verify.VerifyReport)
+        Verify reads every harvest from the ``harvests`` table of the plan.
     """
     from spatialplan import verify
 
-    sched = schedule_frame(inputs, bundle, period)
-    return sched, verify.verify_schedule(sched, settings or inputs.settings, inputs.yield_table)
+    k = chosen_prescriptions(bundle.problem, plan)
+    hv = _plan_harvests(inputs, bundle, k)
+    sched = _schedule_frame(inputs, bundle, k, hv)
+    report = verify.verify_schedule(
+        sched, settings or inputs.settings, inputs.yield_table, harvests=_harvests_frame(inputs, hv)
+    )
+    return sched, report
 
 
 def write_plan(
@@ -508,68 +870,90 @@ def write_plan(
     on_stage
         Called with a short stage name as the run proceeds.
     """
-    from spatialplan import outputs, runtable
+    from spatialplan import outputs
 
     stage = on_stage or (lambda _s: None)
     s = inputs.settings
     out_path = Path(out_path)
     stage("verifying")
-    sched, report = verify_plan(inputs, bundle, result.period, verify_settings)
-    openings, stand_opening = outputs.opening_table(
-        sched,
-        bundle.problem.edges,
-        s.horizon.periods,
-        bundle.problem.green_up_periods,
-        bundle.problem.initially_open,
-        s.rules.max_opening_ha,
-        bundle.problem.opening_area_ha,
-        id_col=s.fields.id_field,
-    )
-    sched["opening_id"] = stand_opening
-    periods_df = outputs.period_table(sched, verify_settings or s, openings)
-    strata_df = outputs.strata_table(sched, s)
-    run_df = runtable.run_table(
-        runtable.plan_run_info(
-            inputs,
-            result,
-            report.verdict,
-            {
-                "violations": str(len(report.violations)),
-                "max_opening_ha": str(s.rules.max_opening_ha),
-                **(run_extra or {}),
-            },
-        )
-    )
+    layers, report = plan_layers(inputs, bundle, result, verify_settings, run_extra)
     stage("writing outputs")
-    layers: dict[str, Any] = {
-        "schedule": sched,
-        "openings": openings,
-        "periods": periods_df,
-        "strata": strata_df,
-        "run": run_df,
-    }
     outputs.write_plan_geopackage(out_path, layers)
+    sched = layers["schedule"]
     extra: list[Path] = []
     if s.output.raster_out:
         outputs.write_period_raster(sched, s.output.raster_out, s.output.raster_cell_m)
         extra.append(Path(s.output.raster_out))
     if not s.output.no_map:
-        from spatialplan.report import write_review_files
-
-        info = dict(zip(run_df["key"], run_df["value"], strict=True))
-        views = write_review_files(
-            out_path,
-            sched,
-            openings,
-            periods_df,
-            strata_df,
-            info,
-            s,
-            basemap=s.output.basemap,
-            id_col=s.fields.id_field,
-        )
+        views = _write_review(out_path, layers, s)
         extra.extend([Path(views["map"]), Path(views["report"]), *map(Path, views["charts"])])
     if s.output.write_back:
         outputs.write_back(inputs.stands_path, layers)
     msgs = messages if messages is not None else inputs.messages + bundle.messages
-    return PlanOutcome(out_path, result, report, sched, periods_df, extra, msgs)
+    return PlanOutcome(out_path, result, report, sched, layers["periods"], extra, msgs)
+
+
+def _write_review(out_path: Path, layers: dict[str, Any], s: Settings) -> dict[str, Any]:
+    """The map, report and charts of a plan (:func:`spatialplan.report.write_review_files`)."""
+    import inspect
+
+    from spatialplan.report import write_review_files
+
+    run = layers["run"]
+    info = dict(zip(run["key"], run["value"], strict=True))
+    frames = {k: layers[k] for k in ("schedule", "openings", "periods", "strata")}
+    kwargs: dict[str, Any] = {}
+    if "harvests" in inspect.signature(write_review_files).parameters:
+        kwargs["harvests"] = layers["harvests"]
+    else:
+        # A review writer that predates the harvests table reads the columns by their
+        # names before the estate model; give it copies under those names as well.
+        frames, info = _with_earlier_names(frames, info)
+    return write_review_files(
+        out_path,
+        frames["schedule"],
+        frames["openings"],
+        frames["periods"],
+        frames["strata"],
+        info,
+        s,
+        basemap=s.output.basemap,
+        id_col=s.fields.id_field,
+        **kwargs,
+    )
+
+
+#: (layer, column) -> the column's name before the estate model, for a review writer
+#: that still reads that name (see :func:`_write_review`).
+_EARLIER_NAMES = {
+    ("schedule", "age_at_harvest_yr"): "age_at_harvest",
+    ("schedule", "harvest_mid_year"): "harvest_year",
+    ("schedule", "npv"): "value",
+    ("openings", "gross_area_ha"): "area_ha",
+    ("openings", "new_harvest_gross_ha"): "new_harvest_ha",
+    ("periods", "harvest_net_area_ha"): "harvest_area_ha",
+    ("periods", "npv"): "discounted_value",
+    ("strata", "harvest_net_area_ha"): "harvest_area_ha",
+    ("run", "bound_aspatial_lp"): "lp_bound",
+    ("run", "bound_cpsat"): "cpsat_bound",
+}
+
+
+def _with_earlier_names(
+    frames: dict[str, Any], info: dict[str, str]
+) -> tuple[dict[str, Any], dict[str, str]]:
+    out = {}
+    for name, frame in frames.items():
+        copy = frame.copy()
+        for (layer, col), earlier in _EARLIER_NAMES.items():
+            if layer == name and col in copy.columns and earlier not in copy.columns:
+                copy[earlier] = copy[col]
+        out[name] = copy
+    if "mid_year" in out["periods"].columns:  # years from the start, as before
+        p = out["periods"]
+        p["mid_yr"] = p["mid_year"] - p["start_year"].iloc[0] if len(p) else p["mid_year"]
+    info = dict(info)
+    for (layer, col), earlier in _EARLIER_NAMES.items():
+        if layer == "run" and col in info:
+            info.setdefault(earlier, info[col])
+    return out, info

@@ -44,8 +44,8 @@ def run_table(info: Mapping[str, Any]) -> pd.DataFrame:
 
     Examples
     --------
-    >>> run_table({"npv": 1.25, "cpsat_bound": None, "solver_status": "optimal"}).to_dict("list")
-    {'key': ['npv', 'cpsat_bound', 'solver_status'], 'value': ['1.25', '', 'optimal']}
+    >>> run_table({"npv": 1.25, "bound_cpsat": None, "solver_status": "optimal"}).to_dict("list")
+    {'key': ['npv', 'bound_cpsat', 'solver_status'], 'value': ['1.25', '', 'optimal']}
     """
     # str() of a numpy float is its shortest round-trip text, like str() of a float.
     vals = ["" if v is None else str(v) for v in info.values()]
@@ -161,8 +161,53 @@ def recorded_settings(run: Mapping[str, str], source: str | Path) -> Settings | 
         raise InputError(msg) from None
 
 
+def _bounds(result: Any) -> dict[str, str]:
+    """``best_bound`` (the tightest proven upper bound), how it was proven, and both bounds."""
+    import math
+
+    from spatialplan.scenarios.comparison import best_bound
+    from spatialplan.scenarios.tasks import ScenarioResult
+    from spatialplan.schedule import gap
+
+    lp = float(result.lp_bound)
+    cps = None if result.cpsat_bound is None else float(result.cpsat_bound)
+    best = best_bound(
+        ScenarioResult(
+            "plan",
+            True,
+            str(result.status),
+            npv=float(result.npv),
+            lp_bound=lp,
+            cpsat_bound=cps,
+            gap=float(result.gap),
+        )
+    )
+    known = {
+        name: b
+        for name, b in (("aspatial LP (HiGHS)", lp), ("CP-SAT", cps))
+        if b is not None and math.isfinite(b)
+    }
+    method = min(known, key=lambda k: known[k]) if known else ""
+    if known and math.isfinite(best) and best < min(known.values()) - 1e-9 * max(1.0, abs(best)):
+        method = "CP-SAT (optimality proven)"  # the plan itself, proven optimal
+    return {
+        "best_bound": "" if not math.isfinite(best) else f"{best:.2f}",
+        "best_bound_method": method,
+        # the gap to the best bound (the solver's own gap uses the same tighter bound)
+        "gap": f"{gap(float(result.npv), best) if math.isfinite(best) else result.gap:.6f}",
+        "bound_aspatial_lp": f"{lp:.2f}" if math.isfinite(lp) else "",
+        "bound_cpsat": "" if cps is None else f"{cps:.2f}",
+    }
+
+
 def plan_run_info(
-    inputs: Any, result: Any, verdict: str, extra: Mapping[str, Any] | None = None
+    inputs: Any,
+    result: Any,
+    verdict: str,
+    extra: Mapping[str, Any] | None = None,
+    *,
+    ending_value_npv: float | None = None,
+    sustained_yield: Any = None,
 ) -> dict[str, str]:
     """The rows a plan records: everything needed to reproduce and audit it.
 
@@ -176,11 +221,21 @@ def plan_run_info(
         One line from the independent check.
     extra
         More rows, added last (they win over the standard ones).
+    ending_value_npv
+        The discounted ending value summed over the stands (part of ``npv``).
+    sustained_yield
+        :class:`spatialplan.economics.SustainedYield` of the net harvestable area
+        (``ltsy_mai_m3_yr`` at MAI culmination, ``ltsy_rotation_m3_yr`` at the Faustmann
+        rotation, m3 per year); ``None`` leaves both empty.
 
     Returns
     -------
     dict
-        Keys to text values, ready for :func:`run_table`.
+        Keys to text values, ready for :func:`run_table`: ``npv``, ``best_bound``,
+        ``best_bound_method``, ``gap`` (to the best bound), ``bound_aspatial_lp``,
+        ``bound_cpsat``, ``ending_value_npv``, ``ltsy_mai_m3_yr``,
+        ``ltsy_rotation_m3_yr``, the inputs and their SHA-256, the settings, versions,
+        solver status and statistics (``stat_*``).
     """
     from importlib.metadata import version
 
@@ -192,6 +247,7 @@ def plan_run_info(
     from spatialplan._io import sha256_file
 
     s = inputs.settings
+    sy = sustained_yield
     rows: dict[str, Any] = {
         "software": f"spatialplan {__version__}",
         "python": platform.python_version(),
@@ -212,9 +268,10 @@ def plan_run_info(
         "settings_json": s.to_json(),
         "solver_status": result.status,
         "npv": f"{result.npv:.2f}",
-        "cpsat_bound": "" if result.cpsat_bound is None else f"{result.cpsat_bound:.2f}",
-        "lp_bound": f"{result.lp_bound:.2f}",
-        "gap": f"{result.gap:.6f}",
+        **_bounds(result),
+        "ending_value_npv": "" if ending_value_npv is None else f"{ending_value_npv:.2f}",
+        "ltsy_mai_m3_yr": "" if sy is None else f"{sy.mai_max_m3_yr:.2f}",
+        "ltsy_rotation_m3_yr": "" if sy is None else f"{sy.faustmann_m3_yr:.2f}",
         "solve_time_s": f"{result.solve_time_s:.2f}",
         "verify_verdict": verdict,
     }

@@ -79,12 +79,16 @@ def test_plan_matches_the_command(api_plan: spatialplan.HarvestPlan, cli_plan: P
     run = read_run_table(cli_plan)
     assert api_plan.status == run["solver_status"] == "optimal"
     assert api_plan.npv == pytest.approx(float(run["npv"]), abs=0.01)  # recorded to 2 decimals
-    assert api_plan.lp_bound == pytest.approx(float(run["lp_bound"]), abs=0.01)
+    assert api_plan.lp_bound == pytest.approx(float(run["bound_aspatial_lp"]), abs=0.01)
     assert api_plan.verify.ok and run["verify_verdict"] == api_plan.verdict
     # The in-memory layers add up like the written ones (same NPV from the stand values).
     sched = pyogrio.read_dataframe(cli_plan, layer="schedule")
-    assert api_plan.schedule["value"].sum() == pytest.approx(sched["value"].sum(), rel=1e-9)
-    assert api_plan.periods["discounted_value"].sum() == pytest.approx(api_plan.npv, rel=1e-9)
+    assert api_plan.schedule["npv"].sum() == pytest.approx(sched["npv"].sum(), rel=1e-9)
+    # The plan NPV is every harvest (by period) plus the discounted ending value.
+    ending = api_plan.schedule["ending_value_npv"].sum()
+    assert api_plan.periods["npv"].sum() + ending == pytest.approx(api_plan.npv, rel=1e-9)
+    harvests = pyogrio.read_dataframe(cli_plan, layer="harvests", read_geometry=False)
+    pd.testing.assert_frame_equal(harvests, api_plan.harvests, check_dtype=False)
     assert len(api_plan.schedule) == len(sched) == 14
     assert api_plan.schedule.crs == sched.crs
 
@@ -96,7 +100,7 @@ def test_write_outputs_writes_what_plan_holds(
     written = spatialplan.write_outputs(api_plan, out)
     assert written == [out]  # output.no_map: the GeoPackage only
     sched = gpd.read_file(out, layer="schedule")
-    cols = ["stand_id", "period", "volume_m3", "value", "opening_id"]
+    cols = ["stand_id", "period", "harvest_periods", "volume_m3", "npv", "opening_id"]
     expected = api_plan.schedule[[*cols, "geometry"]].copy()
     assert_geodataframe_equal(
         sched[[*cols, "geometry"]], expected, check_dtype=False, check_less_precise=True
@@ -104,7 +108,7 @@ def test_write_outputs_writes_what_plan_holds(
     periods = pyogrio.read_dataframe(out, layer="periods")
     pd.testing.assert_frame_equal(periods, api_plan.periods, check_dtype=False)
     run = read_run_table(out)
-    for key in ("npv", "lp_bound", "solver_status", "verify_verdict", "settings_json"):
+    for key in ("npv", "best_bound", "solver_status", "verify_verdict", "settings_json"):
         assert run[key] == api_plan.run[key]
     # Outputs are checked before writing: no silent replacement, never an input.
     with pytest.raises(OutputError, match="--overwrite"):
@@ -153,7 +157,8 @@ def test_verify_plan_matches_the_command(api_plan: spatialplan.HarvestPlan, cli_
     assert spatialplan.verify_plan(api_plan).verdict == api_plan.verdict
     # Harvesting every stand in period 1 breaks the opening rule; the API and the command
     # (run on the same schedule written to a file) name the same broken rules.
-    bad = api_plan.schedule.copy()
+    keep = ["stand_id", "age", "stratum", "reserve", "net_area_ha", "geometry"]
+    bad = api_plan.schedule[keep].copy()
     bad["period"] = 1
     report = spatialplan.verify_plan(bad, api_plan.settings, api_plan.inputs.growth)
     assert not report.ok
@@ -165,7 +170,7 @@ def test_verify_plan_matches_the_command(api_plan: spatialplan.HarvestPlan, cli_
     res = CliRunner().invoke(cli, ["verify", str(path)])
     assert res.exit_code == 1
     assert res.output.strip().splitlines()[-1] == spatialplan.verify_plan(path).verdict
-    assert {ln.split()[1] for ln in res.output.splitlines() if ln.startswith("VIOLATION")} == rules
+    assert {ln.split()[1] for ln in res.output.splitlines() if ln.startswith("violation:")} == rules
 
 
 def test_plan_again_under_other_rules(api_plan: spatialplan.HarvestPlan) -> None:
@@ -173,7 +178,7 @@ def test_plan_again_under_other_rules(api_plan: spatialplan.HarvestPlan) -> None
     tighter = inputs.settings.with_overrides({"rules.max_opening_ha": 12.0})
     again = spatialplan.plan(inputs, settings=tighter)
     assert again.verify.ok and again.settings.rules.max_opening_ha == 12.0
-    assert again.openings["area_ha"].max() <= 12.0 + 1e-9
+    assert again.openings["gross_area_ha"].max() <= 12.0 + 1e-9
     # A tighter rule cannot raise the optimum (both solved to proven optimality).
     assert again.npv <= api_plan.npv + 0.01
     with pytest.raises(SettingsError, match=r"\[terrain\].*read_inputs"):

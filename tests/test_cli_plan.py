@@ -54,40 +54,76 @@ def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Pat
     out = tmp_path / "plan.gpkg"
     res = CliRunner().invoke(cli, _plan_args(stands, yields, out))
     assert res.exit_code == 0, res.output
-    assert "PASS" in res.output
+    assert "passed" in res.output
     assert (sha256(stands), sha256(yields)) == before  # inputs untouched
     sched = pyogrio.read_dataframe(out, layer="schedule")
+    harvests = pyogrio.read_dataframe(out, layer="harvests", read_geometry=False)
     assert len(sched) == 60
     for col in (
         "stand_id",
         "age",
         "stratum",
         "period",
-        "harvest_year",
-        "age_at_harvest",
+        "harvest_count",
+        "harvest_periods",
+        "harvest_mid_year",
+        "age_at_harvest_yr",
         "volume_m3",
-        "value",
+        "gross_value",
+        "npv",
+        "ending_value_npv",
+        "operable",
     ):
         assert col in sched.columns
+    assert list(harvests.columns) == [
+        "stand_id",
+        "harvest",
+        "period",
+        "harvest_mid_year",
+        "age_at_harvest_yr",
+        "stratum",
+        "volume_m3",
+        "gross_value",
+        "npv",
+    ]
     cut = sched["period"].notna()
     assert cut.any()
+    assert sched["harvest_count"].sum() == len(harvests)
     # Objective with only a single price: area x volume x price x (1 + r)^-t, annual
     # compounding (standard compound-interest discounting, the factor numpy_financial.npv
     # applies), harvest at mid-period t = (p - 0.5) L (common practice, no source);
-    # `value` is each stand's share of it.
-    t = (sched.loc[cut, "period"].astype(float) - 0.5) * 5.0
-    assert np.allclose(
-        sched.loc[cut, "value"], sched.loc[cut, "volume_m3"] * 40.0 * 1.04**-t, rtol=1e-9
+    # each harvest's `npv` is its share of it.
+    t = (harvests["period"].astype(float) - 0.5) * 5.0
+    assert np.allclose(harvests["npv"], harvests["volume_m3"] * 40.0 * 1.04**-t, rtol=1e-9)
+    assert np.allclose(harvests["gross_value"], harvests["volume_m3"] * 40.0, rtol=1e-9)
+    assert (harvests["age_at_harvest_yr"] >= 30 - 1e-9).all()
+    # A stand's npv is its harvests plus its discounted ending value.
+    by_stand = harvests.groupby("stand_id")["npv"].sum()
+    own = sched.set_index("stand_id")["ending_value_npv"].add(by_stand, fill_value=0.0)
+    np.testing.assert_allclose(sched.set_index("stand_id")["npv"], own[sched["stand_id"]])
+    first = harvests[harvests["harvest"] == 1].set_index("stand_id")
+    np.testing.assert_array_equal(
+        sched.loc[cut, "period"].astype(int), first.loc[sched.loc[cut, "stand_id"], "period"]
     )
-    assert (sched.loc[cut, "age_at_harvest"] >= 30 - 1e-9).all()
     with sqlite3.connect(out) as con:
         run = dict(con.execute("select key, value from run").fetchall())
-    assert run["verify_verdict"].startswith("PASS")
-    assert float(run["npv"]) == pytest.approx(sched["value"].sum(), rel=1e-6)
-    assert float(run["lp_bound"]) >= float(run["npv"]) - 1e-6
-    # A bound is an upper bound: never below a legal plan's value.
-    if run["cpsat_bound"]:
-        assert float(run["cpsat_bound"]) >= float(run["npv"]) * (1 - 1e-6)
+    assert run["verify_verdict"].startswith("passed")
+    assert float(run["npv"]) == pytest.approx(sched["npv"].sum(), rel=1e-6)
+    assert float(run["ending_value_npv"]) == pytest.approx(
+        sched["ending_value_npv"].sum(), rel=1e-6
+    )
+    assert float(run["bound_aspatial_lp"]) >= float(run["npv"]) - 1e-6
+    # A bound is an upper bound: never below a legal plan's value; the best is the least.
+    if run["bound_cpsat"]:
+        assert float(run["bound_cpsat"]) >= float(run["npv"]) * (1 - 1e-6)
+    bounds = [float(run[k]) for k in ("bound_aspatial_lp", "bound_cpsat") if run[k]]
+    assert float(run["npv"]) - 0.01 <= float(run["best_bound"]) <= min(bounds) + 0.01
+    assert run["best_bound_method"] in (
+        "aspatial LP (HiGHS)",
+        "CP-SAT",
+        "CP-SAT (optimality proven)",
+    )
+    assert float(run["ltsy_mai_m3_yr"]) >= float(run["ltsy_rotation_m3_yr"]) > 0
     # The independent checker agrees when run on the file.
     res = CliRunner().invoke(cli, ["verify", str(out)])
     assert res.exit_code == 0, res.output
@@ -129,7 +165,7 @@ def test_demo_subprocess(tmp_path: Path) -> None:
     for name in ("brennick_plan.gpkg", "brennick_plan.map.html", "brennick_plan.report.html"):
         assert (out / name).is_file()
     assert any((out / "brennick_plan_charts").glob("*.png"))
-    assert "PASS" in res.stdout
+    assert "passed" in res.stdout
 
 
 def test_plan_by_unit_merges_units(tmp_path: Path, yields_csv: Path) -> None:

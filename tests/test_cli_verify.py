@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import geopandas as gpd
+import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
@@ -60,24 +62,24 @@ def three_plan(tmp_path: Path) -> Path:
 def test_three_violations_exit_1(three_plan: Path) -> None:
     res = CliRunner().invoke(cli, ["verify", str(three_plan)])
     assert res.exit_code == 1, res.output
-    lines = [x for x in res.output.splitlines() if x.startswith("VIOLATION")]
+    lines = [x for x in res.output.splitlines() if x.startswith("violation:")]
     assert len(lines) == 3
     assert any(
         "max_opening period 1" in x and "C0R0,C1R0,C2R0" in x and "12.00 ha" in x for x in lines
     )
     assert any("green_up period 2" in x and "C5R0" in x for x in lines)
     assert any("min_age period 3" in x and "C0R2" in x for x in lines)
-    assert res.output.strip().splitlines()[-1].startswith("FAIL: 3 violation(s)")
+    assert res.output.strip().splitlines()[-1].startswith("failed: 3 violation(s)")
 
 
 def test_flags_override_recorded_rules(three_plan: Path) -> None:
     runner = CliRunner()
     res = runner.invoke(cli, ["verify", str(three_plan), "--max-opening", "13"])
     assert res.exit_code == 1
-    assert "FAIL: 1 violation(s) (min_age 1)" in res.output
+    assert "failed: 1 violation(s) (min_age 1)" in res.output
     res = runner.invoke(cli, ["verify", str(three_plan), "--max-opening", "13", "--min-age", "30"])
     assert res.exit_code == 0, res.output
-    assert "PASS" in res.output
+    assert "passed" in res.output
     res = runner.invoke(cli, ["verify", str(three_plan), "--green-up", "1"])
     assert res.exit_code == 1
     assert "green_up" not in res.output
@@ -106,7 +108,7 @@ def test_yields_override_and_legal_plan(tmp_path: Path) -> None:
     write_plan(p, {(0, 0): 1, (3, 0): 2, (0, 2): 3, (3, 2): 4}, {}, RULES)
     res = CliRunner().invoke(cli, ["verify", str(p)])
     assert res.exit_code == 0, res.output
-    assert res.output.strip().splitlines()[-1].startswith("PASS")
+    assert res.output.strip().splitlines()[-1].startswith("passed")
     other = tmp_path / "yields.csv"
     YIELDS[YIELDS.stratum == "S2"].to_csv(other, index=False)
     res = CliRunner().invoke(
@@ -121,3 +123,63 @@ def test_console_entry_point_errors(tmp_path: Path, capsys: pytest.CaptureFixtur
         main(["verify", str(tmp_path / "missing.gpkg")])
     assert exc.value.code == 1
     assert "plan file not found" in capsys.readouterr().err
+
+
+def test_plan_written_before_the_estate_model(tmp_path: Path) -> None:
+    """A plan file of the earlier format: schedule columns `harvest_year`, `age_at_harvest`,
+    `value`, openings `area_ha`, run keys `lp_bound`/`cpsat_bound`, settings recorded with
+    the retired keys `include_ending_value` and `reharvest`, and no harvests table."""
+    p = tmp_path / "old.gpkg"
+    # two 4 ha stands of S1, ages 60 and 70, cut in period 1 and 2 of 5 years
+    sched = gpd.GeoDataFrame(
+        {
+            "stand_id": ["A", "B", "C"],
+            "age": [60.0, 70.0, 20.0],
+            "stratum": ["S1", "S1", "S1"],
+            "period": pd.array([1, 2, None], dtype="Int64"),
+        },
+        geometry=[shapely.box(k * SIDE * 2, 0, k * SIDE * 2 + SIDE, SIDE) for k in range(3)],
+        crs="EPSG:32610",
+    )
+    tab = YIELDS[YIELDS.stratum == "S1"]
+    ages = np.array([62.5, 77.5])  # age + (p - 0.5) 5 at mid-period (common practice)
+    v_ha = np.interp(ages, tab.age, tab.volume)  # numpy reference interpolation
+    # (price - harvest cost) V discounted (1 + r)^-t by compound interest (textbook formula)
+    t = np.array([2.5, 7.5])
+    value = (40.0 - 10.0) * v_ha * 1.04**-t * 4.0
+    sched["harvest_year"] = [2.5, 7.5, np.nan]
+    sched["age_at_harvest"] = [*ages, np.nan]
+    sched["volume_m3"] = [*(v_ha * 4.0), 0.0]
+    sched["value"] = [*value, 0.0]
+    sched["area_ha"] = 4.0
+    sched.to_file(p, layer="schedule")
+    openings = sched.iloc[:2][["geometry"]].assign(
+        opening_id=["P01-0001", "P02-0001"], period=[1, 2], area_ha=4.0, new_harvest_ha=4.0
+    )
+    openings.to_file(p, layer="openings")
+    recorded = {
+        "horizon": {"periods": 3, "period_length_yr": 5.0},
+        "rules": {"min_age_yr": 40.0, "flow_tolerance": None, "reharvest": False},
+        "economics": {
+            "price_per_m3": 40.0,
+            "harvest_cost_per_m3": 10.0,
+            "include_ending_value": False,
+        },
+    }
+    run = pd.DataFrame(
+        {
+            "key": ["settings_json", "yields_csv", "lp_bound", "cpsat_bound"],
+            "value": [json.dumps(recorded), YIELDS.to_csv(index=False), "1", ""],
+        }
+    )
+    pyogrio.write_dataframe(run, p, layer="run")
+    res = CliRunner().invoke(cli, ["verify", str(p)])
+    assert res.exit_code == 0, res.output
+    assert "recorded_value" in res.output  # the old `value` column was read and checked
+    assert "ending values are not checked" in res.output
+    # a wrong old `value` is found as before
+    sched.loc[1, "value"] += 10.0
+    sched.to_file(p, layer="schedule")
+    res = CliRunner().invoke(cli, ["verify", str(p)])
+    assert res.exit_code == 1
+    assert "violation: recorded_value period 2 stands B" in res.output

@@ -38,10 +38,11 @@ def make_plan(seed: int = 7, n: int = 60, periods: int = P):
     g["period"] = per
     g["area_ha"] = g.area / 10_000.0
     t = (per - 0.5) * L
-    g["age_at_harvest"] = np.where(per > 0, g["age"] + t, np.nan)
-    g["volume_m3"] = np.where(per > 0, g["area_ha"] * 3.0 * g["age_at_harvest"].fillna(0), 0.0)
+    g["age_at_harvest_yr"] = np.where(per > 0, g["age"] + t, np.nan)
+    g["volume_m3"] = np.where(per > 0, g["area_ha"] * 3.0 * g["age_at_harvest_yr"].fillna(0), 0.0)
     g["gross_value"] = g["volume_m3"] * 25.0
-    g["value"] = np.where(per > 0, g["gross_value"] * (1 + R) ** -t, 0.0)
+    g["ending_value_npv"] = g["area_ha"] * 100.0
+    g["npv"] = np.where(per > 0, g["gross_value"] * (1 + R) ** -t, 0.0) + g["ending_value_npv"]
     left, right = g.sindex.query(g.geometry, predicate="touches")
     e = np.c_[left, right]
     edges = e[e[:, 0] < e[:, 1]]
@@ -87,8 +88,8 @@ def test_openings_hand_example():
     op, sid = outputs.opening_table(g, edges, 4, np.full(4, 2), init, 1.5, np.ones(4))
     assert list(op["opening_id"]) == ["P01-0001", "P02-0001", "P03-0001"]
     assert list(op["stand_ids"]) == ["A,B", "A,B,C", "C"]
-    assert list(op["area_ha"]) == [2.0, 3.0, 1.0]
-    assert list(op["new_harvest_ha"]) == [2.0, 1.0, 0.0]
+    assert list(op["gross_area_ha"]) == [2.0, 3.0, 1.0]
+    assert list(op["new_harvest_gross_ha"]) == [2.0, 1.0, 0.0]
     assert list(op["stand_count"]) == [2, 3, 1]
     assert (op["max_opening_ha"] == 1.5).all()
     assert list(sid) == ["P01-0001", "P01-0001", "P02-0001", ""]
@@ -108,7 +109,7 @@ def test_openings_young_stand_joins():
     op, sid = outputs.opening_table(g, np.array([[0, 1], [1, 2], [2, 3]]), 3, 1, init, None,
                                     np.ones(4))  # fmt: skip
     assert list(op["stand_ids"]) == ["C,D"]
-    assert op["new_harvest_ha"].iloc[0] == 1.0
+    assert op["new_harvest_gross_ha"].iloc[0] == 1.0
     assert np.isnan(op["max_opening_ha"].iloc[0])
     assert list(sid) == ["", "", "P01-0001", ""]
 
@@ -133,7 +134,7 @@ def test_openings_match_networkx_components():
         assert got == want
         for _, row in got_rows.iterrows():
             members = np.isin(ids, row["stand_ids"].split(","))
-            assert row["area_ha"] == pytest.approx(area[members].sum())
+            assert row["gross_area_ha"] == pytest.approx(area[members].sum())
             # Stands tile the plane without overlap: union area = sum of areas.
             assert row.geometry.area / 10_000 == pytest.approx(area[members].sum(), rel=1e-6)
     for i in np.flatnonzero(per > 0):
@@ -150,21 +151,22 @@ def test_period_table_against_pandas():
     t = outputs.period_table(g, s, op)
     assert list(t["period"]) == list(range(1, P + 1))
     cut = g[g["period"] > 0]
+    cut = cut.assign(harvest_npv=cut["npv"] - cut["ending_value_npv"])
     ref = cut.groupby("period").agg(a=("area_ha", "sum"), v=("volume_m3", "sum"),
-                                    d=("value", "sum"), gv=("gross_value", "sum"))  # fmt: skip
+                                    d=("harvest_npv", "sum"), gv=("gross_value", "sum"))  # fmt: skip
     ref = ref.reindex(range(1, P + 1), fill_value=0.0)
-    np.testing.assert_allclose(t["harvest_area_ha"], ref["a"])
+    np.testing.assert_allclose(t["harvest_net_area_ha"], ref["a"])
     np.testing.assert_allclose(t["harvest_volume_m3"], ref["v"])
-    np.testing.assert_allclose(t["discounted_value"], ref["d"])
+    np.testing.assert_allclose(t["npv"], ref["d"])
     np.testing.assert_allclose(t["gross_value"], ref["gv"])
     for p in range(1, P + 1):
         sub = cut[cut["period"] == p]
         if len(sub):  # area-weighted mean (numpy.average as reference)
             assert t.loc[p - 1, "mean_age_at_harvest_yr"] == pytest.approx(
-                np.average(sub["age_at_harvest"], weights=sub["area_ha"])
+                np.average(sub["age_at_harvest_yr"], weights=sub["area_ha"])
             )
         assert t.loc[p - 1, "largest_opening_ha"] == pytest.approx(
-            op.loc[op["period"] == p, "area_ha"].max() if (op["period"] == p).any() else 0.0
+            op.loc[op["period"] == p, "gross_area_ha"].max() if (op["period"] == p).any() else 0.0
         )
     # Flow band from the even-flow rule |V[p+1] - V[p]| <= tol V[p] (common practice in
     # harvest scheduling, no source).
@@ -175,7 +177,105 @@ def test_period_table_against_pandas():
     np.testing.assert_allclose(t["flow_upper_m3"].iloc[1:], 1.1 * v[:-1])
     ok = np.r_[True, (v[1:] >= 0.9 * v[:-1] - 1e-6) & (v[1:] <= 1.1 * v[:-1] + 1e-6)]
     assert list(t["flow_ok"]) == list(ok)
-    np.testing.assert_allclose(t["mid_yr"], (np.arange(1, P + 1) - 0.5) * L)
+    # Calendar years: start_year + (p - 1) L .. + L, middle at + (p - 0.5) L.
+    np.testing.assert_allclose(t["mid_year"], (np.arange(1, P + 1) - 0.5) * L)
+    t = outputs.period_table(g, s.with_overrides({"horizon.start_year": 2027}), op)
+    np.testing.assert_allclose(t["start_year"], 2027 + np.arange(P) * L)
+    np.testing.assert_allclose(t["end_year"], 2027 + np.arange(1, P + 1) * L)
+    np.testing.assert_allclose(t["mid_year"], 2027 + (np.arange(1, P + 1) - 0.5) * L)
+    assert (t["max_opening_ha"] == 40.0).all()  # the limit, beside the measured largest
+    assert t["old_forest_share"].isna().all() and t["standing_volume_m3"].isna().all()
+
+
+def make_harvests(g: gpd.GeoDataFrame, seed: int = 1, periods: int = P) -> pd.DataFrame:
+    """Made-up harvests of ``g``'s plan: every stand cut in ``period`` is cut again, with
+    probability 1/2, at least two periods later (regenerated as ``R-<stratum>``)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for sid, q, stratum, a in zip(g["stand_id"], g["period"], g["stratum"], g["area_ha"],
+                                  strict=True):  # fmt: skip
+        if q <= 0:
+            continue
+        rows.append((sid, 1, q, stratum, 3.0 * a, 100.0 * a))
+        if q + 2 <= periods and rng.random() < 0.5:
+            rows.append((sid, 2, int(rng.integers(q + 2, periods + 1)), f"R-{stratum}",
+                         2.0 * a, 40.0 * a))  # fmt: skip
+    h = pd.DataFrame(rows, columns=["stand_id", "harvest", "period", "stratum", "volume_m3",
+                                    "npv"])  # fmt: skip
+    h["age_at_harvest_yr"] = 10.0 * h["harvest"]
+    h["gross_value"] = 25.0 * h["volume_m3"]
+    return h
+
+
+def test_openings_after_every_harvest_hand_example():
+    # Three 1 ha squares A-B-C in a row. A cut in 1 and again in 4, C in 2, green-up 2
+    # periods: a stand cut in q is open in q .. q + G - 1 after each of its harvests
+    # (green-up rule, common practice, no source). Worked by hand: P1 {A}; P2 {A} and
+    # {C} (B in between stays closed); P3 {C}; P4 {A}; P5 {A}.
+    sq = [shapely.box(100 * i, 0, 100 * (i + 1), 100) for i in range(3)]
+    g = gpd.GeoDataFrame({"stand_id": list("ABC"), "period": [1, 0, 2]}, geometry=sq,
+                         crs="EPSG:32610")  # fmt: skip
+    h = pd.DataFrame({"stand_id": ["A", "A", "C"], "harvest": [1, 2, 1], "period": [1, 4, 2]})
+    op, sid = outputs.opening_table(g, np.array([[0, 1], [1, 2]]), 5, 2, np.zeros((3, 5), bool),
+                                    1.5, np.ones(3), harvests=h)  # fmt: skip
+    assert list(zip(op["period"], op["stand_ids"], strict=True)) == [
+        (1, "A"),
+        (2, "A"),
+        (2, "C"),
+        (3, "C"),
+        (4, "A"),
+        (5, "A"),
+    ]
+    assert list(op["new_harvest_gross_ha"]) == [1.0, 0.0, 1.0, 0.0, 1.0, 0.0]
+    assert list(sid) == ["P01-0001", "", "P02-0002"]  # the opening of the first harvest
+    # Without the harvests table the second cut of A is unknown: P4 and P5 stay empty.
+    op1, _ = outputs.opening_table(g, np.array([[0, 1], [1, 2]]), 5, 2, None, 1.5, np.ones(3))
+    assert sorted(set(op1["period"])) == [1, 2, 3]
+
+
+def test_multi_harvest_openings_and_tables_against_networkx_and_pandas():
+    g, edges, init, s = make_plan(4, n=70)
+    h = make_harvests(g)
+    assert (h["harvest"] == 2).any()
+    G = 2
+    op, sid = outputs.opening_table(g, edges, P, np.full(len(g), G), init, 40.0,
+                                    g["area_ha"].to_numpy(), harvests=h)  # fmt: skip
+    ids = g["stand_id"].to_numpy()
+    pos = {v: k for k, v in enumerate(ids)}
+    for p in range(1, P + 1):
+        is_open = init[:, p - 1].copy()
+        for sid_, q in zip(h["stand_id"], h["period"], strict=True):
+            is_open[pos[sid_]] |= q <= p <= q + G - 1
+        # Reference: networkx connected components of the subgraph of open stands.
+        graph = nx.Graph()
+        graph.add_nodes_from(np.flatnonzero(is_open))
+        graph.add_edges_from((a, b) for a, b in edges if is_open[a] and is_open[b])
+        want = {frozenset(ids[list(c)]) for c in nx.connected_components(graph)}
+        assert {frozenset(x.split(",")) for x in op.loc[op["period"] == p, "stand_ids"]} == want
+    # A stand's opening id is that of its first harvest.
+    first = h[h["harvest"] == 1].set_index("stand_id")["period"]
+    for i in np.flatnonzero(sid != ""):
+        row = op[op["opening_id"] == sid[i]].iloc[0]
+        assert row["period"] == first[ids[i]] and ids[i] in row["stand_ids"].split(",")
+    assert set(ids[sid != ""]) == set(first.index)
+    # Every harvest counts in its period (pandas groupby as the reference).
+    t = outputs.period_table(g, s, op, harvests=h)
+    ref = h.merge(g[["stand_id", "area_ha"]], on="stand_id").groupby("period").agg(
+        a=("area_ha", "sum"), v=("volume_m3", "sum"), d=("npv", "sum"), n=("npv", "size"),
+        gv=("gross_value", "sum"))  # fmt: skip
+    ref = ref.reindex(range(1, P + 1), fill_value=0.0)
+    np.testing.assert_allclose(t["harvest_net_area_ha"], ref["a"])
+    np.testing.assert_allclose(t["harvest_volume_m3"], ref["v"])
+    np.testing.assert_allclose(t["npv"], ref["d"])
+    np.testing.assert_allclose(t["gross_value"], ref["gv"])
+    assert t["stands_harvested"].tolist() == ref["n"].astype(int).tolist()
+    # Strata by the crop cut: a regrown crop counts in its own stratum.
+    st = outputs.strata_table(g, s, harvests=h)
+    got = st.pivot(index="stratum", columns="period", values="harvest_volume_m3")
+    want = h.pivot_table(index="stratum", columns="period", values="volume_m3", aggfunc="sum")
+    want = want.reindex(index=got.index, columns=range(1, P + 1)).fillna(0.0)
+    np.testing.assert_allclose(got.to_numpy(), want.to_numpy())
+    assert any(x.startswith("R-") for x in st["stratum"])
 
 
 def test_period_table_non_declining():
@@ -198,7 +298,7 @@ def test_strata_table_against_pandas():
     got = t.pivot(index="stratum", columns="period", values="harvest_volume_m3")
     np.testing.assert_allclose(got.to_numpy(), ref.to_numpy())
     tot = g.groupby("stratum")["area_ha"].sum()
-    np.testing.assert_allclose(t.groupby("stratum")["stratum_area_ha"].first(), tot[strata])
+    np.testing.assert_allclose(t.groupby("stratum")["stratum_net_area_ha"].first(), tot[strata])
 
 
 # ---------------------------------------------------------------------------------------
@@ -239,17 +339,19 @@ def test_geopackage_layers_tables_and_styles(tmp_path):
 
     sched = gpd.read_file(path, layer="schedule")
     assert sched.crs == g.crs
-    for col in ("stand_id", "period", "age_at_harvest", "volume_m3", "value", "opening_id"):
+    for col in ("stand_id", "period", "age_at_harvest_yr", "volume_m3", "npv", "opening_id"):
         assert col in sched.columns
     assert set(sched["stratum"]) >= {"Ærø Nord", "Šumava"}
     assert sched["period"].isna().sum() == int((g["period"] == 0).sum())
     op = gpd.read_file(path, layer="openings")
-    assert list(op.columns[:-1]) == ["opening_id", "period", "area_ha", "stand_count",
-                                     "new_harvest_ha", "max_opening_ha", "stand_ids"]  # fmt: skip
+    assert list(op.columns[:-1]) == ["opening_id", "period", "gross_area_ha", "stand_count",
+                                     "new_harvest_gross_ha", "max_opening_ha",
+                                     "stand_ids"]  # fmt: skip
     per = pyogrio.read_dataframe(path, layer="periods")
-    assert {"harvest_area_ha", "harvest_volume_m3", "gross_value", "discounted_value",
-            "mean_age_at_harvest_yr", "largest_opening_ha", "flow_lower_m3",
-            "flow_upper_m3"} <= set(per.columns)  # fmt: skip
+    assert {"start_year", "end_year", "mid_year", "harvest_net_area_ha", "harvest_volume_m3",
+            "gross_value", "npv", "mean_age_at_harvest_yr", "largest_opening_ha",
+            "max_opening_ha", "flow_lower_m3", "flow_upper_m3", "old_forest_share",
+            "standing_volume_m3"} <= set(per.columns)  # fmt: skip
     run = read_run_table(path)
     assert run["stands_path"] == "Šumava/stands.gpkg"
     assert Settings().with_overrides({"horizon.periods": P}).to_json() == run["settings_json"]

@@ -77,7 +77,7 @@ def test_exactly_three_violations() -> None:
     assert by["min_age"].stand_ids == ("C0R2",)
     assert by["min_age"].value == pytest.approx(32.5)
     assert not rep.ok
-    assert rep.verdict.startswith("FAIL: 3 violation(s)")
+    assert rep.verdict.startswith("failed: 3 violation(s)")
     frame = rep.to_frame()
     assert len(frame) == 3
     assert set(frame["kind"]) == {"violation"}
@@ -88,7 +88,7 @@ def test_legal_schedule_passes_and_green_up_one_allows_it() -> None:
     # with a 13 ha limit the 12 ha openings are legal, with minimum age 30 the harvest too
     rep = verify_schedule(sched, base_settings(max_opening_ha=13.0, min_age_yr=30.0), YIELDS)
     assert rep.ok, rep.violations
-    assert rep.verdict.startswith("PASS")
+    assert rep.verdict.startswith("passed")
     # with green-up of one period the period-1 cuts no longer count in period 2
     rep = verify_schedule(sched, base_settings(green_up_periods=1), YIELDS)
     assert rules_of(rep) == [("max_opening", 1), ("min_age", 3)]
@@ -151,7 +151,7 @@ def test_even_flow_both_directions() -> None:
         v = np.zeros(2)
         for p in cuts.values():
             v[p - 1] += vol(60.0, p)
-        np.testing.assert_allclose(rep.periods["volume_m3"], v, rtol=1e-12)
+        np.testing.assert_allclose(rep.periods["harvest_volume_m3"], v, rtol=1e-12)
         flow = [x for x in rep.violations if x.rule == "even_flow"]
         # Even flow as a band around the previous period's volume, |V2 - V1| <= 0.10 V1
         # (common practice in harvest scheduling, no source)
@@ -170,7 +170,7 @@ def test_net_area_bounds_and_ending_inventory() -> None:
         ending_mean_age_yr=70.0,
     )
     rep = verify_schedule(sched, s, YIELDS)
-    assert rep.periods["area_ha"].tolist() == [3.0, 0.0, 0.0, 0.0]  # net areas 2 + 1
+    assert rep.periods["harvest_net_area_ha"].tolist() == [3.0, 0.0, 0.0, 0.0]  # net areas 2 + 1
     got = rules_of(rep)
     assert ("volume_max", 1) in got
     assert ("non_declining", 2) in got
@@ -224,7 +224,7 @@ def test_max_opening_equals_brute_force(seed: int) -> None:
             for sub in itertools.combinations(is_open, k):
                 if connected(sub, nbrs):
                     best = max(best, float(area[list(sub)].sum()))
-        assert rep.periods["max_opening_ha"].iloc[p - 1] == pytest.approx(best)
+        assert rep.periods["largest_opening_ha"].iloc[p - 1] == pytest.approx(best)
 
 
 def test_geographic_crs_gives_same_verdict() -> None:

@@ -230,10 +230,16 @@ def test_recorded_volume_and_value_by_hand() -> None:
     assert all(v.stand_ids == ("S01",) and v.period == 2 for v in rep.violations)
 
 
-@pytest.mark.parametrize("parametric", [False, True])
-def test_recorded_figures_match_the_planners_economics(tmp_path: Path, parametric: bool) -> None:
+@pytest.mark.parametrize(
+    ("parametric", "ending"), [(False, "faustmann"), (True, "faustmann"), (False, "standing"),
+                               (True, "none")]
+)  # fmt: skip
+def test_recorded_figures_match_the_planners_economics(
+    tmp_path: Path, parametric: bool, ending: str
+) -> None:
     """Two implementations of the documented economics (price classes, cost classes,
-    regeneration cost, land and ending value) agree on every harvest of a plan."""
+    regeneration cost and delay, regenerated strata, the ending value) agree on every
+    harvest and every stand of a plan that cuts stands up to three times."""
     from spatialplan import pipeline
 
     forest = voronoi_forest(40, seed=2, mean_area_ha=8.0)
@@ -245,8 +251,8 @@ def test_recorded_figures_match_the_planners_economics(tmp_path: Path, parametri
     s = settings_from_dict(
         {
             "fields": {"cost_class_field": "cost"},
-            "horizon": {"periods": 5, "period_length_yr": 10.0},
-            "rules": {"flow_tolerance": None, "max_opening_ha": None},
+            "horizon": {"periods": 8, "period_length_yr": 10.0},
+            "rules": {"flow_tolerance": None, "max_opening_ha": None, "min_age_yr": 20.0},
             "economics": {
                 "discount_rate": 0.03,
                 "price_per_m3": 30.0,
@@ -256,25 +262,44 @@ def test_recorded_figures_match_the_planners_economics(tmp_path: Path, parametri
                 ],
                 "harvest_cost_by_class": {"steep": 25.0, "flat": 12.0},
                 "regeneration_cost_per_ha": 800.0,
-                "ending_value": "none",
+                "ending_value": ending,
             },
+            "regeneration": {"delay_yr": 2.0, "stratum_map": {"S1": "S2", "S2": "S3"}},
             "growth": {"chapman_richards": cr if parametric else {}},
         }
     )
     inputs = pipeline.load_inputs(path, None if parametric else ypath, s)
     bundle = pipeline.build_problem(inputs)
-    period = np.random.default_rng(4).integers(0, 6, len(forest))
-    sched = pipeline.schedule_frame(inputs, bundle, period)
-    rep = verify_schedule(sched, s, inputs.yield_table)
+    rx = bundle.problem.rx()
+    # a random prescription of every stand (the last of each: the most harvests)
+    rng = np.random.default_rng(4)
+    plan = rx.stand_start[:-1] + (rng.random(len(forest)) * np.diff(rx.stand_start)).astype(int)
+    plan[:5] = rx.stand_start[1:6] - 1
+    sched = pipeline.schedule_frame(inputs, bundle, plan)
+    harvests = pipeline.harvests_frame(inputs, bundle, plan)
+    assert harvests["harvest"].max() >= 3  # regrown crops of mapped strata are cut too
+    rep = verify_schedule(sched, s, inputs.yield_table, harvests=harvests)
     assert not [v.line() for v in rep.violations if v.rule.startswith("recorded_")]
-    assert {"recorded_volume", "recorded_value"} <= set(rep.rules_checked)
-    assert (sched["value"] != 0).sum() == (period > 0).sum()  # values were there to compare
-    # the period volumes agree with the planner's problem arrays (a second implementation)
-    pr = bundle.problem
-    cut = np.flatnonzero(period > 0)
-    ref = np.zeros(5)
-    np.add.at(ref, period[cut] - 1, pr.volume_m3_ha[cut, period[cut] - 1] * pr.area_ha[cut])
-    np.testing.assert_allclose(rep.periods["volume_m3"], ref, rtol=1e-9)
+    want = {"recorded_volume", "recorded_value", "recorded_ending_value", "recorded_npv"}
+    assert want <= set(rep.rules_checked)
+    assert (harvests["npv"] != 0).all()  # values were there to compare
+    if ending != "none":
+        assert (sched["ending_value_npv"] != 0).sum() > len(forest) // 2
+    # the period volumes agree with the planner's prescriptions (a second implementation)
+    h0 = rx.harvest_start[plan]
+    ref = np.zeros(8)
+    for i, k in enumerate(plan):
+        for h in range(h0[i], rx.harvest_start[k + 1]):
+            ref[rx.harvest_period[h] - 1] += rx.harvest_volume_m3_ha[h] * bundle.problem.area_ha[i]
+    np.testing.assert_allclose(rep.periods["harvest_volume_m3"], ref, rtol=1e-9)
+    # a wrong ending value or stand NPV is caught, stand by stand
+    for col, rule in (("ending_value_npv", "recorded_ending_value"), ("npv", "recorded_npv")):
+        bad = sched.copy()
+        bad.loc[3, col] += 5.0
+        rep = verify_schedule(bad, s, inputs.yield_table, harvests=harvests)
+        assert [(v.rule, v.period, v.stand_ids) for v in rep.violations] == [
+            (rule, None, (str(sched.loc[3, "stand_id"]),))
+        ]
 
 
 # ---- a fault injected into the planner --------------------------------------------------------
@@ -323,7 +348,7 @@ def test_dropped_edge_makes_the_planner_cut_an_oversize_opening(tmp_path: Path) 
     assert rep.violations[0].value == pytest.approx(12.5)  # 2 x 250 m x 250 m
     res = CliRunner().invoke(cli, ["verify", str(out)])
     assert res.exit_code == 1
-    assert "VIOLATION max_opening period 1 stands A,B" in res.output
+    assert "violation: max_opening period 1 stands A,B" in res.output
 
 
 # ---- plans that harvest a stand twice -------------------------------------------------------
@@ -365,7 +390,7 @@ def test_two_harvest_plan_legal_too_young_and_green_up() -> None:
     harvests["volume_m3"] = 4.0 * np.interp(ages, np.r_[0, tab.age], np.r_[0, tab.volume])
     rep = verify_schedule(sched, s, YIELDS, harvests=harvests)
     assert rep.ok, [v.line() for v in rep.violations]
-    assert rep.periods["n_stands"].tolist() == [1, 0, 0, 2, 0, 1]
+    assert rep.periods["stands_harvested"].tolist() == [1, 0, 0, 2, 0, 1]
     # second harvest after 10 years: the crop is (2 - 1) 10 = 10 < 30 years old
     sched, harvests = twice_plan(2)
     rep = verify_schedule(sched, s, YIELDS, harvests=harvests)

@@ -208,15 +208,15 @@ def run_and_report(
     t.add_row("verify", outcome.verify.verdict)
     con.out.print(t)
     pt = Table(title="Harvest by period")
-    for c in ("period", "area (ha)", "volume (m3)", "discounted value", "largest opening (ha)"):
+    for c in ("period", "net area (ha)", "volume (m3)", "NPV", "largest opening (ha)"):
         pt.add_column(c, justify="right")
     pdf = outcome.periods
     for _, row in pdf.iterrows():
         pt.add_row(
             f"{int(row['period'])}",
-            f"{row['harvest_area_ha']:,.1f}",
+            f"{row['harvest_net_area_ha']:,.1f}",
             f"{row['harvest_volume_m3']:,.0f}",
-            f"{row['discounted_value']:,.0f}",
+            f"{row['npv']:,.0f}",
             f"{row['largest_opening_ha']:,.1f}",
         )
     con.out.print(pt)

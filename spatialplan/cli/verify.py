@@ -67,8 +67,8 @@ def command(
     for note in report.notes:
         click.echo(f"note: {note}", err=True)
     for v in report.preexisting:
-        click.echo(f"pre-existing {v.line()}")
+        click.echo(f"note: pre-existing {v.line()}")
     for v in report.violations:
-        click.echo(f"VIOLATION {v.line()}")
+        click.echo(f"violation: {v.line()}")
     click.echo(report.verdict)
     ctx.exit(0 if report.ok else 1)

@@ -75,6 +75,9 @@ class UnitSolve:
     error: str | None = None
     diagnosis: list[str] = field(default_factory=list)
     worker: str = ""
+    # (k,) uint64 harvest periods of each stand's prescription (bit p - 1 = period p):
+    # a stand may be cut more than once, which `period` (the first harvest) does not say.
+    harvest_mask: np.ndarray | None = None
 
 
 # ---------------------------------------------------------------------------------------
@@ -222,7 +225,8 @@ def solve_unit(
         settings = apply_overrides(inputs.settings, overrides) if overrides else inputs.settings
         sub = dataclasses.replace(subset_inputs(inputs, mask), settings=settings)
         bundle, r = solve_plan(sub)
-        _sched, rep = verify_plan(sub, bundle, r.period)
+        _sched, rep = verify_plan(sub, bundle, r)
+        masks = np.asarray(bundle.problem.rx().harvest_mask, dtype=np.uint64)[r.prescription]
         return UnitSolve(
             unit,
             True,
@@ -236,6 +240,7 @@ def solve_unit(
             bool(rep.ok),
             str(rep.verdict),
             worker=where(),
+            harvest_mask=masks,
         )
     except Exception as exc:  # reported per unit; merge_unit_plans raises it on the client
         return UnitSolve(
@@ -333,6 +338,7 @@ def merge_unit_plans(
     period = np.zeros(len(inputs.inventory.stands), dtype=np.int64)
     for u in solves:
         period[u.positions] = u.period
+    prescription = _merged_prescriptions(bundle, solves)
     cross = cross_unit_edges(bundle.problem.edges, unit_labels(inputs))
     messages = list(inputs.messages) + list(bundle.messages)
     if len(cross):
@@ -368,6 +374,7 @@ def merge_unit_plans(
         schedule.gap(npv, bound),
         float(max(u.solve_time_s for u in solves)) if solves else 0.0,
         {"units": len(solves), "cross_unit_edges": len(cross), "warnings": []},
+        prescription,
     )
     unit_info = "; ".join(
         f"{u.unit}: {u.status}, NPV {u.npv:.2f}, {u.verify_verdict}" for u in solves
@@ -389,6 +396,24 @@ def merge_unit_plans(
             "rules on the merged plan",
         },
     )
+
+
+def _merged_prescriptions(bundle: Any, solves: list[UnitSolve]) -> np.ndarray | None:
+    """Each stand's prescription in the whole problem: the one with its unit plan's harvests.
+
+    ``None`` when a unit recorded only first harvests (the merge then cuts each stand once).
+    """
+    if any(u.harvest_mask is None for u in solves):
+        return None
+    rx = bundle.problem.rx()
+    want = np.zeros(bundle.problem.n_stands, dtype=np.uint64)
+    for u in solves:
+        want[u.positions] = np.asarray(u.harvest_mask, dtype=np.uint64)
+    stand_of = rx.stand_of
+    hit = np.flatnonzero(np.asarray(rx.harvest_mask, dtype=np.uint64) == want[stand_of])
+    chosen = np.full(len(want), -1, dtype=np.int64)
+    chosen[stand_of[hit]] = hit  # a stand's prescriptions differ in their harvest periods
+    return None if (chosen < 0).any() else chosen
 
 
 def plan_by_unit(

@@ -24,13 +24,18 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 
-from spatialplan.errors import InputError
+from spatialplan.errors import InputError, SettingsError
 from spatialplan.inventory import is_reserve_flag
 from spatialplan.settings import Settings
 from spatialplan.verify import events, rules
 from spatialplan.verify.geometry import area_ha, metre_geometry, neighbours, polygons
 from spatialplan.verify.report import VerifyReport, Violation
-from spatialplan.verify.values import harvest_cost, harvest_value_per_ha
+from spatialplan.verify.values import (
+    discount,
+    ending_value_per_ha,
+    harvest_cost,
+    harvest_value_per_ha,
+)
 from spatialplan.verify.yields import (
     Curves,
     YieldRows,
@@ -181,28 +186,90 @@ def _recorded_checks(
     curves: Curves,
     settings: Settings,
     notes: list[str],
-) -> list[Violation]:
-    """Ages, volumes and values the plan file records for each harvest, against verify's own."""
+) -> tuple[list[Violation], list[str]]:
+    """What the plan file records for each harvest and stand, against verify's own figures.
+
+    Per harvest: the age and volume of the crop cut and its discounted net value; per
+    stand: the discounted ending value (``ending_value_npv``) and the stand's NPV (its
+    harvests plus its ending value). Returns the violations and the checks made.
+    """
     ids, rec = stands.ids[h.stand], h.recorded
     recorded = {k: rec[k].to_numpy() for k in rec.columns}
     out = rules.record_checks(
-        "recorded_age", ids, h.period, recorded["age_at_harvest"], crop.age_at_harvest
+        "recorded_age", ids, h.period, recorded["age_yr"], crop.age_at_harvest
     )
+    checked = ["recorded_age"]
     if cut_m3 is None:
-        return out
+        return out, checked
     out += rules.record_checks("recorded_volume", ids, h.period, recorded["volume_m3"], cut_m3)
-    if not np.isfinite(recorded["value"]).any():
-        return out
-    cost = harvest_cost(schedule, settings, stands.cost_column)[h.stand]
+    checked.append("recorded_volume")
+    cost = harvest_cost(schedule, settings, stands.cost_column)
     value_ha = harvest_value_per_ha(
-        crop.stratum_cut, crop.age_at_harvest, crop.stratum_after, h.period, cost, curves, settings
+        crop.stratum_cut, crop.age_at_harvest, h.period, cost[h.stand], curves, settings
     )
     if value_ha is None:
-        notes.append("harvest values are not checked (no price, or a land value at rate 0)")
-        return out
+        notes.append("harvest and ending values are not checked (the settings give no price)")
+        return out, checked
     value = value_ha * stands.net_ha[h.stand]
-    out += rules.record_checks("recorded_value", ids, h.period, recorded["value"], value)
-    return out
+    if np.isfinite(recorded["npv"]).any():
+        out += rules.record_checks("recorded_value", ids, h.period, recorded["npv"], value)
+        checked.append("recorded_value")
+    if "ending_value_npv" not in schedule.columns:
+        notes.append("ending values are not checked (the plan records no ending_value_npv)")
+        return out, checked
+    econ, hz = settings.economics, settings.horizon
+    _, mapping = events.regeneration(settings)
+    after = np.array([mapping.get(str(x), x) for x in crop.end_stratum], dtype=object)
+    try:
+        ending_ha = ending_value_per_ha(
+            crop.end_stratum, crop.end_age, after, cost, curves, settings
+        )
+    except SettingsError as exc:
+        notes.append(f"ending values are not checked: {exc}")
+        return out, checked
+    n = len(stands.ids)
+    ending = ending_ha * discount(hz.periods * hz.period_length_yr, econ.discount_rate)
+    ending = ending * stands.net_ha
+    whole = np.zeros(n, dtype=np.int64)  # per-stand figures belong to no single period
+    rec_end = pd.to_numeric(schedule["ending_value_npv"], errors="coerce").to_numpy(float)
+    out += rules.record_checks("recorded_ending_value", stands.ids, whole, rec_end, ending)
+    checked.append("recorded_ending_value")
+    if "npv" in schedule.columns:
+        own = np.bincount(h.stand, weights=value, minlength=n) + ending
+        rec_npv = pd.to_numeric(schedule["npv"], errors="coerce").to_numpy(float)
+        out += rules.record_checks("recorded_npv", stands.ids, whole, rec_npv, own)
+        checked.append("recorded_npv")
+    return out, checked
+
+
+def _old_forest_checks(
+    schedule: gpd.GeoDataFrame,
+    stands: _Stands,
+    h: events.Harvests,
+    settings: Settings,
+) -> tuple[list[Violation], np.ndarray]:
+    """Old-forest retention by period (of each management unit when ``fields.unit_field``).
+
+    Returns the violations and the forest-wide old share of the gross area by period (NaN
+    when the rule is off).
+    """
+    r, P = settings.rules, settings.horizon.periods
+    if r.old_forest_age_yr is None or r.old_forest_min_share is None:
+        return [], np.full(P, np.nan)
+    age = events.ages_by_period(h, stands.age_start, settings)
+    old = age >= r.old_forest_age_yr - rules.AGE_EPS_YR
+    gross = stands.gross_ha
+    unit_col = _column(schedule, settings.fields.unit_field) if settings.fields.unit_field else None
+    if unit_col is None:
+        unit = np.zeros(len(gross), dtype=object)
+    else:
+        unit = schedule[unit_col].fillna("").map(key_text).to_numpy(dtype=object)
+    found = rules.old_forest_checks(
+        unit, gross, old, r.old_forest_age_yr, r.old_forest_min_share, unit_col
+    )
+    total = gross.sum()
+    share = (gross[:, None] * old).sum(axis=0) / total if total > 0 else np.full(P, np.nan)
+    return found, share
 
 
 def verify_schedule(
@@ -222,7 +289,8 @@ def verify_schedule(
         the start, yield keys, optional reserve flag and cost class), optional
         ``net_area_ha`` and ``harvest_system`` columns, the harvest period (integer
         ``1 .. P``; empty or 0 when not harvested) and, as a plan file records them,
-        ``age_at_harvest``, ``volume_m3`` and ``value``.
+        ``age_at_harvest_yr``, ``volume_m3``, ``npv`` and ``ending_value_npv`` (plans
+        written before the estate model: ``age_at_harvest`` and ``value``).
     settings
         Rules, horizon, adjacency, economics and ``[growth]`` curves.
     yields
@@ -232,8 +300,8 @@ def verify_schedule(
         Column holding the harvest period (not read when ``harvests`` is given).
     harvests
         A ``harvests`` table (stand id named like ``fields.id_field``, ``harvest``,
-        ``period``, ``age_at_harvest``, ``volume_m3``, ``npv``) for plans that harvest a
-        stand more than once.
+        ``period``, ``age_at_harvest_yr``, ``volume_m3``, ``npv``), one row per harvest;
+        a plan that harvests a stand more than once needs it.
 
     Returns
     -------
@@ -318,18 +386,24 @@ def verify_schedule(
         end_m3 = float((curves.volume(crop.end_stratum, end_age) * net).sum())
     found_end, end_checked = rules.ending_checks(start_m3, end_m3, mean_age, r)
     violations += found + found_end
-    violations += _recorded_checks(schedule, stands, h, crop, cut_m3, curves, settings, notes)
-    checked += flow_checked + end_checked + ["recorded_age"]
-    checked += ["recorded_volume", "recorded_value"] if cut_m3 is not None else []
+    found_old, old_share = _old_forest_checks(schedule, stands, h, settings)
+    violations += found_old
+    found, recorded_checked = _recorded_checks(
+        schedule, stands, h, crop, cut_m3, curves, settings, notes
+    )
+    violations += found
+    checked += flow_checked + end_checked + recorded_checked
+    checked += ["old_forest"] if r.old_forest_age_yr is not None else []
 
-    largest = openings.groupby("period")["area_ha"].max() if len(openings) else pd.Series()
+    largest = openings.groupby("period")["gross_area_ha"].max() if len(openings) else pd.Series()
     periods = pd.DataFrame(
         {
             "period": np.arange(1, P + 1),
-            "volume_m3": volume,
-            "area_ha": area_cut,
-            "n_stands": n_cut,
-            "max_opening_ha": largest.reindex(range(1, P + 1), fill_value=0.0).to_numpy(float),
+            "harvest_volume_m3": volume,
+            "harvest_net_area_ha": area_cut,
+            "stands_harvested": n_cut,
+            "largest_opening_ha": largest.reindex(range(1, P + 1), fill_value=0.0).to_numpy(float),
+            "old_forest_share": old_share,
         }
     )
     return VerifyReport(

@@ -30,6 +30,7 @@ __all__ = [
     "FROM_TABLE",
     "Crops",
     "Harvests",
+    "ages_by_period",
     "crops",
     "green_up_periods",
     "harvests_from_period",
@@ -42,7 +43,13 @@ __all__ = [
 FROM_TABLE = "harvests table"
 #: longest green-up looked for on a height curve, in periods
 _MAX_GREEN_UP_PERIODS = 1000
-_RECORDED = ["age_at_harvest", "volume_m3", "value"]
+#: what a plan file records about each harvest, and the columns it may be in (the first
+#: found wins; the later names are those of plans written before the estate model)
+_RECORDED = {
+    "age_yr": ("age_at_harvest_yr", "age_at_harvest"),
+    "volume_m3": ("volume_m3",),
+    "npv": ("npv",),
+}
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,8 +61,9 @@ class Harvests:
     stand, period
         (e,) stand position and harvest period (1-based) of each event.
     recorded
-        (e,) what the plan file says about each harvest: ``age_at_harvest``,
-        ``volume_m3`` and ``value`` (NaN where not recorded).
+        (e,) what the plan file says about each harvest: ``age_yr`` (age of the crop
+        cut), ``volume_m3`` and ``npv`` (its discounted net value); NaN where not
+        recorded.
     source
         ``"harvests table"`` or ``"schedule column <name>"``.
     """
@@ -76,13 +84,17 @@ def _whole_periods(raw: pd.Series, periods: int) -> tuple[np.ndarray, np.ndarray
     return np.where(bad | np.isnan(num), 0, num).astype(np.int64), bad
 
 
-def _recorded(frame: pd.DataFrame, columns: dict[str, str]) -> pd.DataFrame:
+def _recorded(frame: pd.DataFrame, columns: dict[str, tuple[str, ...]]) -> pd.DataFrame:
     out = pd.DataFrame(index=range(len(frame)))
-    for name in _RECORDED:
-        col = columns.get(name)
-        values = frame[col] if col in frame.columns else pd.Series(np.nan, index=frame.index)
+    for name, candidates in columns.items():
+        col = next((c for c in candidates if c in frame.columns), None)
+        values = frame[col] if col is not None else pd.Series(np.nan, index=frame.index)
         out[name] = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
     return out
+
+
+def _numbers(frame: pd.DataFrame, column: str) -> np.ndarray:
+    return pd.to_numeric(frame[column], errors="coerce").to_numpy(dtype=float)
 
 
 def harvests_from_period(
@@ -103,8 +115,29 @@ def harvests_from_period(
         )
         for k in np.flatnonzero(bad)
     ]
+    if (
+        "harvest_count" in frame.columns
+        and (np.nan_to_num(_numbers(frame, "harvest_count")) > 1).any()
+    ):
+        more = np.flatnonzero(np.nan_to_num(_numbers(frame, "harvest_count")) > 1)
+        listed = ", ".join(str(ids[k]) for k in more[:10])
+        msg = (
+            f"the schedule records stands harvested more than once ({listed}; column "
+            "harvest_count) but no harvests table was given: verify the plan GeoPackage, "
+            "which holds it, or pass the harvests table"
+        )
+        raise InputError(msg)
     cut = np.flatnonzero(period > 0)
-    recorded = _recorded(frame.iloc[cut], {n: n for n in _RECORDED})
+    rows = frame.iloc[cut]
+    recorded = _recorded(rows, {k: v for k, v in _RECORDED.items() if k != "npv"})
+    # The harvest's value: `value` in plans written before the estate model; since then
+    # the stand's `npv` holds its ending value too, which is taken off.
+    if "value" in rows.columns:
+        recorded["npv"] = _numbers(rows, "value")
+    elif "npv" in rows.columns and "ending_value_npv" in rows.columns:
+        recorded["npv"] = _numbers(rows, "npv") - _numbers(rows, "ending_value_npv")
+    else:
+        recorded["npv"] = np.nan
     return Harvests(cut, period[cut], recorded, f"schedule column {column}"), problems
 
 
@@ -145,10 +178,7 @@ def harvests_from_table(
     ]
     keep = np.flatnonzero(period > 0)
     order = keep[np.lexsort((period[keep], stand[keep]))]
-    recorded = _recorded(
-        table.iloc[order],
-        {"age_at_harvest": "age_at_harvest", "volume_m3": "volume_m3", "value": "npv"},
-    )
+    recorded = _recorded(table.iloc[order], _RECORDED)
     return Harvests(stand[order], period[order], recorded, FROM_TABLE), problems
 
 
@@ -280,3 +310,19 @@ def openness(
         opened_by[i, span] = np.maximum(opened_by[i, span], q)
     young = age_start[:, None] + (p[None, :] - 0.5) * L < green_start[:, None] * L
     return (opened_by > 0) | young, opened_by
+
+
+def ages_by_period(harvests: Harvests, age_start: np.ndarray, settings: Settings) -> np.ndarray:
+    """(n, P) age of the crop standing at every mid-period (regrowth of the module docstring).
+
+    Before a stand's first harvest ``age_start + (p - 0.5) L``; from a harvest in ``q`` on,
+    ``(p - q) L - delay`` (negative until the new crop starts; ``-delay`` in the period of
+    the cut itself).
+    """
+    P, L = settings.horizon.periods, settings.horizon.period_length_yr
+    delay, _ = regeneration(settings)
+    p = np.arange(1, P + 1)
+    age = np.asarray(age_start, dtype=float)[:, None] + (p - 0.5)[None, :] * L
+    for i, q in zip(harvests.stand, harvests.period, strict=True):  # events in period order
+        age[i, q - 1 :] = (p[q - 1 :] - q) * L - delay
+    return age

@@ -22,7 +22,8 @@ class Violation:
         ``max_opening``, ``green_up``, ``unit_restriction``, ``min_age``, ``reserve``,
         ``reharvest``, ``period_range``, ``inoperable``, ``even_flow``, ``non_declining``,
         ``volume_min``, ``volume_max``, ``area_min``, ``area_max``, ``ending_volume``,
-        ``ending_age``, ``recorded_age``, ``recorded_volume`` or ``recorded_value``.
+        ``ending_age``, ``old_forest``, ``recorded_age``, ``recorded_volume``,
+        ``recorded_value``, ``recorded_ending_value`` or ``recorded_npv``.
     period
         Planning period (1-based) or ``None`` for whole-horizon rules.
     stand_ids
@@ -65,11 +66,14 @@ class VerifyReport:
     notes
         Other remarks (geometry repairs, conversions, checks that could not be made).
     openings
-        Every opening of every period: ``period``, ``opening``, ``n_stands``,
-        ``area_ha``, ``new_cut_ha``, ``stand_ids`` (comma-separated), ``positions``.
+        Every opening of every period: ``period``, ``opening``, ``stand_count``,
+        ``gross_area_ha``, ``new_harvest_gross_ha`` (gross area cut in that period),
+        ``stand_ids`` (comma-separated), ``positions``.
     periods
-        Per period: ``period``, ``volume_m3``, ``area_ha``, ``n_stands``,
-        ``max_opening_ha``.
+        Per period (the names of the plan's ``periods`` table): ``period``,
+        ``harvest_volume_m3``, ``harvest_net_area_ha``, ``stands_harvested`` (harvests),
+        ``largest_opening_ha`` (gross, measured), ``old_forest_share`` (NaN when the
+        rule is off).
     n_stands, n_periods
         Size of the checked schedule.
     rules_checked
@@ -92,20 +96,20 @@ class VerifyReport:
 
     @property
     def verdict(self) -> str:
-        """One line: PASS or FAIL with counts per rule."""
+        """One line: ``passed`` or ``failed`` with counts per rule."""
         pre = (
             f"; {len(self.preexisting)} pre-existing condition(s) noted" if self.preexisting else ""
         )
         if self.ok:
             return (
-                f"PASS: all rules hold for {self.n_stands} stands over {self.n_periods} "
+                f"passed: all rules hold for {self.n_stands} stands over {self.n_periods} "
                 f"periods ({', '.join(self.rules_checked)}){pre}"
             )
         counts: dict[str, int] = {}
         for v in self.violations:
             counts[v.rule] = counts.get(v.rule, 0) + 1
         parts = ", ".join(f"{k} {c}" for k, c in counts.items())
-        return f"FAIL: {len(self.violations)} violation(s) ({parts}){pre}"
+        return f"failed: {len(self.violations)} violation(s) ({parts}){pre}"
 
     def to_frame(self) -> pd.DataFrame:
         """Violations and pre-existing conditions as one table (column ``kind``)."""

@@ -32,6 +32,7 @@ __all__ = [
     "ending_checks",
     "flow_checks",
     "harvest_checks",
+    "old_forest_checks",
     "opening_checks",
     "record_checks",
     "unit_restriction_checks",
@@ -147,8 +148,8 @@ def opening_checks(
     violations, preexisting
         ``max_opening`` and ``green_up`` breaches; pre-existing conditions.
     openings
-        One row per opening: ``period``, ``opening``, ``n_stands``, ``area_ha``,
-        ``new_cut_ha``, ``stand_ids``, ``positions``.
+        One row per opening: ``period``, ``opening``, ``stand_count``, ``gross_area_ha``,
+        ``new_harvest_gross_ha``, ``stand_ids``, ``positions``.
     """
     graph = nx.Graph()
     graph.add_nodes_from(range(len(ids)))
@@ -168,9 +169,9 @@ def opening_checks(
                 {
                     "period": p,
                     "opening": o + 1,
-                    "n_stands": len(members),
-                    "area_ha": area,
-                    "new_cut_ha": float(gross_ha[cut_now].sum()),
+                    "stand_count": len(members),
+                    "gross_area_ha": area,
+                    "new_harvest_gross_ha": float(gross_ha[cut_now].sum()),
                     "stand_ids": ",".join(str(ids[m]) for m in members),
                     "positions": members,
                 }
@@ -229,7 +230,8 @@ def opening_checks(
                     "have not greened up",
                 )
             )
-    cols = ["period", "opening", "n_stands", "area_ha", "new_cut_ha", "stand_ids", "positions"]
+    cols = ["period", "opening", "stand_count", "gross_area_ha", "new_harvest_gross_ha",
+            "stand_ids", "positions"]  # fmt: skip
     return violations, preexisting, pd.DataFrame(rows, columns=cols)
 
 
@@ -350,20 +352,28 @@ def record_checks(
     recorded: np.ndarray,
     recomputed: np.ndarray,
 ) -> list[Violation]:
-    """Harvest figures in the plan file that differ from verify's own, one line per period.
+    """Figures in the plan file that differ from verify's own, one line per period.
 
     Parameters
     ----------
     rule
-        ``recorded_age``, ``recorded_volume`` or ``recorded_value``.
+        ``recorded_age``, ``recorded_volume``, ``recorded_value`` (per harvest),
+        ``recorded_ending_value`` or ``recorded_npv`` (per stand).
     ids, period
-        (e,) stand id and period of every harvest.
+        (e,) stand id and period of every harvest (0 for a per-stand figure: the
+        violation then names no period).
     recorded, recomputed
         (e,) the plan's figure and verify's; harvests where either is NaN are skipped.
         They differ when apart by more than :data:`REL_EPS` of verify's figure plus
         :data:`RECORD_ATOL`.
     """
-    what = {"recorded_age": "age at harvest", "recorded_volume": "volume (m3)"}.get(rule, "value")
+    what = {
+        "recorded_age": "age at harvest",
+        "recorded_volume": "volume (m3)",
+        "recorded_ending_value": "discounted ending value",
+        "recorded_npv": "NPV",
+    }.get(rule, "value")
+    unit = "stand(s)" if rule in ("recorded_ending_value", "recorded_npv") else "harvest(s)"
     both = np.isfinite(recorded) & np.isfinite(recomputed)
     gap = np.abs(recorded - recomputed)
     off = both & (gap > REL_EPS * np.abs(recomputed) + RECORD_ATOL)
@@ -374,15 +384,63 @@ def record_checks(
         out.append(
             Violation(
                 rule,
-                int(p),
+                int(p) if p > 0 else None,
                 tuple(str(ids[k]) for k in rows),
                 float(recorded[worst]),
                 float(recomputed[worst]),
-                f"recorded {what} of {len(rows)} harvest(s) differs from verify's own; "
+                f"recorded {what} of {len(rows)} {unit} differs from verify's own; "
                 f"stand {ids[worst]}: recorded {recorded[worst]:,.4g}, recomputed "
                 f"{recomputed[worst]:,.4g}",
             )
         )
+    return out
+
+
+def old_forest_checks(
+    unit: np.ndarray,
+    gross_ha: np.ndarray,
+    old: np.ndarray,
+    old_age_yr: float,
+    min_share: float,
+    unit_field: str | None = None,
+) -> list[Violation]:
+    """Old-forest retention: in every period the gross area at least ``old_age_yr`` old at
+    mid-period is at least ``min_share`` of the gross area (of each unit).
+
+    Parameters
+    ----------
+    unit
+        (n,) management unit of each stand (one value: the whole forest).
+    gross_ha
+        (n,) gross stand areas.
+    old
+        (n, P) True where a stand is old at mid-period.
+    old_age_yr, min_share
+        ``rules.old_forest_age_yr`` and ``rules.old_forest_min_share``.
+    unit_field
+        Name of the unit field, for messages (``None``: the whole forest).
+    """
+    out: list[Violation] = []
+    for u in pd.unique(unit):
+        members = unit == u
+        total = float(gross_ha[members].sum())
+        need = min_share * total
+        where = "the forest" if unit_field is None else f"unit {u} ({unit_field})"
+        for p in range(1, old.shape[1] + 1):
+            have = float(gross_ha[members & old[:, p - 1]].sum())
+            if have < need - _slack(have, need) - AREA_EPS_HA:
+                out.append(
+                    Violation(
+                        "old_forest",
+                        p,
+                        (),
+                        have,
+                        need,
+                        f"old forest (at least {old_age_yr:g} years at mid-period) covers "
+                        f"{have:,.2f} ha of {where}, below {min_share:.0%} of its "
+                        f"{total:,.2f} ha",
+                    )
+                )
     return out
 
 

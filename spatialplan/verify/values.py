@@ -11,9 +11,11 @@ per m3, regeneration cost ``C`` per ha and discount rate ``r``:
   ``economics.price_per_m3`` when there is no class list or no diameter);
 * harvest cost per m3: the slope class of the stand's ``harvest_system`` when that class
   has a cost, else the stand's cost class, else ``economics.harvest_cost_per_m3``;
-* value ``((price - h) V(a) - C + land) (1 + r)^-t A``, where ``land`` is 0 unless
-  ``economics.include_land_value``: then the best Faustmann land expectation value of the
-  regenerated stratum over rotations of 1 .. 300 years (no annual cost), plus ``C``
+* value ``((price - h) V(a) - C) (1 + r)^-t A`` (the harvest's share of the plan NPV,
+  regeneration cost included);
+* the value of the forest left at the end (:func:`ending_value_per_ha`, by
+  ``economics.ending_value``), discounted from ``P L``; with ``faustmann`` it holds the
+  land expectation value of the regenerated stratum over crop ages of 1 .. 300 years
   (Faustmann 1849).
 """
 
@@ -22,21 +24,22 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from spatialplan.errors import InputError
+from spatialplan.errors import InputError, SettingsError
 from spatialplan.settings import Economics, Settings
+from spatialplan.verify.events import regeneration
 from spatialplan.verify.yields import Curves, key_text
 
 __all__ = [
     "LAND_VALUE_MAX_AGE_YR",
     "discount",
-    "ending_gain_per_ha",
+    "ending_value_per_ha",
     "harvest_cost",
     "harvest_value_per_ha",
     "land_value",
     "stumpage",
 ]
 
-#: rotations searched for the land value, 1 .. this many years (docs/methods.md)
+#: crop ages searched for the land value and the ending value (docs/methods.md)
 LAND_VALUE_MAX_AGE_YR = 300
 
 
@@ -111,32 +114,55 @@ def harvest_cost(frame: pd.DataFrame, settings: Settings, cost_column: str | Non
     return out
 
 
-def land_value(strata: np.ndarray, cost: np.ndarray, curves: Curves, econ: Economics) -> np.ndarray:
-    """Value of bare land just regenerated: best Faustmann LEV over 1 .. 300 years, plus ``C``.
+def _net_stumpage(
+    strata: np.ndarray, ages: np.ndarray, cost: np.ndarray, curves: Curves, econ: Economics
+) -> np.ndarray | None:
+    """``S(a) = (price(d(a)) - h) V(a)`` per ha (ages below 0 count as 0); ``None`` without a price."""
+    a = np.maximum(np.asarray(ages, dtype=float), 0.0)
+    price = stumpage(curves.diameter(strata, a), econ)
+    if price is None:
+        return None
+    return (price - cost) * curves.volume(strata, a)
 
-    ``LEV(T) = (S(T) - C (1 + r)^T) / ((1 + r)^T - 1)`` with ``S(T) = (price - h) V(T)``
-    (Faustmann 1849); ``C`` is added back because the harvest already paid it. NaN where
-    no price is known.
+
+def land_value(
+    strata: np.ndarray, cost: np.ndarray, curves: Curves, settings: Settings
+) -> np.ndarray:
+    """Faustmann land expectation value of bare land: the best over crop ages 1 .. 300 years.
+
+    ``LEV(T) = (S(T) - C (1 + r)^(T + d)) / ((1 + r)^(T + d) - 1)`` with
+    ``S(T) = (price - h) V(T)``, the regeneration cost ``C`` at the start of every rotation
+    and the land bare ``d = regeneration.delay_yr`` years after each cut (Faustmann 1849).
+    NaN where no price is known.
+
+    Raises
+    ------
+    SettingsError
+        ``economics.discount_rate`` is not above 0 (the LEV is unbounded).
     """
+    econ = settings.economics
+    r = econ.discount_rate
+    if not r > 0:
+        msg = f"economics.discount_rate = {r!r}: a land expectation value needs a rate > 0"
+        raise SettingsError(msg)
+    delay, _ = regeneration(settings)
     ages = np.arange(1, LAND_VALUE_MAX_AGE_YR + 1, dtype=float)
-    growth = (1.0 + econ.discount_rate) ** ages
+    growth = (1.0 + r) ** (ages + delay)
     regen = econ.regeneration_cost_per_ha
     out = np.full(len(strata), np.nan)
-    pairs = pd.DataFrame({"s": strata, "h": cost})
+    pairs = pd.DataFrame({"s": np.asarray(strata, dtype=object), "h": np.asarray(cost, float)})
     for (lab, h), rows in pairs.groupby(["s", "h"]).groups.items():
         labels = np.full(len(ages), lab, dtype=object)
-        price = stumpage(curves.diameter(labels, ages), econ)
-        if price is None:
+        value = _net_stumpage(labels, ages, np.full(len(ages), h), curves, econ)
+        if value is None:
             continue
-        s = (price - h) * curves.volume(labels, ages)
-        out[np.asarray(rows)] = float(np.max((s - regen * growth) / (growth - 1.0))) + regen
+        out[np.asarray(rows)] = float(np.nanmax((value - regen * growth) / (growth - 1.0)))
     return out
 
 
 def harvest_value_per_ha(
     stratum_cut: np.ndarray,
     age_yr: np.ndarray,
-    stratum_after: np.ndarray,
     period: np.ndarray,
     cost: np.ndarray,
     curves: Curves,
@@ -148,8 +174,6 @@ def harvest_value_per_ha(
     ----------
     stratum_cut, age_yr
         (e,) stratum and age at mid-period of the crop each harvest cuts.
-    stratum_after
-        (e,) stratum regenerated after each harvest (for the land value).
     period
         (e,) harvest periods.
     cost
@@ -162,7 +186,7 @@ def harvest_value_per_ha(
     Returns
     -------
     numpy.ndarray or None
-        ``None`` when the settings give no price (or ask for a land value at a rate of 0).
+        ``None`` when the settings give no price.
     """
     econ, L = settings.economics, settings.horizon.period_length_yr
     price = stumpage(curves.diameter(stratum_cut, age_yr), econ)
@@ -172,23 +196,63 @@ def harvest_value_per_ha(
     return net * discount((period - 0.5) * L, econ.discount_rate)
 
 
-def ending_gain_per_ha(
-    cut: tuple[np.ndarray, np.ndarray],
-    uncut: tuple[np.ndarray, np.ndarray],
+def ending_value_per_ha(
+    strata: np.ndarray,
+    age_end_yr: np.ndarray,
+    next_strata: np.ndarray,
     cost: np.ndarray,
     curves: Curves,
     settings: Settings,
 ) -> np.ndarray:
-    """Discounted value standing at the end of the horizon if cut, less the value if uncut.
+    """Value per ha of the forest left at the end of the horizon, at the end (undiscounted).
 
-    ``cut`` and ``uncut`` are (stratum, age at the end) pairs of (e,) arrays. The value of
-    standing timber is ``(price - h) V`` (docs/methods.md), discounted from ``P L``.
-    NaN where no price is known.
+    By ``economics.ending_value`` (``docs/methods.md``, Ending value):
+
+    * ``faustmann``: ``max_a (S(a) + LEV') (1 + r)^-(a - e)`` over ages
+      ``a = max(e, 0) + j``, ``j = 0 .. 300`` years, of the crop of age ``e`` standing at the
+      end: cut it at the best age, then own bare land worth the LEV of the stratum that
+      regenerates after it (:func:`land_value`);
+    * ``standing``: ``S(max(e, 0))``, the standing timber;
+    * ``none``: 0.
+
+    Parameters
+    ----------
+    strata, age_end_yr
+        (n,) stratum and age of the crop standing at the end.
+    next_strata
+        (n,) stratum that regenerates after that crop is cut.
+    cost
+        (n,) harvest cost per m3.
+    curves, settings
+        Verify's growth curves; ``economics`` and ``regeneration`` are used.
+
+    Returns
+    -------
+    numpy.ndarray
+        NaN where no price is known.
     """
-    econ, hz = settings.economics, settings.horizon
-    value = []
-    for strata, age in (cut, uncut):
-        price = stumpage(curves.diameter(strata, age), econ)
-        price = np.full(len(age), np.nan) if price is None else price
-        value.append((price - cost) * curves.volume(strata, age))
-    return (value[0] - value[1]) * discount(hz.periods * hz.period_length_yr, econ.discount_rate)
+    econ = settings.economics
+    e = np.asarray(age_end_yr, dtype=float)
+    mode = econ.ending_value
+    if mode == "none":
+        return np.zeros(len(e))
+    if mode == "standing":
+        value = _net_stumpage(np.asarray(strata, dtype=object), e, cost, curves, econ)
+        return np.full(len(e), np.nan) if value is None else value
+    land = land_value(next_strata, cost, curves, settings)
+    rows = pd.DataFrame(
+        {"s": np.asarray(strata, dtype=object), "e": e, "h": np.asarray(cost, float), "v": land}
+    )
+    unique = rows.drop_duplicates(ignore_index=True)
+    j = np.arange(LAND_VALUE_MAX_AGE_YR + 1, dtype=float)
+    out = np.full(len(unique), np.nan)
+    for u in range(len(unique)):  # a few hundred distinct (stratum, age, cost) at most
+        lab, age, h, lev = unique.loc[u, ["s", "e", "h", "v"]]
+        ages = max(float(age), 0.0) + j
+        value = _net_stumpage(np.full(len(j), lab, dtype=object), ages, np.full(len(j), h),
+                              curves, econ)  # fmt: skip
+        if value is None or not np.isfinite(lev):
+            continue
+        out[u] = float(np.nanmax((value + lev) * discount(ages - float(age), econ.discount_rate)))
+    key = rows.merge(unique.reset_index(), on=["s", "e", "h", "v"], how="left")["index"]
+    return out[key.to_numpy(dtype=np.int64)]

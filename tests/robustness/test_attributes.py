@@ -89,7 +89,7 @@ def test_field_names_match_case_insensitively(
     cut = sched["period"].notna()
     assert cut.any()
     expected_age = sched.loc[cut, "Age"] + (sched.loc[cut, "period"] - 0.5) * 5.0
-    np.testing.assert_allclose(sched.loc[cut, "age_at_harvest"], expected_age, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(sched.loc[cut, "age_at_harvest_yr"], expected_age, rtol=0, atol=1e-9)
 
 
 def test_duplicate_and_missing_ids(run: GuardedCli, tmp_path: Path, yields: Path) -> None:
@@ -242,11 +242,14 @@ def test_numeric_ids_and_keys_from_other_systems(run: GuardedCli, tmp_path: Path
     assert list(sched["stratum"]) == ["1", "2", "1", "2"]
     cut = sched["period"].notna().to_numpy()
     assert set(sched.loc[cut, "stratum"]) == {"1", "2"}, sched
-    for _, r in sched[cut].iterrows():
+    harvests = pyogrio.read_dataframe(out, layer="harvests", read_geometry=False)
+    assert set(harvests["stand_id"]) == set(sched.loc[cut, "stand_id"])
+    area = dict(zip(sched["stand_id"], sched["net_area_ha"], strict=True))
+    for _, r in harvests.iterrows():
         curve = yt[yt["stratum"] == r["stratum"]]
         per_ha = np.interp(
-            r["age_at_harvest"],
+            r["age_at_harvest_yr"],
             np.r_[0.0, curve["age"].to_numpy(float)],
             np.r_[0.0, curve["volume"].to_numpy(float)],
         )
-        assert r["volume_m3"] == pytest.approx(r["area_ha"] * per_ha, abs=0.05), r
+        assert r["volume_m3"] == pytest.approx(area[r["stand_id"]] * per_ha, abs=0.05), r

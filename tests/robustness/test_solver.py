@@ -228,7 +228,7 @@ def test_ctrl_c_during_solve_writes_plan_marked_interrupted(tmp_path: Path) -> N
     assert float(run_table["npv"]) >= shown_npv - 0.5
     sched = pyogrio.read_dataframe(out, layer="schedule")
     assert len(sched) == 1500
-    assert float(run_table["npv"]) == pytest.approx(sched["value"].sum(), rel=1e-9)
+    assert float(run_table["npv"]) == pytest.approx(sched["npv"].sum(), rel=1e-9)
     res = run_subprocess(["verify", out])
     assert res.returncode == 0, res.stdout[-2000:]
     assert not [p.name for p in tmp_path.iterdir() if p.name.startswith(".plan.")]
