@@ -156,7 +156,7 @@ def _period_summary(periods: pd.DataFrame) -> pd.DataFrame:
         {
             "period": periods["period"].to_numpy(dtype=int),
             "volume_m3": _col(periods, "volume_m3", "harvest_volume_m3"),
-            "area_ha": _col(periods, "area_ha", "harvest_area_ha"),
+            "area_ha": _col(periods, "harvest_net_area_ha", "harvest_area_ha"),
             "largest_opening_ha": _col(periods, "largest_opening_ha", "max_opening_ha"),
         }
     )
