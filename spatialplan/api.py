@@ -348,7 +348,7 @@ class HarvestPlan:
 
     @property
     def verdict(self) -> str:
-        """One line from the independent check: PASS or FAIL with counts."""
+        """One line from the independent check: ``passed: ...`` or ``failed: ...`` with counts."""
         return str(self.verify.verdict)
 
 
@@ -413,7 +413,7 @@ def plan(
     ...     "economics.price_per_m3": 40.0, "horizon.periods": 3,
     ...     "solver.time_limit_s": 1.0, "solver.workers": 1})
     >>> result = plan(voronoi_forest(12, seed=1), synthetic_yield_table(), settings)
-    >>> result.verdict.startswith("PASS"), result.npv <= result.lp_bound
+    >>> result.verdict.startswith("passed"), result.npv <= result.lp_bound
     (True, True)
     >>> result.periods["period"].tolist()
     [1, 2, 3]

@@ -31,7 +31,7 @@ FLAGS = {
     "--time-limit": "60",
     "--workers": "1",
     "--seed": "7",
-    "--gap": "0",
+    "--stop-gap": "0",
 }
 OVERRIDES = {
     "economics.price_per_m3": 40.0,
@@ -41,7 +41,7 @@ OVERRIDES = {
     "solver.time_limit_s": 60.0,
     "solver.workers": 1,
     "solver.seed": 7,
-    "solver.gap": 0.0,
+    "solver.stop_gap": 0.0,
     "output.no_map": True,
 }
 
@@ -165,7 +165,7 @@ def test_verify_plan_matches_the_command(api_plan: spatialplan.HarvestPlan, cli_
     res = CliRunner().invoke(cli, ["verify", str(path)])
     assert res.exit_code == 1
     assert res.output.strip().splitlines()[-1] == spatialplan.verify_plan(path).verdict
-    assert {ln.split()[1] for ln in res.output.splitlines() if ln.startswith("VIOLATION")} == rules
+    assert {ln.split()[1] for ln in res.output.splitlines() if ln.startswith("violation:")} == rules
 
 
 def test_plan_again_under_other_rules(api_plan: spatialplan.HarvestPlan) -> None:

@@ -54,7 +54,7 @@ def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Pat
     out = tmp_path / "plan.gpkg"
     res = CliRunner().invoke(cli, _plan_args(stands, yields, out))
     assert res.exit_code == 0, res.output
-    assert "PASS" in res.output
+    assert "passed: all rules hold" in res.output
     assert (sha256(stands), sha256(yields)) == before  # inputs untouched
     sched = pyogrio.read_dataframe(out, layer="schedule")
     assert len(sched) == 60
@@ -82,7 +82,7 @@ def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Pat
     assert (sched.loc[cut, "age_at_harvest"] >= 30 - 1e-9).all()
     with sqlite3.connect(out) as con:
         run = dict(con.execute("select key, value from run").fetchall())
-    assert run["verify_verdict"].startswith("PASS")
+    assert run["verify_verdict"].startswith("passed: ")
     assert float(run["npv"]) == pytest.approx(sched["value"].sum(), rel=1e-6)
     assert float(run["lp_bound"]) >= float(run["npv"]) - 1e-6
     # A bound is an upper bound: never below a legal plan's value.
@@ -129,7 +129,7 @@ def test_demo_subprocess(tmp_path: Path) -> None:
     for name in ("brennick_plan.gpkg", "brennick_plan.map.html", "brennick_plan.report.html"):
         assert (out / name).is_file()
     assert any((out / "brennick_plan_charts").glob("*.png"))
-    assert "PASS" in res.stdout
+    assert "passed: all rules hold" in res.stdout
 
 
 def test_plan_by_unit_merges_units(tmp_path: Path, yields_csv: Path) -> None:

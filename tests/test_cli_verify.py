@@ -60,24 +60,24 @@ def three_plan(tmp_path: Path) -> Path:
 def test_three_violations_exit_1(three_plan: Path) -> None:
     res = CliRunner().invoke(cli, ["verify", str(three_plan)])
     assert res.exit_code == 1, res.output
-    lines = [x for x in res.output.splitlines() if x.startswith("VIOLATION")]
+    lines = [x for x in res.output.splitlines() if x.startswith("violation:")]
     assert len(lines) == 3
     assert any(
         "max_opening period 1" in x and "C0R0,C1R0,C2R0" in x and "12.00 ha" in x for x in lines
     )
     assert any("green_up period 2" in x and "C5R0" in x for x in lines)
     assert any("min_age period 3" in x and "C0R2" in x for x in lines)
-    assert res.output.strip().splitlines()[-1].startswith("FAIL: 3 violation(s)")
+    assert res.output.strip().splitlines()[-1].startswith("failed: 3 violation(s)")
 
 
 def test_flags_override_recorded_rules(three_plan: Path) -> None:
     runner = CliRunner()
     res = runner.invoke(cli, ["verify", str(three_plan), "--max-opening", "13"])
     assert res.exit_code == 1
-    assert "FAIL: 1 violation(s) (min_age 1)" in res.output
+    assert "failed: 1 violation(s) (min_age 1)" in res.output
     res = runner.invoke(cli, ["verify", str(three_plan), "--max-opening", "13", "--min-age", "30"])
     assert res.exit_code == 0, res.output
-    assert "PASS" in res.output
+    assert "passed: all rules hold" in res.output
     res = runner.invoke(cli, ["verify", str(three_plan), "--green-up", "1"])
     assert res.exit_code == 1
     assert "green_up" not in res.output
@@ -106,7 +106,7 @@ def test_yields_override_and_legal_plan(tmp_path: Path) -> None:
     write_plan(p, {(0, 0): 1, (3, 0): 2, (0, 2): 3, (3, 2): 4}, {}, RULES)
     res = CliRunner().invoke(cli, ["verify", str(p)])
     assert res.exit_code == 0, res.output
-    assert res.output.strip().splitlines()[-1].startswith("PASS")
+    assert res.output.strip().splitlines()[-1].startswith("passed: ")
     other = tmp_path / "yields.csv"
     YIELDS[YIELDS.stratum == "S2"].to_csv(other, index=False)
     res = CliRunner().invoke(

@@ -77,7 +77,7 @@ def test_exactly_three_violations() -> None:
     assert by["min_age"].stand_ids == ("C0R2",)
     assert by["min_age"].value == pytest.approx(32.5)
     assert not rep.ok
-    assert rep.verdict.startswith("FAIL: 3 violation(s)")
+    assert rep.verdict.startswith("failed: 3 violation(s)")
     frame = rep.to_frame()
     assert len(frame) == 3
     assert set(frame["kind"]) == {"violation"}
@@ -88,7 +88,7 @@ def test_legal_schedule_passes_and_green_up_one_allows_it() -> None:
     # with a 13 ha limit the 12 ha openings are legal, with minimum age 30 the harvest too
     rep = verify_schedule(sched, base_settings(max_opening_ha=13.0, min_age_yr=30.0), YIELDS)
     assert rep.ok, rep.violations
-    assert rep.verdict.startswith("PASS")
+    assert rep.verdict.startswith("passed: all rules hold")
     # with green-up of one period the period-1 cuts no longer count in period 2
     rep = verify_schedule(sched, base_settings(green_up_periods=1), YIELDS)
     assert rules_of(rep) == [("max_opening", 1), ("min_age", 3)]

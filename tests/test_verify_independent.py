@@ -299,7 +299,7 @@ def test_dropped_edge_makes_the_planner_cut_an_oversize_opening(tmp_path: Path) 
             "horizon": {"periods": 3, "period_length_yr": 10.0},
             "rules": {"max_opening_ha": 10.0, "green_up_periods": 1, "flow_tolerance": None},
             "economics": {"discount_rate": 0.05, "price_per_m3": 50.0},
-            "solver": {"time_limit_s": 20.0, "workers": 2, "gap": 0.0},
+            "solver": {"time_limit_s": 20.0, "workers": 2, "stop_gap": 0.0},
             "output": {"no_map": True},
         }
     )
@@ -323,7 +323,7 @@ def test_dropped_edge_makes_the_planner_cut_an_oversize_opening(tmp_path: Path) 
     assert rep.violations[0].value == pytest.approx(12.5)  # 2 x 250 m x 250 m
     res = CliRunner().invoke(cli, ["verify", str(out)])
     assert res.exit_code == 1
-    assert "VIOLATION max_opening period 1 stands A,B" in res.output
+    assert "violation: max_opening period 1 stands A,B" in res.output
 
 
 # ---- plans that harvest a stand twice -------------------------------------------------------

@@ -92,20 +92,20 @@ class VerifyReport:
 
     @property
     def verdict(self) -> str:
-        """One line: PASS or FAIL with counts per rule."""
+        """One line: ``passed: ...`` or ``failed: ...`` with counts per rule."""
         pre = (
             f"; {len(self.preexisting)} pre-existing condition(s) noted" if self.preexisting else ""
         )
         if self.ok:
             return (
-                f"PASS: all rules hold for {self.n_stands} stands over {self.n_periods} "
+                f"passed: all rules hold for {self.n_stands} stands over {self.n_periods} "
                 f"periods ({', '.join(self.rules_checked)}){pre}"
             )
         counts: dict[str, int] = {}
         for v in self.violations:
             counts[v.rule] = counts.get(v.rule, 0) + 1
         parts = ", ".join(f"{k} {c}" for k, c in counts.items())
-        return f"FAIL: {len(self.violations)} violation(s) ({parts}){pre}"
+        return f"failed: {len(self.violations)} violation(s) ({parts}){pre}"
 
     def to_frame(self) -> pd.DataFrame:
         """Violations and pre-existing conditions as one table (column ``kind``)."""

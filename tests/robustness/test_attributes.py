@@ -77,7 +77,7 @@ def test_field_names_match_case_insensitively(
     for s in sorted(set(g["stratum"])):
         sel = (g["stratum"] == s).to_numpy()
         assert [s, str(sel.sum()), f"{area_ha[sel].sum():,.1f}"] in rows
-    assert "Inputs are usable for planning." in res.output
+    assert "passed: the inputs are usable for planning" in res.output
     # The plan keeps the user's field names and uses 'Age' as the start age: age at
     # harvest = start age + (p - 0.5) L at mid-period (common practice, no source).
     out = tmp_path / "o.gpkg"
