@@ -169,3 +169,73 @@ def test_plan_by_unit_merges_units(tmp_path: Path, yields_csv: Path) -> None:
         ],
     )
     assert res.exit_code == 1 and "--unit-field" in res.output
+
+
+def test_plan_console_tables_fit_80_columns(
+    tmp_path: Path, small_forest: tuple[Path, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import re
+
+    import pandas as pd
+
+    from spatialplan.cli import _common
+    from spatialplan.runtable import read_run_table
+
+    stands, yields = small_forest
+    settings = tmp_path / "s.toml"
+    settings.write_text("[horizon]\nstart_year = 2025\n", encoding="utf-8")
+    out = tmp_path / "plan.gpkg"
+    monkeypatch.setenv("COLUMNS", "80")  # rich reads the terminal width from it
+    _common.console.cache_clear()  # the console is made once per process: make it anew
+    try:
+        res = CliRunner().invoke(
+            cli, [*_plan_args(stands, yields, out), "--settings", str(settings)]
+        )
+    finally:
+        _common.console.cache_clear()
+    assert res.exit_code == 0, res.output
+    assert "…" not in res.output  # rich marks a cut cell with an ellipsis
+    table_lines = [ln for ln in res.output.splitlines() if ln[:1] in "┏┃┡│└"]
+    assert table_lines and max(len(ln) for ln in table_lines) <= 80
+    rows = [[c.strip() for c in re.split("[┃│]", ln)[1:-1]] for ln in table_lines]
+    items = [tuple(r) for r in rows if len(r) == 3]
+
+    run = read_run_table(out)
+    npv = float(run["npv"])
+    lp = float(run.get("bound_aspatial_lp") or run["lp_bound"])
+    cp_text = run.get("bound_cpsat", run.get("cpsat_bound", ""))
+    bounds = {"aspatial LP (HiGHS)": lp}
+    if cp_text:
+        bounds["CP-SAT"] = float(cp_text)
+    assert ("NPV", f"{npv:,.0f}", "") in items
+    for method, b in bounds.items():  # every bound, with its kind
+        assert ("upper bound", f"{b:,.0f}", method) in items
+    # The best proven bound: the smallest upper bound, never below a legal plan's NPV
+    # (an upper bound on the optimum bounds every plan), the NPV once proven optimal.
+    gap = float(run["gap"])
+    method = min(bounds, key=bounds.__getitem__)
+    best = npv if gap == 0 else max(npv, bounds[method])
+    assert ("best proven upper bound", f"{best:,.0f}", method) in items
+    assert ("gap to the best proven bound", f"{100 * gap:.2f} %", "") in items
+    assert ("independent verification", "passed", "verdict below") in items
+
+    # Harvest by period: calendar years start_year + (p - 1) L to start_year + p L, the
+    # numbers of the written periods table, net harvest area and gross opening sizes.
+    periods = pd.DataFrame(pyogrio.read_dataframe(out, layer="periods", read_geometry=False))
+    area = periods.get("harvest_net_area_ha", periods.get("harvest_area_ha"))
+    value = periods.get("npv", periods.get("discounted_value"))
+    by_period = {r[0]: r[1:] for r in rows if len(r) == 6 and r[0].isdigit()}
+    assert len(by_period) == 4
+    for i, p in enumerate(periods["period"].astype(int)):
+        assert by_period[str(p)] == [
+            f"{2025 + (p - 1) * 5}-{2025 + p * 5}",
+            f"{area[i]:,.1f}",
+            f"{periods['harvest_volume_m3'][i]:,.0f}",
+            f"{value[i]:,.0f}",
+            f"{periods['largest_opening_ha'][i]:,.1f}",
+        ]
+    text = " ".join(res.output.split())
+    for header in ("harvest area (net, ha)", "largest opening (gross, ha)"):
+        words = header.split()
+        assert all(w in text for w in words)  # headers may wrap inside their cell
+    assert res.output.count("passed: all rules hold") == 1

@@ -5,6 +5,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import logging
+import re
 import sys
 import warnings
 from collections.abc import Callable, Iterator
@@ -26,6 +27,7 @@ __all__ = [
     "run_cli",
     "settings_from_flags",
     "settings_options",
+    "split_severity",
 ]
 
 log = logging.getLogger("spatialplan")
@@ -245,6 +247,25 @@ def prefixed(severity: str, text: str) -> str:
     'note: 3 stands have no neighbours'
     """
     return f"{SEVERITY_PREFIX.get(severity, severity + ':')} {text}"
+
+
+_OWN_PREFIX = re.compile(r"^\s*(warning|note)\b[\s:-]*", re.IGNORECASE)
+
+
+def split_severity(message: str) -> tuple[str, str]:
+    """``("warning", text)`` for a message that starts with its own ``warning``, else
+    ``("note", text)``; ``text`` is the message without that word (the console adds it).
+
+    Examples
+    --------
+    >>> split_severity("Warning: 2 adjacent stand pairs lie in different units")
+    ('warning', '2 adjacent stand pairs lie in different units')
+    >>> split_severity("3 stand(s) reserved")
+    ('note', '3 stand(s) reserved')
+    """
+    m = _OWN_PREFIX.match(str(message))
+    word = "warning" if m is not None and m.group(1).lower() == "warning" else "note"
+    return word, _OWN_PREFIX.sub("", str(message), count=1).strip()
 
 
 @contextlib.contextmanager

@@ -8,7 +8,13 @@ from typing import Any
 
 import click
 
-from spatialplan.cli._common import console, prefixed, settings_from_flags, settings_options
+from spatialplan.cli._common import (
+    console,
+    prefixed,
+    settings_from_flags,
+    settings_options,
+    split_severity,
+)
 
 PLAN_FLAGS = [
     "layer",
@@ -189,7 +195,7 @@ def run_and_report(
             outcome = run_plan(inputs, out, on_progress=on_progress, on_stage=on_stage)
     r = outcome.result
     for m in outcome.messages:
-        con.err.print(prefixed("note", m), markup=False)
+        con.err.print(prefixed(*split_severity(m)), markup=False)
     con.out.print(summary_table(r, outcome, out))
     con.out.print(period_table(outcome.periods, settings))
     for f in outcome.extra_files:
@@ -220,36 +226,42 @@ def summary_table(result: Any, outcome: Any, out: Path) -> Any:
     """The plan's key numbers: status, NPV, every proven upper bound, the gap.
 
     The best proven upper bound is the smallest bound, never below the NPV (see
-    :func:`spatialplan.schedule.best_bound`); each bound is listed with its method.
+    :func:`spatialplan.schedule.best_bound`); each bound is listed with its method in the
+    ``detail`` column.
     """
     from rich.table import Table
 
     from spatialplan.schedule import best_bound, best_bound_method, proven_bounds
 
     r = result
-    status = r.status + (" (best plan so far)" if r.status in ("interrupted", "time_limit") else "")
-    rows: list[tuple[str, str]] = [("solver status", status), ("NPV", f"{r.npv:,.0f}")]
+    so_far = "best plan so far" if r.status in ("interrupted", "time_limit") else ""
+    rows: list[tuple[str, str, str]] = [
+        ("solver status", r.status, so_far),
+        ("NPV", f"{r.npv:,.0f}", ""),
+    ]
     bounds = proven_bounds(r)
     for method, bound in bounds.items():
-        rows.append((f"upper bound: {method}", f"{bound:,.0f}"))
+        rows.append(("upper bound", f"{bound:,.0f}", method))
     best = best_bound(r)
     if bounds and math.isfinite(best):
-        rows.append((f"best proven upper bound ({best_bound_method(r)})", f"{best:,.0f}"))
-        rows.append(("gap to the best proven bound", f"{100 * r.gap:.2f} %"))
+        rows.append(("best proven upper bound", f"{best:,.0f}", best_bound_method(r)))
+        rows.append(("gap to the best proven bound", f"{100 * r.gap:.2f} %", ""))
     else:
-        rows.append(("best proven upper bound", "none"))
+        rows.append(("best proven upper bound", "none", ""))
     harvested = int((outcome.schedule["period"].fillna(0) > 0).sum())
-    rows.append(("stands harvested", f"{harvested}"))
-    rows.append(("solve time", f"{r.solve_time_s:.1f} s"))
-    rows.append(("independent verification", "passed" if outcome.verify.ok else "failed"))
+    rows.append(("stands harvested", f"{harvested}", ""))
+    rows.append(("solve time", f"{r.solve_time_s:.1f} s", ""))
+    verdict = "passed" if outcome.verify.ok else "failed"
+    rows.append(("independent verification", verdict, "verdict below"))
     t = Table(title=f"Plan written to {out}", title_justify="left")
     t.add_column("item")
     # Values never wrap or get cut: the column is as wide as its longest value.
     t.add_column(
-        "value", justify="right", no_wrap=True, min_width=_cell_width([v for _, v in rows])
+        "value", justify="right", no_wrap=True, min_width=_cell_width([v for _, v, _ in rows])
     )
-    for item, shown in rows:
-        t.add_row(item, shown)
+    t.add_column("detail")
+    for row in rows:
+        t.add_row(*row)
     return t
 
 
