@@ -196,8 +196,8 @@ def run_and_report(
     r = outcome.result
     for m in outcome.messages:
         con.err.print(prefixed(*split_severity(m)), markup=False)
-    con.out.print(summary_table(r, outcome, out))
-    con.out.print(period_table(outcome.periods, settings))
+    con.out.print(_summary_table(r, outcome, out))
+    con.out.print(_harvest_table(outcome.periods, settings))
     for f in outcome.extra_files:
         con.out.print(f"wrote {f}", markup=False)
     con.out.print(outcome.verify.verdict, markup=False)
@@ -222,7 +222,7 @@ def _cell_width(cells: list[str]) -> int:
     return max((len(c) for c in cells), default=1)
 
 
-def summary_table(result: Any, outcome: Any, out: Path) -> Any:
+def _summary_table(result: Any, outcome: Any, out: Path) -> Any:
     """The plan's key numbers: status, NPV, every proven upper bound, the gap.
 
     The best proven upper bound is the smallest bound, never below the NPV (see
@@ -285,7 +285,7 @@ def _values(pdf: Any, *names: str) -> Any:
     raise KeyError(msg)
 
 
-def period_table(periods: Any, settings: Any) -> Any:
+def _harvest_table(periods: Any, settings: Any) -> Any:
     """Harvest by period with calendar years; net harvest area, gross opening sizes."""
     from rich.table import Table
 
