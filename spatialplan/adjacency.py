@@ -1,7 +1,7 @@
 """Stand adjacency from geometry: which stands share a boundary, and how long it is.
 
 Two stands are *adjacent* when they share more than ``min_shared_edge_m`` of boundary,
-where boundary separated by a digitising gap of at most ``gap_tolerance_m`` still counts
+where boundary separated by a digitising gap of at most ``digitising_tolerance_m`` still counts
 as shared. Stands that touch only at a corner are not adjacent unless
 ``corner_adjacency`` is set (then any contact within the tolerance counts).
 
@@ -320,7 +320,7 @@ def _pair_list(ids: np.ndarray | None, df: pd.DataFrame, fmt: str) -> str:
 def build_adjacency(
     geometry: gpd.GeoSeries | np.ndarray,
     min_shared_edge_m: float = 1.0,
-    gap_tolerance_m: float = 0.5,
+    digitising_tolerance_m: float = 0.5,
     corner_adjacency: bool = False,
     ids: Sequence[str] | None = None,
 ) -> AdjacencyResult:
@@ -333,7 +333,7 @@ def build_adjacency(
         geographic CRS is projected to its UTM zone first (with a warning).
     min_shared_edge_m
         Stands sharing more than this length of boundary are adjacent.
-    gap_tolerance_m
+    digitising_tolerance_m
         Boundary separated by at most this gap still counts as shared.
     corner_adjacency
         Count any contact within the tolerance (also a single corner point) as adjacency.
@@ -381,7 +381,7 @@ def build_adjacency(
         msg = f"stands with non-polygon geometry: {', '.join(names)}"
         raise InputError(msg)
 
-    tol = max(float(gap_tolerance_m), MIN_RADIUS_M)
+    tol = max(float(digitising_tolerance_m), MIN_RADIUS_M)
     search = GAP_SEARCH_FACTOR * max(tol, 0.1)
     tree = shapely.STRtree(geoms)
     qa, qb = tree.query(geoms, predicate="dwithin", distance=search)

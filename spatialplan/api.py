@@ -354,7 +354,7 @@ class HarvestPlan:
 
     @property
     def verdict(self) -> str:
-        """One line from the independent check: ``passed`` or ``failed`` with counts."""
+        """One line from the independent check: ``passed: ...`` or ``failed: ...`` with counts."""
         return str(self.verify.verdict)
 
 

@@ -760,13 +760,25 @@ def match_strata(
 
 
 def age_class_table(
-    stands: pd.DataFrame, age: np.ndarray | None = None, width_yr: int = 20
+    stands: pd.DataFrame, age: np.ndarray | None = None, width_yr: float = 10.0
 ) -> pd.DataFrame:
-    """Area (ha) by age class of ``width_yr`` years (``0-19``, ``20-39`` ...)."""
+    """Area (ha) by age class ``[k w, (k + 1) w)`` of ``w = width_yr`` years.
+
+    Classes of whole years are labelled by their first and last year (``0-9``, ``10-19``
+    ...), others by their limits (``0-<2.5``).
+
+    Examples
+    --------
+    >>> df = pd.DataFrame({"age": [3.0, 12.0, 19.5, 40.0], "area_ha": [1.0, 2.0, 3.0, 4.0]})
+    >>> age_class_table(df).values.tolist()
+    [['0-9', 1.0], ['10-19', 5.0], ['40-49', 4.0]]
+    """
     a = np.asarray(stands["age"].to_numpy() if age is None else age, dtype=float)
     ok = np.isfinite(a)  # missing or junk ages are reported by read_stands, not classed here
-    lo = (np.floor(a[ok] / width_yr) * width_yr).astype(int)
-    labels = [f"{v}-{v + width_yr - 1}" for v in lo]
+    w = float(width_yr)
+    lo = np.floor(a[ok] / w) * w
+    whole = w.is_integer()
+    labels = [f"{v:g}-{v + w - 1:g}" if whole else f"{v:g}-<{v + w:g}" for v in lo]
     area = stands["area_ha"].to_numpy()[ok]
     df = pd.DataFrame({"age_class": labels, "lo": lo, "area_ha": area})
     out = df.groupby(["lo", "age_class"], as_index=False)["area_ha"].sum().sort_values("lo")

@@ -314,7 +314,7 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     adj = adjacency.build_adjacency(
         st.geometry,
         s.adjacency.min_shared_edge_m,
-        s.adjacency.gap_tolerance_m,
+        s.adjacency.digitising_tolerance_m,
         s.adjacency.corner_adjacency,
         ids=st["stand_id"].tolist(),
     )

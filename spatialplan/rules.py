@@ -259,6 +259,6 @@ def rule_summary(settings: Settings) -> list[str]:
     corner = "; corner contacts count" if adj.corner_adjacency else ""
     out.append(
         f"stands are adjacent when they share more than {adj.min_shared_edge_m:g} m of "
-        f"boundary (gaps up to {adj.gap_tolerance_m:g} m closed){corner}"
+        f"boundary (gaps up to {adj.digitising_tolerance_m:g} m closed){corner}"
     )
     return out

@@ -162,39 +162,20 @@ def recorded_settings(run: Mapping[str, str], source: str | Path) -> Settings | 
 
 
 def _bounds(result: Any) -> dict[str, str]:
-    """``best_bound`` (the tightest proven upper bound), how it was proven, and both bounds."""
+    """``best_bound`` (the tightest proven upper bound), its method, the gap and both bounds."""
     import math
 
-    from spatialplan.scenarios.comparison import best_bound
-    from spatialplan.scenarios.tasks import ScenarioResult
-    from spatialplan.schedule import gap
+    from spatialplan.schedule import best_bound, best_bound_method, gap
 
     lp = float(result.lp_bound)
     cps = None if result.cpsat_bound is None else float(result.cpsat_bound)
-    best = best_bound(
-        ScenarioResult(
-            "plan",
-            True,
-            str(result.status),
-            npv=float(result.npv),
-            lp_bound=lp,
-            cpsat_bound=cps,
-            gap=float(result.gap),
-        )
-    )
-    known = {
-        name: b
-        for name, b in (("aspatial LP (HiGHS)", lp), ("CP-SAT", cps))
-        if b is not None and math.isfinite(b)
-    }
-    method = min(known, key=lambda k: known[k]) if known else ""
-    if known and math.isfinite(best) and best < min(known.values()) - 1e-9 * max(1.0, abs(best)):
-        method = "CP-SAT (optimality proven)"  # the plan itself, proven optimal
+    best = best_bound(result)
+    finite = math.isfinite(best)
     return {
-        "best_bound": "" if not math.isfinite(best) else f"{best:.2f}",
-        "best_bound_method": method,
+        "best_bound": f"{best:.2f}" if finite else "",
+        "best_bound_method": best_bound_method(result),
         # the gap to the best bound (the solver's own gap uses the same tighter bound)
-        "gap": f"{gap(float(result.npv), best) if math.isfinite(best) else result.gap:.6f}",
+        "gap": f"{gap(float(result.npv), best) if finite else result.gap:.6f}",
         "bound_aspatial_lp": f"{lp:.2f}" if math.isfinite(lp) else "",
         "bound_cpsat": "" if cps is None else f"{cps:.2f}",
     }

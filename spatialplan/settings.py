@@ -11,12 +11,18 @@ The tree mirrors the TOML sections::
     [regeneration] what grows back after a clear-cut, and when
     [growth]      optional parametric curves and diameter/height by age per stratum
     [terrain]     DEM, stream layer, slope classes
-    [solver]      time limit, workers, seed, gap
-    [output]      map and raster options
+    [solver]      time limit, workers, seed, stopping gap
+    [output]      map, raster and chart options
 
 Every value is validated once, at load, with a message naming the TOML key (and its line
 in the file when it came from one) and the allowed range. Dotted keys such as
 ``rules.max_opening_ha`` address a value for overrides (CLI flags, scenario files).
+
+A key renamed in a later version (:data:`RENAMED_KEYS`) is read under its new name wherever
+it appears: a settings file, a scenario file, a dotted override, or the settings recorded
+in an older plan. Each translation, and a single price that replaces a price schedule
+(:meth:`Settings.with_overrides`), is reported as a :class:`SettingsNote` warning, which
+the command line prints as ``note: ...``.
 """
 
 from __future__ import annotations
@@ -29,6 +35,7 @@ import re
 import tomllib
 import types
 import typing
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -38,6 +45,7 @@ from spatialplan.errors import SettingsError
 
 __all__ = [
     "OFF",
+    "RENAMED_KEYS",
     "AdjacencySettings",
     "ChapmanRichards",
     "Economics",
@@ -49,6 +57,7 @@ __all__ = [
     "Regeneration",
     "Rules",
     "Settings",
+    "SettingsNote",
     "SlopeClass",
     "SolverSettings",
     "StratumCurve",
@@ -133,7 +142,8 @@ class AdjacencySettings:
     """When two stands count as neighbours."""
 
     min_shared_edge_m: float = field(default=1.0, metadata=_rng(0, None))
-    gap_tolerance_m: float = field(default=0.5, metadata=_rng(0, 1000))
+    # Largest digitising gap (m) between two polygons that is bridged as shared boundary.
+    digitising_tolerance_m: float = field(default=0.5, metadata=_rng(0, 1000))
     corner_adjacency: bool = False
 
 
@@ -249,7 +259,8 @@ class SolverSettings:
     time_limit_s: float = field(default=60.0, metadata=_rng(0, None, lo_open=True))
     workers: int = field(default=8, metadata=_rng(1, 256))
     seed: int = field(default=0, metadata=_rng(0, 2**31 - 1))
-    gap: float = field(default=0.001, metadata=_rng(0, 1))
+    # Stop when the relative gap of the best plan to the best proven bound is this small.
+    stop_gap: float = field(default=0.001, metadata=_rng(0, 1))
 
 
 @dataclass(frozen=True)
@@ -261,6 +272,8 @@ class OutputSettings:
     raster_out: str | None = None
     raster_cell_m: float = field(default=10.0, metadata=_rng(0, None, lo_open=True))
     write_back: bool = False
+    # Width of the age classes in ``check`` and the charts (years).
+    age_class_width_yr: float = field(default=10.0, metadata=_rng(0, 200, lo_open=True))
 
 
 @dataclass(frozen=True)
@@ -296,13 +309,45 @@ class Settings:
         """Settings as a JSON string, as recorded in the output GeoPackage."""
         return json.dumps(self.to_dict(), sort_keys=True)
 
-    def with_overrides(self, overrides: dict[str, Any]) -> Settings:
+    def with_overrides(self, overrides: Mapping[str, Any]) -> Settings:
         """Return a copy with dotted keys (``"rules.max_opening_ha"``) replaced.
 
         Values are validated like values read from a file. ``None`` values are skipped
-        so CLI flags that were not given leave the setting alone.
+        so CLI flags that were not given leave the setting alone. Old names of renamed keys
+        (:data:`RENAMED_KEYS`) are read as the new ones, with a :class:`SettingsNote`.
+
+        A single price ``economics.price_per_m3`` given here (flag ``--price``, a scenario)
+        replaces the price schedule: every diameter then sells at that price, and a
+        :class:`SettingsNote` says so. Giving ``economics.price_schedule`` in the same
+        overrides keeps the schedule, with the single price as its fallback for strata
+        without a diameter (as in a settings file).
+
+        Examples
+        --------
+        >>> s = Settings(economics=Economics(price_schedule=(PriceClass("saw", 20, 70.0),)))
+        >>> import warnings
+        >>> with warnings.catch_warnings(record=True) as notes:
+        ...     warnings.simplefilter("always")
+        ...     t = s.with_overrides({"economics.price_per_m3": 50.0, "solver.gap": 0.0})
+        >>> t.economics.price_per_m3, t.economics.price_schedule, t.solver.stop_gap
+        (50.0, (), 0.0)
+        >>> [str(n.message).split(";")[0] for n in notes]  # doctest: +NORMALIZE_WHITESPACE
+        ["setting 'solver.gap' is now called 'solver.stop_gap'",
+         'economics.price_per_m3 = 50 replaces the price schedule (1 product class)']
         """
+        overrides = _rename_flat(overrides)
         data = self.to_dict()
+        price = overrides.get("economics.price_per_m3")
+        schedule = data["economics"]["price_schedule"]
+        if price is not None and schedule and overrides.get("economics.price_schedule") is None:
+            data["economics"]["price_schedule"] = []
+            n = len(schedule)
+            _note(
+                f"economics.price_per_m3 = {_show(price)} replaces the price schedule "
+                f"({n} product class{'es' if n != 1 else ''}); every diameter sells at "
+                f"{_show(price)} per m3 (a single price given as a flag or an override wins; "
+                "give economics.price_schedule with it to keep the schedule)"
+            )
         for key, value in overrides.items():
             if value is None:
                 continue
@@ -373,6 +418,72 @@ _RETIRED = {
 }
 
 
+#: Keys renamed in a later version: old dotted key -> new dotted key. Wherever the old
+#: key appears (a settings file, a scenario file, a dotted override, the settings recorded
+#: in an older plan) it is read as the new one, with a :class:`SettingsNote`.
+RENAMED_KEYS: dict[str, str] = {
+    "solver.gap": "solver.stop_gap",
+    "adjacency.gap_tolerance_m": "adjacency.digitising_tolerance_m",
+}
+
+
+class SettingsNote(UserWarning):
+    """How a setting was read, worth telling the planner (a renamed key, a replaced schedule).
+
+    The settings are valid as read; the command line prints these as ``note: ...``.
+    """
+
+
+def _note(message: str) -> None:
+    warnings.warn(message, SettingsNote, stacklevel=3)
+
+
+def _show(value: Any) -> str:
+    return f"{value:g}" if isinstance(value, float) else repr(value)
+
+
+def _renamed_note(old: str, new: str, value: Any, where: str) -> None:
+    _note(f"setting '{old}'{where} is now called '{new}'; read as {new} = {_show(value)}")
+
+
+def _both_given(old: str, new: str, where: str) -> typing.NoReturn:
+    msg = (
+        f"setting '{old}'{where} is the old name of '{new}', which is given too; keep only '{new}'"
+    )
+    raise SettingsError(msg)
+
+
+def _rename_nested(data: dict[str, Any], ctx: _Ctx) -> dict[str, Any]:
+    """``data`` (nested sections) with old names of renamed keys replaced by the new ones."""
+    for old, new in RENAMED_KEYS.items():
+        section, leaf = old.split(".")
+        table = data.get(section)
+        if not isinstance(table, dict) or leaf not in table:
+            continue
+        new_leaf = new.split(".")[-1]
+        where = ctx.where(old) or (f" (in {ctx.path})" if ctx.path else "")
+        if new_leaf in table:
+            _both_given(old, new, where)
+        table = {(new_leaf if k == leaf else k): v for k, v in table.items()}
+        data = {**data, section: table}
+        _renamed_note(old, new, table[new_leaf], where)
+    return data
+
+
+def _rename_flat(overrides: Mapping[str, Any]) -> dict[str, Any]:
+    """Dotted ``overrides`` with old names of renamed keys replaced by the new ones."""
+    out = dict(overrides)
+    for old, new in RENAMED_KEYS.items():
+        if old not in out:
+            continue
+        if new in out:
+            _both_given(old, new, "")
+        value = out.pop(old)
+        out[new] = value
+        _renamed_note(old, new, value, "")
+    return out
+
+
 def _unknown_key(key: str, valid: list[str], where: str = "") -> typing.NoReturn:
     if key in _RETIRED:
         msg = f"setting '{key}'{where} was removed: {_RETIRED[key]}"
@@ -398,6 +509,9 @@ class _Ctx:
         if self.text is None:
             return ""
         line = _find_line(self.text, key)
+        old = {v: k for k, v in RENAMED_KEYS.items()}.get(key)
+        if line is None and old is not None:  # the file holds the key under its old name
+            line = _find_line(self.text, old)
         loc = f"{self.path}" if self.path else "settings"
         return f" ({loc}, line {line})" if line else f" ({loc})"
 
@@ -523,6 +637,7 @@ def settings_from_dict(
         The validated settings.
     """
     ctx = _Ctx(text, path)
+    data = _rename_nested(data, ctx)
     if text is None:
         data = _upgrade_recorded(data)
     s = _build(Settings, data, "", ctx)
@@ -710,6 +825,14 @@ def flatten_overrides(table: Mapping[str, Any], prefix: str = "") -> dict[str, A
 
     >>> flatten_overrides({"rules": {"max_opening_ha": 40}, "solver.seed": 1})
     {'rules.max_opening_ha': 40, 'solver.seed': 1}
+
+    The old name of a renamed key comes out as the new one (with a :class:`SettingsNote`):
+
+    >>> import warnings
+    >>> with warnings.catch_warnings():
+    ...     warnings.simplefilter("ignore", SettingsNote)
+    ...     flatten_overrides({"adjacency": {"gap_tolerance_m": 1.0}})
+    {'adjacency.digitising_tolerance_m': 1.0}
     """
     out: dict[str, Any] = {}
     for k, v in table.items():
@@ -718,7 +841,7 @@ def flatten_overrides(table: Mapping[str, Any], prefix: str = "") -> dict[str, A
             out.update(flatten_overrides(v, key + "."))
         else:
             out[key] = v
-    return out
+    return _rename_flat(out) if not prefix else out
 
 
 def apply_overrides(settings: Settings, overrides: Mapping[str, Any]) -> Settings:
@@ -748,6 +871,7 @@ def apply_overrides(settings: Settings, overrides: Mapping[str, Any]) -> Setting
     >>> s.rules.flow_tolerance is None, s.rules.min_age_yr
     (True, 30.0)
     """
+    overrides = _rename_flat(overrides)
     on = {k: v for k, v in overrides.items() if not _is_off(v)}
     off = [k for k, v in overrides.items() if _is_off(v)]
     s = settings.with_overrides(on) if on else settings

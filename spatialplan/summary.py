@@ -41,7 +41,8 @@ class InputSummary:
         Net area (of stream buffers) of the stands that are neither reserved nor
         inoperable: the land base the plan can cut.
     age_classes
-        ``age_class``, ``area_ha`` (20-year classes).
+        ``age_class``, ``area_ha`` (classes ``output.age_class_width_yr`` years wide, as in
+        the charts).
     strata
         ``stratum``, ``stands``, ``area_ha``.
     harvest_systems
@@ -103,7 +104,7 @@ def summarise_inputs(inputs: Any) -> InputSummary:
     areas = stand_areas(inputs)
     total = float(areas.area_ha.sum())
     if len(st):
-        ages = age_class_table(st)
+        ages = age_class_table(st, width_yr=inputs.settings.output.age_class_width_yr)
         strata = (
             st.groupby("stratum")["area_ha"]
             .agg(stands="count", area_ha="sum")

@@ -31,7 +31,7 @@ FLAGS = {
     "--time-limit": "60",
     "--workers": "1",
     "--seed": "7",
-    "--gap": "0",
+    "--stop-gap": "0",
 }
 OVERRIDES = {
     "economics.price_per_m3": 40.0,
@@ -41,7 +41,7 @@ OVERRIDES = {
     "solver.time_limit_s": 60.0,
     "solver.workers": 1,
     "solver.seed": 7,
-    "solver.gap": 0.0,
+    "solver.stop_gap": 0.0,
     "output.no_map": True,
 }
 

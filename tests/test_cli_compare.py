@@ -25,7 +25,7 @@ yields = "yields.csv"
 
 [base]
 "solver.workers" = 1
-"solver.gap" = 0.0
+"solver.stop_gap" = 0.0
 "solver.time_limit_s" = 20
 "horizon.periods" = 3
 "economics.price_per_m3" = 50.0
@@ -97,7 +97,7 @@ def test_compare_failed_scenario_exit_code(tmp_path: Path) -> None:
     # One message style: lowercase prefixes, "failed:" for a scenario without a plan.
     assert "failed: impossible: infeasible" in r.output
     assert "failed: 1 of 3 scenario(s) did not produce a verified plan: impossible" in r.output
-    assert "FAIL" not in r.output
+    assert "FAIL" not in r.output and "Error:" not in r.output
     t = _check_outputs(out, ["impossible", "open15", "openoff"]).set_index("scenario")
     assert t.loc["impossible", "status"] == "infeasible"
     assert t.loc["open15", "status"] == "optimal"

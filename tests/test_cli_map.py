@@ -114,3 +114,21 @@ def test_map_command_rejects_non_plan(tmp_path, capsys):
     with pytest.raises(SystemExit):
         main(["map", str(gpkg), "--basemap", "not-a-template"])
     assert "basemap" in capsys.readouterr().err
+
+
+def test_map_reads_an_old_plan_with_renamed_settings_keys(tmp_path):
+    import json
+
+    layers, *_, settings = make_layers()
+    old = settings.to_dict()
+    old["solver"]["gap"] = old["solver"].pop("stop_gap")
+    old["adjacency"]["gap_tolerance_m"] = old["adjacency"].pop("digitising_tolerance_m")
+    layers["run"] = run_table({"npv": "1234567.89", "lp_bound": "1250000", "gap": "0.0123",
+                               "settings_json": json.dumps(old)})  # fmt: skip
+    path = tmp_path / "old.gpkg"
+    outputs.write_plan_geopackage(path, layers)
+    res = CliRunner().invoke(cli, ["map", str(path)])
+    assert res.exit_code == 0, res.output
+    assert "note: setting 'solver.gap'" in res.output and "'solver.stop_gap'" in res.output
+    assert "'adjacency.digitising_tolerance_m'" in res.output
+    assert (tmp_path / "old.report.html").is_file()

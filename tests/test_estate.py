@@ -127,7 +127,7 @@ def test_plan_equals_brute_force_over_prescriptions(tmp_path: Path) -> None:
             "economics": {"price_per_m3": 40.0, "harvest_cost_per_m3": 10.0,
                           "regeneration_cost_per_ha": 500.0, "discount_rate": 0.06,
                           "ending_value": "faustmann"},
-            "solver": {"time_limit_s": 60.0, "workers": 1, "seed": 3, "gap": 0.0},
+            "solver": {"time_limit_s": 60.0, "workers": 1, "seed": 3, "stop_gap": 0.0},
             "output": {"no_map": True},
         }
     )  # fmt: skip
@@ -181,7 +181,7 @@ def estate_settings(periods: int, length: float, delay: float = 0.0):
                           "discount_rate": RATE, "ending_value": "faustmann"},
             "regeneration": {"delay_yr": delay},
             "growth": {"chapman_richards": {"S1": CR}},
-            "solver": {"time_limit_s": 60.0, "workers": 1, "seed": 1, "gap": 0.0},
+            "solver": {"time_limit_s": 60.0, "workers": 1, "seed": 1, "stop_gap": 0.0},
             "output": {"no_map": True},
         }
     )  # fmt: skip
@@ -269,7 +269,7 @@ def test_one_harvest_and_no_ending_value_is_the_single_harvest_model(tmp_path: P
     synthetic_yield_table().to_csv(yields, index=False)
     out = tmp_path / "plan.gpkg"
     args = ["--price", "40", "--periods", "4", "--min-age", "30", "--max-opening", "25",
-            "--time-limit", "60", "--workers", "1", "--seed", "5", "--gap", "0"]  # fmt: skip
+            "--time-limit", "60", "--workers", "1", "--seed", "5", "--stop-gap", "0"]  # fmt: skip
     res = CliRunner().invoke(
         cli,
         ["plan", str(stands), "--yields", str(yields), "--out", str(out), "--no-map", *args,
@@ -287,7 +287,7 @@ def test_one_harvest_and_no_ending_value_is_the_single_harvest_model(tmp_path: P
             "horizon": {"periods": 4},
             "rules": {"min_age_yr": 30.0, "max_opening_ha": 25.0},
             "economics": {"price_per_m3": 40.0},
-            "solver": {"time_limit_s": 60.0, "workers": 1, "seed": 5, "gap": 0.0},
+            "solver": {"time_limit_s": 60.0, "workers": 1, "seed": 5, "stop_gap": 0.0},
         }
     )
     inputs = pipeline.load_inputs(stands, yields, s)

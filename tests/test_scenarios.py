@@ -24,11 +24,11 @@ from spatialplan.settings import Settings, apply_overrides, load_settings
 from spatialplan.synthetic import synthetic_yield_table, voronoi_forest
 
 # Small instances that CP-SAT proves optimal in seconds: 30 stands, 3 periods, one
-# search worker and a fixed seed (solver.gap = 0: "optimal" means proven).
+# search worker and a fixed seed (solver.stop_gap = 0: "optimal" means proven).
 BASE = {
     "solver.workers": 1,
     "solver.seed": 0,
-    "solver.gap": 0.0,
+    "solver.stop_gap": 0.0,
     "solver.time_limit_s": 30,
     "horizon.periods": 3,
     "economics.price_per_m3": 50.0,

@@ -26,7 +26,7 @@ from spatialplan.schedule import diagnose, lp_bound, solve
 from spatialplan.settings import SolverSettings
 from spatialplan.synthetic import voronoi_forest
 
-EXACT = SolverSettings(time_limit_s=30.0, workers=2, seed=1, gap=0.0)
+EXACT = SolverSettings(time_limit_s=30.0, workers=2, seed=1, stop_gap=0.0)
 
 
 # ---- small instances -------------------------------------------------------------------
@@ -408,7 +408,7 @@ def test_ctrl_c_returns_best_plan_marked_interrupted() -> None:
         flow=FlowRules(flow_tolerance=0.1),
     )
     # SIGINT is sent once the solve reports its first plan (so the solve is under way and
-    # holds a plan), not after a fixed sleep. gap=0 and 60 s keep the solve from ending by
+    # holds a plan), not after a fixed sleep. stop_gap=0 and 60 s keep the solve from ending by
     # itself first, so the outcome must be exactly "interrupted" with a plan at least as
     # good as the one reported.
     seen: list[float] = []
@@ -421,7 +421,7 @@ def test_ctrl_c_returns_best_plan_marked_interrupted() -> None:
     before = signal.getsignal(signal.SIGINT)
     res = solve(
         pr,
-        SolverSettings(time_limit_s=60.0, workers=2, gap=0.0),
+        SolverSettings(time_limit_s=60.0, workers=2, stop_gap=0.0),
         on_progress=interrupt_on_first_plan,
     )
     assert signal.getsignal(signal.SIGINT) is before  # handler restored

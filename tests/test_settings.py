@@ -2,12 +2,21 @@
 
 from __future__ import annotations
 
+import warnings
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from spatialplan.errors import SettingsError
-from spatialplan.settings import Settings, load_settings, settings_from_dict
+from spatialplan.settings import (
+    Settings,
+    SettingsNote,
+    apply_overrides,
+    flatten_overrides,
+    load_settings,
+    settings_from_dict,
+)
 
 
 def _toml(tmp_path: Path, text: str) -> Path:
@@ -267,3 +276,177 @@ def test_new_flags_map_to_settings() -> None:
     assert s.rules.max_harvests == 1 and s.economics.ending_value == "none"
     with pytest.raises(SettingsError, match=r"'rules.max_harvests' = 0.*given as --max-harvests"):
         settings_from_flags(None, {"max_harvests": 0})
+
+
+# ---- renamed keys: read under the new name wherever the old one appears ----------------
+def test_renamed_keys_in_a_settings_file_are_read_with_a_note(tmp_path: Path) -> None:
+    p = _toml(tmp_path, "[solver]\ngap = 0.02\n[adjacency]\ngap_tolerance_m = 2.0\n")
+    with pytest.warns(SettingsNote) as notes:
+        s = load_settings(p)
+    assert s.solver.stop_gap == 0.02 and s.adjacency.digitising_tolerance_m == 2.0
+    text = [str(n.message) for n in notes]
+    # Each note names the old key, where it stands and the new key with the value read.
+    assert any(
+        "'solver.gap'" in t and "line 2" in t and "solver.stop_gap = 0.02" in t for t in text
+    )
+    assert any("'adjacency.gap_tolerance_m'" in t and "line 4" in t for t in text)
+    # The settings record only the new names.
+    flat = flatten_overrides(s.to_dict())
+    assert "solver.stop_gap" in flat and "solver.gap" not in flat
+    assert "adjacency.gap_tolerance_m" not in flat
+
+
+def test_new_keys_load_without_a_note(tmp_path: Path) -> None:
+    p = _toml(tmp_path, "[solver]\nstop_gap = 0.02\n[adjacency]\ndigitising_tolerance_m = 2.0\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", SettingsNote)  # a note would fail the test
+        s = load_settings(p, {"solver.stop_gap": 0.03})
+        again = settings_from_dict(s.to_dict())
+    assert s.solver.stop_gap == 0.03 and s.adjacency.digitising_tolerance_m == 2.0
+    assert again == s
+
+
+def test_renamed_key_errors_name_the_new_key_and_the_old_line(tmp_path: Path) -> None:
+    p = _toml(tmp_path, "[rules]\nmin_age_yr = 40\n[solver]\ngap = 5\n")
+    with (
+        pytest.warns(SettingsNote),
+        pytest.raises(SettingsError, match=r"'solver.stop_gap' = 5.0 is out of range .*line 4"),
+    ):
+        load_settings(p)
+    p = _toml(tmp_path, "[solver]\ngap = 0.1\nstop_gap = 0.2\n")
+    with pytest.raises(SettingsError, match=r"'solver.gap' .* old name of 'solver.stop_gap'"):
+        load_settings(p)
+    with pytest.raises(SettingsError, match="keep only 'adjacency.digitising_tolerance_m'"):
+        Settings().with_overrides(
+            {"adjacency.gap_tolerance_m": 1.0, "adjacency.digitising_tolerance_m": 2.0}
+        )
+
+
+def test_renamed_keys_as_overrides_and_in_scenario_tables() -> None:
+    with pytest.warns(SettingsNote, match="'solver.gap' is now called 'solver.stop_gap'"):
+        s = Settings().with_overrides({"solver.gap": 0.0})
+    assert s.solver.stop_gap == 0.0
+    # A scenario file's nested or quoted dotted keys come out under the new names, so the
+    # comparison table's columns carry them too.
+    with pytest.warns(SettingsNote):
+        flat = flatten_overrides({"adjacency": {"gap_tolerance_m": 3.0}, "solver.gap": 0.01})
+    assert flat == {"adjacency.digitising_tolerance_m": 3.0, "solver.stop_gap": 0.01}
+    with pytest.warns(SettingsNote):
+        s = apply_overrides(Settings(), {"adjacency.gap_tolerance_m": 3.0})
+    assert s.adjacency.digitising_tolerance_m == 3.0
+
+
+def test_scenario_file_with_old_keys(tmp_path: Path) -> None:
+    from spatialplan.scenarios import load_scenarios
+    from spatialplan.synthetic import synthetic_yield_table, voronoi_forest
+
+    voronoi_forest(6, seed=1).to_file(tmp_path / "stands.gpkg", layer="stands", driver="GPKG")
+    synthetic_yield_table().to_csv(tmp_path / "yields.csv", index=False)
+    p = tmp_path / "scen.toml"
+    p.write_text(
+        '[inputs]\nstands = "stands.gpkg"\nyields = "yields.csv"\n'
+        '[base]\n"solver.gap" = 0.0\n'
+        "[[sweep]]\nvary = { adjacency = { gap_tolerance_m = [0.5, 2.0] } }\n",
+        encoding="utf-8",
+    )
+    with pytest.warns(SettingsNote) as notes:
+        scen = load_scenarios(p)
+    text = " ".join(str(n.message) for n in notes)
+    assert "now called 'solver.stop_gap'" in text
+    assert "now called 'adjacency.digitising_tolerance_m'" in text
+    tol = [s.settings.adjacency.digitising_tolerance_m for s in scen.scenarios]
+    assert tol == [0.5, 2.0]
+    assert all(s.settings.solver.stop_gap == 0.0 for s in scen.scenarios)
+    assert all(set(s.varied) == {"adjacency.digitising_tolerance_m"} for s in scen.scenarios)
+
+
+def test_settings_recorded_with_old_keys_still_load() -> None:
+    # A plan written before the renames records solver.gap and adjacency.gap_tolerance_m in
+    # its run table; verify and map read them as the new keys.
+    old = Settings().to_dict()
+    old["solver"]["gap"] = old["solver"].pop("stop_gap")
+    old["adjacency"]["gap_tolerance_m"] = 1.5
+    del old["adjacency"]["digitising_tolerance_m"]
+    with pytest.warns(SettingsNote) as notes:
+        s = settings_from_dict(old, path="old.gpkg:run.settings_json")
+    text = [str(n.message) for n in notes]
+    assert any("read as adjacency.digitising_tolerance_m = 1.5" in t for t in text)
+    assert any("'solver.gap' (in old.gpkg:run.settings_json)" in t for t in text)
+    assert s.adjacency.digitising_tolerance_m == 1.5
+    assert s.solver.stop_gap == Settings().solver.stop_gap
+
+
+# ---- a single price given as a flag or override replaces the price schedule ------------
+SCHEDULE_TOML = (
+    "[[economics.price_schedule]]\nproduct = 'pulp'\nmin_diameter_cm = 0\nprice_per_m3 = 18\n"
+    "[[economics.price_schedule]]\nproduct = 'saw'\nmin_diameter_cm = 25\nprice_per_m3 = 70\n"
+)
+
+
+def test_price_override_replaces_the_schedule(tmp_path: Path) -> None:
+    from spatialplan.economics import stumpage_price
+
+    p = _toml(tmp_path, SCHEDULE_TOML)
+    d = np.array([5.0, 24.9, 25.0, 60.0])
+    # The file alone prices by diameter class (docs/methods.md: the class with the
+    # highest threshold not above the diameter).
+    assert stumpage_price(d, load_settings(p).economics).tolist() == [18.0, 18.0, 70.0, 70.0]
+    with pytest.warns(SettingsNote, match=r"price_per_m3 = 50 replaces the price schedule"):
+        s = load_settings(p, {"economics.price_per_m3": 50.0})
+    assert s.economics.price_schedule == ()
+    assert stumpage_price(d, s.economics).tolist() == [50.0] * 4
+
+
+def test_price_in_the_file_stays_the_fallback_of_its_schedule(tmp_path: Path) -> None:
+    p = _toml(tmp_path, "[economics]\nprice_per_m3 = 30\n" + SCHEDULE_TOML)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", SettingsNote)
+        s = load_settings(p)
+        both = Settings().with_overrides(
+            {
+                "economics.price_per_m3": 30.0,
+                "economics.price_schedule": s.to_dict()["economics"]["price_schedule"],
+            }
+        )
+    assert len(s.economics.price_schedule) == 2 and s.economics.price_per_m3 == 30.0
+    assert both.economics == s.economics
+
+
+def test_price_flag_replaces_the_schedule_end_to_end(tmp_path: Path) -> None:
+    # `rotation --price 50` with a settings file holding a schedule gives the same table
+    # as --price 50 without any schedule, and says so.
+    from click.testing import CliRunner
+
+    from spatialplan.cli import cli
+    from spatialplan.synthetic import synthetic_yield_table
+
+    yields = tmp_path / "y.csv"
+    synthetic_yield_table().to_csv(yields, index=False)
+    with_schedule = _toml(tmp_path, SCHEDULE_TOML)
+    base = ["rotation", "--yields", str(yields), "--price", "50", "--no-charts"]
+    a = CliRunner().invoke(
+        cli, [*base, "--settings", str(with_schedule), "--out", str(tmp_path / "a.csv")]
+    )
+    b = CliRunner().invoke(cli, [*base, "--out", str(tmp_path / "b.csv")])
+    assert a.exit_code == 0 and b.exit_code == 0, a.output + b.output
+    assert "note: economics.price_per_m3 = 50 replaces the price schedule" in a.output
+    assert "price schedule" not in b.output
+    assert (tmp_path / "a.csv").read_text() == (tmp_path / "b.csv").read_text()
+
+
+# ---- renamed flags ---------------------------------------------------------------------
+def test_renamed_flags_still_work_with_a_note_and_are_hidden() -> None:
+    import click
+    from click.testing import CliRunner
+
+    from spatialplan.cli import cli
+    from spatialplan.cli._common import settings_from_flags
+
+    s = settings_from_flags(None, {"gap": 0.0, "gap_tolerance": 2.0})
+    assert s.solver.stop_gap == 0.0 and s.adjacency.digitising_tolerance_m == 2.0
+    with pytest.raises(click.UsageError, match="--gap is the old name of --stop-gap"):
+        settings_from_flags(None, {"gap": 0.0, "stop_gap": 0.1})
+    helptext = " ".join(CliRunner().invoke(cli, ["plan", "--help"]).output.split())
+    assert "--stop-gap" in helptext and "--digitising-tolerance" in helptext
+    assert "--gap " not in helptext and "--gap-tolerance" not in helptext
+    assert "replaces a price schedule" in helptext  # what --price does to a schedule

@@ -324,7 +324,7 @@ def test_dropped_edge_makes_the_planner_cut_an_oversize_opening(tmp_path: Path) 
             "horizon": {"periods": 3, "period_length_yr": 10.0},
             "rules": {"max_opening_ha": 10.0, "green_up_periods": 1, "flow_tolerance": None},
             "economics": {"discount_rate": 0.05, "price_per_m3": 50.0},
-            "solver": {"time_limit_s": 20.0, "workers": 2, "gap": 0.0},
+            "solver": {"time_limit_s": 20.0, "workers": 2, "stop_gap": 0.0},
             "output": {"no_map": True},
         }
     )

@@ -48,6 +48,17 @@ class _LazyGroup(click.Group):
             return super().invoke(ctx)
 
 
+#: Log level -> the console's message prefix (higher levels print as ``error:``).
+_LOG_PREFIX = {"DEBUG": "debug:", "INFO": "note:", "WARNING": "warning:"}
+
+
+class _Prefixed(logging.Formatter):
+    """Log records with the console's message prefixes (``note:``, ``warning:`` ...)."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        return f"{_LOG_PREFIX.get(record.levelname, 'error:')} {super().format(record)}"
+
+
 @click.group(cls=_LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="spatialplan")
 @click.option("-v", "--verbose", count=True, help="More messages (repeat for debug logging).")
@@ -57,7 +68,9 @@ class _LazyGroup(click.Group):
 def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
     """Plan spatially feasible clear-cut harvests that maximise net present value."""
     level = logging.WARNING if quiet else (logging.DEBUG if verbose > 1 else logging.INFO)
-    logging.basicConfig(level=level, format="%(levelname)s: %(message)s", force=True)
+    logging.basicConfig(level=level, force=True)
+    for handler in logging.getLogger().handlers:
+        handler.setFormatter(_Prefixed())
     for noisy in ("pyogrio", "fiona", "rasterio", "matplotlib", "distributed", "PIL", "numexpr"):
         logging.getLogger(noisy).setLevel(max(level, logging.WARNING))
     ctx.obj = {"debug": debug, "quiet": quiet, "verbose": verbose}

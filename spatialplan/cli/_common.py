@@ -5,23 +5,29 @@ from __future__ import annotations
 import contextlib
 import functools
 import logging
+import re
 import sys
+import warnings
 from collections.abc import Callable, Iterator
 from typing import Any
 
 import click
 
 from spatialplan.errors import InfeasibleError, SettingsError, SpatialPlanError
-from spatialplan.settings import ENDING_VALUES, Settings, load_settings
+from spatialplan.settings import ENDING_VALUES, Settings, SettingsNote, load_settings
 
 __all__ = [
+    "RENAMED_FLAGS",
     "SETTINGS_FLAGS",
+    "SEVERITY_PREFIX",
     "console",
     "flag_overrides",
     "handle_errors",
+    "prefixed",
     "run_cli",
     "settings_from_flags",
     "settings_options",
+    "split_severity",
 ]
 
 log = logging.getLogger("spatialplan")
@@ -75,17 +81,22 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
         "Allowed change of volume between periods (fraction).",
     ),
     "discount-rate": ("economics.discount_rate", float, "Annual discount rate (fraction)."),
-    "price": ("economics.price_per_m3", float, "Single stumpage price per m3."),
+    "price": (
+        "economics.price_per_m3",
+        float,
+        "Single stumpage price per m3 for every diameter; replaces a price schedule of the "
+        "settings file (with a note).",
+    ),
     "ending-value": (
         "economics.ending_value",
         click.Choice(ENDING_VALUES),
         "Value of the forest left at the end: Faustmann (standing trees and land), "
         "standing (trees only) or none.",
     ),
-    "gap-tolerance": (
-        "adjacency.gap_tolerance_m",
+    "digitising-tolerance": (
+        "adjacency.digitising_tolerance_m",
         float,
-        "Stands closer than this (m) count as touching.",
+        "Largest digitising gap (m) between two stand polygons bridged as shared boundary.",
     ),
     "min-shared-edge": (
         "adjacency.min_shared_edge_m",
@@ -95,11 +106,19 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     "time-limit": ("solver.time_limit_s", float, "Solver time limit in seconds."),
     "workers": ("solver.workers", int, "CP-SAT search workers."),
     "seed": ("solver.seed", int, "Random seed of the solver."),
-    "gap": ("solver.gap", float, "Stop when the relative gap to the bound is below this."),
+    "stop-gap": (
+        "solver.stop_gap",
+        float,
+        "Stop solving when the relative gap to the best proven bound is below this (fraction).",
+    ),
     "dem": ("terrain.dem", str, "Digital elevation model (GeoTIFF) for slope and operability."),
     "streams": ("terrain.streams", str, "Stream line layer; a buffer along it is netted out."),
     "stream-buffer": ("terrain.stream_buffer_m", float, "Stream buffer width in metres."),
 }
+
+#: Flags of earlier versions -> their new names. They still work (hidden from --help) and
+#: print a note naming the new flag, like the old keys in a settings file.
+RENAMED_FLAGS: dict[str, str] = {"gap": "stop-gap", "gap-tolerance": "digitising-tolerance"}
 
 _BOOL_FLAGS: dict[str, tuple[str, str]] = {
     "skip-unmatched": ("fields.skip_unmatched", "Exclude stands whose yield keys have no table."),
@@ -119,10 +138,17 @@ _BOOL_FLAGS: dict[str, tuple[str, str]] = {
 
 
 def settings_options(names: list[str]) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
-    """Decorator adding ``--settings`` and the named settings flags to a command."""
+    """Decorator adding ``--settings`` and the named settings flags to a command.
+
+    A renamed flag (:data:`RENAMED_FLAGS`) is added, hidden, beside its new name.
+    """
 
     def deco(f: Callable[..., Any]) -> Callable[..., Any]:
         for name in reversed(names):
+            for old, new in RENAMED_FLAGS.items():
+                if new == name:
+                    key, tp, _h = SETTINGS_FLAGS[name]
+                    f = click.option(f"--{old}", type=tp, default=None, hidden=True)(f)
             if name in SETTINGS_FLAGS:
                 key, tp, hlp = SETTINGS_FLAGS[name]
                 f = click.option(f"--{name}", type=tp, default=None, help=f"{hlp} [{key}]")(f)
@@ -146,7 +172,18 @@ def flag_overrides(kwargs: dict[str, Any]) -> dict[str, Any]:
     """Dotted settings keys for the settings flags in ``kwargs`` (consumed from it).
 
     Flags that were not given map to ``None``, which ``Settings.with_overrides`` skips.
+    A renamed flag that was given counts as its new name, with a note.
     """
+    for old, new in RENAMED_FLAGS.items():
+        old_py, new_py = old.replace("-", "_"), new.replace("-", "_")
+        value = kwargs.pop(old_py, None)
+        if value is None:
+            continue
+        if kwargs.get(new_py) is not None:
+            msg = f"--{old} is the old name of --{new}; give only --{new}"
+            raise click.UsageError(msg)
+        kwargs[new_py] = value
+        click.echo(prefixed("note", f"flag --{old} is now called --{new}"), err=True)
     overrides: dict[str, Any] = {}
     for name, (key, _tp, _h) in SETTINGS_FLAGS.items():
         py = name.replace("-", "_")
@@ -197,16 +234,87 @@ def console() -> _Console:
     return _Console()
 
 
+#: Message prefixes, one per severity, used by every command (console and report).
+SEVERITY_PREFIX = {"error": "error:", "warning": "warning:", "info": "note:", "note": "note:"}
+
+
+def prefixed(severity: str, text: str) -> str:
+    """``text`` behind the prefix of ``severity`` (``info`` is printed as ``note:``).
+
+    Examples
+    --------
+    >>> prefixed("info", "3 stands have no neighbours")
+    'note: 3 stands have no neighbours'
+    """
+    return f"{SEVERITY_PREFIX.get(severity, severity + ':')} {text}"
+
+
+_OWN_PREFIX = re.compile(r"^\s*(warning|note)\b[\s:-]*", re.IGNORECASE)
+
+
+def split_severity(message: str) -> tuple[str, str]:
+    """``("warning", text)`` for a message that starts with its own ``warning``, else
+    ``("note", text)``; ``text`` is the message without that word (the console adds it).
+
+    Examples
+    --------
+    >>> split_severity("Warning: 2 adjacent stand pairs lie in different units")
+    ('warning', '2 adjacent stand pairs lie in different units')
+    >>> split_severity("3 stand(s) reserved")
+    ('note', '3 stand(s) reserved')
+    """
+    m = _OWN_PREFIX.match(str(message))
+    word = "warning" if m is not None and m.group(1).lower() == "warning" else "note"
+    return word, _OWN_PREFIX.sub("", str(message), count=1).strip()
+
+
+@contextlib.contextmanager
+def _settings_notes() -> Iterator[None]:
+    """Print each :class:`~spatialplan.settings.SettingsNote` once, as ``note: ...``."""
+    shown: set[str] = set()
+    with warnings.catch_warnings():
+        original = warnings.showwarning
+
+        def show(message: Any, category: Any, *args: Any, **kwargs: Any) -> None:
+            if isinstance(category, type) and issubclass(category, SettingsNote):
+                text = str(message)
+                if text not in shown:
+                    shown.add(text)
+                    click.echo(prefixed("note", text), err=True)
+                return
+            original(message, category, *args, **kwargs)
+
+        warnings.simplefilter("always", SettingsNote)
+        warnings.showwarning = show
+        yield
+
+
+def _show_usage_error(exc: click.UsageError) -> None:
+    """Click's usage message with the project's ``error:`` prefix."""
+    c = exc.ctx
+    if c is not None:
+        hint = ""
+        if c.command.get_help_option(c) is not None:
+            hint = f"Try '{c.command_path} {c.help_option_names[0]}' for help.\n"
+        click.echo(f"{c.get_usage()}\n{hint}", err=True, color=c.color)
+    click.echo(f"error: {exc.format_message()}", err=True)
+
+
 @contextlib.contextmanager
 def handle_errors(ctx: click.Context) -> Iterator[None]:
-    """Turn errors into one clear message and an exit code (tracebacks only with --debug)."""
+    """Turn errors into one clear message and an exit code (tracebacks only with --debug).
+
+    Messages start with ``error:`` (and notes about the settings with ``note:``), as every
+    message of every command does.
+    """
     debug = bool((ctx.obj or {}).get("debug")) or "--debug" in sys.argv[1:]
     try:
-        yield
+        with _settings_notes():
+            yield
     except SpatialPlanError as exc:
         if debug:
             raise
-        click.echo(f"Error: {exc}", err=True)
+        click.echo(f"error: {exc}", err=True)
         if isinstance(exc, InfeasibleError):
             for line in exc.diagnosis:
                 click.echo(f"  diagnosis: {line}", err=True)
@@ -217,29 +325,29 @@ def handle_errors(ctx: click.Context) -> Iterator[None]:
                     err=True,
                 )
         if exc.exit_code in (2, 3):
-            click.echo("No plan was written.", err=True)
+            click.echo("  no plan was written", err=True)
         ctx.exit(exc.exit_code)
     except KeyboardInterrupt:
-        click.echo("Interrupted; nothing further written.", err=True)
+        click.echo("warning: interrupted (Ctrl-C); nothing further written", err=True)
         ctx.exit(130)
     except click.UsageError as exc:
         # Bad flags are bad input (exit 1); exit 2 is kept for "the rules admit no plan".
-        exc.exit_code = 1  # type: ignore[misc]  # click keeps it per class; this instance only
-        raise
+        _show_usage_error(exc)
+        ctx.exit(1)
     except (click.exceptions.Exit, click.ClickException, click.Abort, SystemExit):
         raise
     except OSError as exc:  # disk full, permission denied ...: the system's word, not a bug
         if debug:
             raise
         where = f" {exc.filename}" if exc.filename else ""
-        click.echo(f"Error: cannot read or write{where}: {exc.strerror or exc}", err=True)
+        click.echo(f"error: cannot read or write{where}: {exc.strerror or exc}", err=True)
         ctx.exit(1)
     except Exception as exc:  # a bug, not a user mistake: say so plainly
         if debug:
             raise
         click.echo(
-            f"Internal error: {type(exc).__name__}: {exc}\n"
-            "This is a bug in spatialplan; run again with --debug for the traceback.",
+            f"error: internal error: {type(exc).__name__}: {exc}\n"
+            "  this is a bug in spatialplan; run again with --debug for the traceback",
             err=True,
         )
         ctx.exit(70)

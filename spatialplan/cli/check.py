@@ -6,7 +6,7 @@ from typing import Any
 
 import click
 
-from spatialplan.cli._common import console, settings_from_flags, settings_options
+from spatialplan.cli._common import console, prefixed, settings_from_flags, settings_options
 
 CHECK_FLAGS = [
     "layer",
@@ -38,7 +38,8 @@ CHECK_FLAGS = [
 def command(stands: str, yields_path: str | None, settings_path: str | None, **kwargs: Any) -> None:
     """Validate a stand layer (and yield table, DEM, streams) and summarise it.
 
-    Exits 0 when the inputs are usable for planning, 1 otherwise.
+    Lists every problem (error:, warning:, note:) and ends with "passed: ..." when the
+    inputs are usable for planning (exit 0) or "failed: ..." (exit 1).
     """
     from rich.markup import escape
     from rich.table import Table
@@ -65,7 +66,8 @@ def command(stands: str, yields_path: str | None, settings_path: str | None, **k
     summary.add_row("CRS (input / working)", f"{sm.source_crs} / {sm.working_crs}")
     out.print(summary)
     if sm.n_stands:
-        t = Table(title="Area by age class")
+        width = settings.output.age_class_width_yr
+        t = Table(title=f"Area by age class ({width:g}-year classes)")
         t.add_column("age class (yr)")
         t.add_column("area (ha)", justify="right")
         for r in sm.age_classes.itertuples(index=False):
@@ -97,12 +99,13 @@ def command(stands: str, yields_path: str | None, settings_path: str | None, **k
         out.print(f"Stream buffers remove {sm.stream_buffer_ha:,.1f} ha; net area {net:,.1f} ha")
     for p in sm.problems:
         style = {"error": "bold red", "warning": "yellow", "info": "dim"}[p.severity]
-        out.print(f"[{style}]{p.severity.upper()}[/{style}] {escape(p.text())}")
+        out.print(f"[{style}]{escape(prefixed(p.severity, p.text()))}[/{style}]")
     for m in sm.messages:
-        out.print(f"NOTE {escape(m)}")
+        out.print(prefixed("note", m), markup=False)
     if not sm.usable:
         out.print(
-            f"[bold red]Not usable: {len(sm.errors)} problem(s) must be fixed first.[/bold red]"
+            f"[bold red]failed: {len(sm.errors)} problem(s) must be fixed before planning"
+            "[/bold red]"
         )
         raise SystemExit(1)
-    out.print("[green]Inputs are usable for planning.[/green]")
+    out.print("[green]passed: the inputs are usable for planning[/green]")

@@ -3,14 +3,13 @@
 from __future__ import annotations
 
 import math
-import re
 import time
 from collections.abc import Iterable
 from typing import Any
 
 import click
 
-from spatialplan.cli._common import console
+from spatialplan.cli._common import console, split_severity
 
 __all__ = ["command"]
 
@@ -194,8 +193,9 @@ def _run(
             if not r.verify_ok:
                 progress.console.print(f"[red]violation:[/red] {name}: {escape(r.verify_verdict)}")
             for m in r.messages:
-                if _is_warning(m):
-                    progress.console.print(f"[yellow]warning:[/yellow] {name}: {escape(_bare(m))}")
+                word, text = split_severity(m)
+                if word == "warning":
+                    progress.console.print(f"[yellow]warning:[/yellow] {name}: {escape(text)}")
         else:
             progress.console.print(
                 f"[red]failed:[/red] {name}: {escape(r.status)}: {escape(r.error or '')}"
@@ -203,8 +203,8 @@ def _run(
             for d in r.diagnosis:
                 progress.console.print(f"    diagnosis: {escape(str(d))}")
             for m in r.messages:
-                word = "warning" if _is_warning(m) else "note"
-                progress.console.print(f"{word}: {name}: {escape(_bare(m))}")
+                word, text = split_severity(m)
+                progress.console.print(f"{word}: {name}: {escape(text)}")
         if state["task"] is not None:
             progress.advance(state["task"])
 
@@ -220,19 +220,6 @@ def _run(
             on_submit=on_submit,
             on_result=on_result,
         )
-
-
-_PREFIX = re.compile(r"^\s*(warning|note)\b[\s:-]*", re.IGNORECASE)
-
-
-def _is_warning(message: str) -> bool:
-    m = _PREFIX.match(str(message))
-    return m is not None and m.group(1).lower() == "warning"
-
-
-def _bare(message: str) -> str:
-    """A message without its own ``warning``/``note`` prefix (the console adds one)."""
-    return _PREFIX.sub("", str(message), count=1).strip()
 
 
 def _gap_text(gap: float) -> str:

@@ -2,12 +2,19 @@
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 from typing import Any
 
 import click
 
-from spatialplan.cli._common import console, settings_from_flags, settings_options
+from spatialplan.cli._common import (
+    console,
+    prefixed,
+    settings_from_flags,
+    settings_options,
+    split_severity,
+)
 
 PLAN_FLAGS = [
     "layer",
@@ -31,13 +38,13 @@ PLAN_FLAGS = [
     "discount-rate",
     "price",
     "ending-value",
-    "gap-tolerance",
+    "digitising-tolerance",
     "min-shared-edge",
     "corner-adjacency",
     "time-limit",
     "workers",
     "seed",
-    "gap",
+    "stop-gap",
     "dem",
     "streams",
     "stream-buffer",
@@ -144,8 +151,6 @@ def run_and_report(
 ) -> int:
     """Run the plan pipeline with a live progress display; print the summary."""
     from rich.live import Live
-    from rich.markup import escape
-    from rich.table import Table
 
     from spatialplan.output_paths import check_plan_outputs, plan_input_paths
     from spatialplan.pipeline import load_inputs, run_plan
@@ -154,7 +159,7 @@ def run_and_report(
     check_plan_outputs(out, plan_input_paths(stands, yields_path, settings), settings, overwrite)
     inputs = load_inputs(stands, yields_path, settings)
     for p in inputs.inventory.warnings:
-        con.err.print(f"{p.severity}: {escape(p.text())}")
+        con.err.print(prefixed(p.severity, p.text()), markup=False)
 
     state: dict[str, Any] = {"stage": "reading", "p": None}
 
@@ -167,7 +172,7 @@ def run_and_report(
         gap = "-" if p.gap is None else f"{100 * p.gap:.2f} %"
         return (
             f"[bold]{state['stage']}[/bold]  elapsed {p.elapsed_s:6.1f} s  best NPV {best}  "
-            f"bound {bound}  gap {gap}"
+            f"best proven bound {bound}  gap {gap}"
         )
 
     live = Live(render(), console=con.err, refresh_per_second=4, transient=True)
@@ -190,50 +195,115 @@ def run_and_report(
             outcome = run_plan(inputs, out, on_progress=on_progress, on_stage=on_stage)
     r = outcome.result
     for m in outcome.messages:
-        con.err.print(f"note: {escape(m)}")
-    t = Table(title=f"Plan written to {out}")
-    t.add_column("item")
-    t.add_column("value", justify="right")
-    t.add_row(
-        "solver status",
-        r.status + (" (best plan so far)" if r.status in ("interrupted", "time_limit") else ""),
-    )
-    t.add_row("NPV", f"{r.npv:,.0f}")
-    t.add_row("LP upper bound (no spatial rules)", f"{r.lp_bound:,.0f}")
-    if r.cpsat_bound is not None:
-        t.add_row("CP-SAT bound", f"{r.cpsat_bound:,.0f}")
-    t.add_row("gap to best bound", f"{100 * r.gap:.2f} %")
-    t.add_row("stands harvested", f"{int((outcome.schedule['period'].fillna(0) > 0).sum())}")
-    t.add_row("solve time", f"{r.solve_time_s:.1f} s")
-    t.add_row("verify", outcome.verify.verdict)
-    con.out.print(t)
-    pt = Table(title="Harvest by period")
-    for c in ("period", "net area (ha)", "volume (m3)", "NPV", "largest opening (ha)"):
-        pt.add_column(c, justify="right")
-    pdf = outcome.periods
-    for _, row in pdf.iterrows():
-        pt.add_row(
-            f"{int(row['period'])}",
-            f"{row['harvest_net_area_ha']:,.1f}",
-            f"{row['harvest_volume_m3']:,.0f}",
-            f"{row['npv']:,.0f}",
-            f"{row['largest_opening_ha']:,.1f}",
-        )
-    con.out.print(pt)
+        con.err.print(prefixed(*split_severity(m)), markup=False)
+    con.out.print(_summary_table(r, outcome, out))
+    con.out.print(_harvest_table(outcome.periods, settings))
     for f in outcome.extra_files:
         con.out.print(f"wrote {f}", markup=False)
+    con.out.print(outcome.verify.verdict, markup=False)
     if not outcome.verify.ok:
         for v in outcome.verify.violations[:50]:
-            con.err.print(f"violation: {escape(str(v.message))}")
+            con.err.print(prefixed("violation", v.line()), markup=False)
         con.err.print(
-            "[bold red]The plan failed independent verification; do not use it.[/bold red]"
+            "[bold red]error: the plan failed independent verification; do not use it[/bold red]"
         )
         return 1
     if r.status == "interrupted":
         con.err.print(
-            f"Interrupted: {out} holds the best plan found before Ctrl-C "
-            "(solver_status = interrupted in its run table); run again to finish.",
+            f"warning: interrupted: {out} holds the best plan found before Ctrl-C "
+            "(solver_status = interrupted in its run table); run again to finish",
             markup=False,
         )
         return 130  # 128 + SIGINT, the shell convention for a run stopped by Ctrl-C
     return 0
+
+
+def _cell_width(cells: list[str]) -> int:
+    return max((len(c) for c in cells), default=1)
+
+
+def _summary_table(result: Any, outcome: Any, out: Path) -> Any:
+    """The plan's key numbers: status, NPV, every proven upper bound, the gap.
+
+    The best proven upper bound is the smallest bound, never below the NPV (see
+    :func:`spatialplan.schedule.best_bound`); each bound is listed with its method in the
+    ``detail`` column.
+    """
+    from rich.table import Table
+
+    from spatialplan.schedule import best_bound, best_bound_method, proven_bounds
+
+    r = result
+    so_far = "best plan so far" if r.status in ("interrupted", "time_limit") else ""
+    rows: list[tuple[str, str, str]] = [
+        ("solver status", r.status, so_far),
+        ("NPV", f"{r.npv:,.0f}", ""),
+    ]
+    bounds = proven_bounds(r)
+    for method, bound in bounds.items():
+        rows.append(("upper bound", f"{bound:,.0f}", method))
+    best = best_bound(r)
+    if bounds and math.isfinite(best):
+        rows.append(("best proven upper bound", f"{best:,.0f}", best_bound_method(r)))
+        rows.append(("gap to the best proven bound", f"{100 * r.gap:.2f} %", ""))
+    else:
+        rows.append(("best proven upper bound", "none", ""))
+    harvested = int((outcome.schedule["period"].fillna(0) > 0).sum())
+    rows.append(("stands harvested", f"{harvested}", ""))
+    rows.append(("solve time", f"{r.solve_time_s:.1f} s", ""))
+    verdict = "passed" if outcome.verify.ok else "failed"
+    rows.append(("independent verification", verdict, "verdict below"))
+    t = Table(title=f"Plan written to {out}", title_justify="left")
+    t.add_column("item")
+    # Values never wrap or get cut: the column is as wide as its longest value.
+    t.add_column(
+        "value", justify="right", no_wrap=True, min_width=_cell_width([v for _, v, _ in rows])
+    )
+    t.add_column("detail")
+    for row in rows:
+        t.add_row(*row)
+    return t
+
+
+def _years(p: int, start_year: int, length_yr: float) -> str:
+    """Calendar years of period ``p``: ``start_year + (p - 1) L`` to ``start_year + p L``.
+
+    Examples
+    --------
+    >>> _years(2, 2025, 5.0), _years(1, 0, 2.5)
+    ('2030-2035', '0-2.5')
+    """
+    return f"{start_year + (p - 1) * length_yr:g}-{start_year + p * length_yr:g}"
+
+
+def _values(pdf: Any, *names: str) -> Any:
+    """The first of ``names`` that ``pdf`` has (a column's current name, then its older one)."""
+    for n in names:
+        if n in pdf.columns:
+            return pdf[n]
+    msg = f"periods table has none of the columns {', '.join(names)}"
+    raise KeyError(msg)
+
+
+def _harvest_table(periods: Any, settings: Any) -> Any:
+    """Harvest by period with calendar years; net harvest area, gross opening sizes."""
+    from rich.table import Table
+
+    h = settings.horizon
+    per = [int(p) for p in periods["period"]]
+    columns = {
+        "period": [f"{p}" for p in per],
+        "years": [_years(p, h.start_year, h.period_length_yr) for p in per],
+        "harvest area (net, ha)": [
+            f"{v:,.1f}" for v in _values(periods, "harvest_net_area_ha", "harvest_area_ha")
+        ],
+        "volume (m3)": [f"{v:,.0f}" for v in periods["harvest_volume_m3"]],
+        "NPV": [f"{v:,.0f}" for v in _values(periods, "npv", "discounted_value")],
+        "largest opening (gross, ha)": [f"{v:,.1f}" for v in periods["largest_opening_ha"]],
+    }
+    t = Table(title="Harvest by period", title_justify="left")
+    for header, cells in columns.items():
+        t.add_column(header, justify="right", no_wrap=False, min_width=_cell_width(cells))
+    for row in zip(*columns.values(), strict=True):
+        t.add_row(*row)
+    return t

@@ -19,7 +19,7 @@ _FLAGS = [
     "green-up",
     "min-age",
     "flow-tolerance",
-    "gap-tolerance",
+    "digitising-tolerance",
     "min-shared-edge",
     "corner-adjacency",
     "unit-restriction",
@@ -51,8 +51,9 @@ def command(
     recorded settings and yield table of OUT.gpkg, measures adjacency and openings from
     the geometry with its own code, recomputes ages, volumes and values, and prints each
     broken rule (rule, period, stand ids, size) and a one-line verdict. The rules are the
-    recorded ones; --settings replaces them and flags override single values. Exits 0
-    when every rule holds and 1 when any is broken.
+    recorded ones; --settings replaces them and flags override single values. The last
+    line is the verdict, "passed: ..." or "failed: ...". Exits 0 when every rule holds and 1
+    when any is broken.
     """
     from spatialplan.settings import load_settings
     from spatialplan.verify import read_harvests, read_plan, verify_schedule

@@ -49,6 +49,7 @@ from spatialplan.scenarios.tasks import (
     run_scenario_task,
 )
 from spatialplan.scenarios.units import solve_unit, units_for
+from spatialplan.schedule import best_bound
 from spatialplan.settings import OFF, Settings, flatten_overrides
 
 __all__ = [
@@ -83,7 +84,7 @@ RELAX_DIRECTION: dict[str, int] = {
     "rules.non_declining": 0,
     "rules.unit_restriction": 0,
     "adjacency.min_shared_edge_m": +1,
-    "adjacency.gap_tolerance_m": -1,
+    "adjacency.digitising_tolerance_m": -1,
     "adjacency.corner_adjacency": 0,
 }
 
@@ -244,34 +245,6 @@ def _relax_score(value: Any, direction: int) -> float:
     if direction == 0:
         return 0.0 if bool(value) else 1.0
     return direction * float(value)
-
-
-def best_bound(result: ScenarioResult) -> float:
-    """The tightest proven upper bound on a scenario's optimal NPV.
-
-    The smaller of the aspatial LP bound and CP-SAT's bound on the full model (both
-    bound the optimum from above), never below the plan's own NPV; the NPV itself when
-    the solver's gap is 0 (the plan is proven optimal). NaN for a scenario without a
-    plan or without any finite bound.
-
-    Examples
-    --------
-    >>> from spatialplan.scenarios import ScenarioResult
-    >>> r = ScenarioResult("a", True, "time_limit", npv=90.0, lp_bound=110.0,
-    ...                    cpsat_bound=100.0, gap=0.1)
-    >>> best_bound(r)
-    100.0
-    """
-    if not result.ok or not math.isfinite(result.npv):
-        return math.nan
-    if result.gap == 0.0:
-        return float(result.npv)
-    bounds = [
-        float(b)
-        for b in (result.lp_bound, result.cpsat_bound)
-        if b is not None and math.isfinite(b)
-    ]
-    return max(float(result.npv), min(bounds)) if bounds else math.nan
 
 
 def rule_costs(scen: ScenarioSet, results: Mapping[str, ScenarioResult]) -> pd.DataFrame:

@@ -3,7 +3,9 @@
 The public face is small: :func:`solve` returns the best plan found within the time
 limit as a :class:`PlanResult`; :func:`lp_bound` solves Model I without spatial rules as an
 LP (HiGHS); :func:`diagnose` names the rule family that makes a problem infeasible and the
-smallest relaxation that works; :func:`gap` is the relative gap of an NPV to a bound.
+smallest relaxation that works; :func:`gap` is the relative gap of an NPV to a bound;
+:func:`best_bound` and :func:`best_bound_method` give the tightest proven upper bound of a
+result and the method that proved it.
 The modules inside are the parts of one job:
 
 * ``model`` - rule rows, openness, the float64 plan check, over-size covers;
@@ -12,10 +14,29 @@ The modules inside are the parts of one job:
 * ``anneal`` - simulated-annealing local search;
 * ``cpsat`` and ``windows`` - CP-SAT models of the whole problem or of a window;
 * ``diagnosis`` - infeasibility diagnosis;
-* ``driver`` - :func:`solve`, which runs them in turn.
+* ``driver`` - :func:`solve`, which runs them in turn;
+* ``quality`` - the proven bounds of a result and the best of them.
 """
 
 from spatialplan.schedule.bound import LpResult, lp_bound
 from spatialplan.schedule.driver import PlanResult, SolveProgress, diagnose, gap, solve
+from spatialplan.schedule.quality import (
+    BOUND_METHODS,
+    best_bound,
+    best_bound_method,
+    proven_bounds,
+)
 
-__all__ = ["LpResult", "PlanResult", "SolveProgress", "diagnose", "gap", "lp_bound", "solve"]
+__all__ = [
+    "BOUND_METHODS",
+    "LpResult",
+    "PlanResult",
+    "SolveProgress",
+    "best_bound",
+    "best_bound_method",
+    "diagnose",
+    "gap",
+    "lp_bound",
+    "proven_bounds",
+    "solve",
+]

@@ -89,7 +89,7 @@ class PlanResult:
         (n,) first harvest period per stand, 0 = not harvested, else ``1 .. P`` (the only
         harvest in the single-harvest model; see :meth:`harvests` for all of them).
     status
-        ``"optimal"`` (gap within ``settings.gap`` or proven), ``"feasible"``,
+        ``"optimal"`` (gap within ``settings.stop_gap`` or proven), ``"feasible"``,
         ``"time_limit"`` (best plan when time ran out), ``"interrupted"`` (best plan when
         the user pressed Ctrl-C), ``"infeasible"`` or ``"no_solution"`` (the last two are
         raised as errors by :func:`solve`).
@@ -237,7 +237,7 @@ def solve(
         lp_value=lp_value,
         registry=registry,
         stats=stats,
-        gap_stop=float(settings.gap),
+        gap_stop=float(settings.stop_gap),
     )
 
     def report(c: SearchCtx) -> None:
@@ -339,7 +339,7 @@ def solve(
         )
     if registry["interrupted"]:
         status = "interrupted"
-    elif ctx.proven or (plan_gap <= settings.gap and not (empty_plan and lp_value > 0)):
+    elif ctx.proven or (plan_gap <= settings.stop_gap and not (empty_plan and lp_value > 0)):
         status = "optimal"
     elif time.perf_counter() >= deadline - 0.05 or strategy in ("lns", "local"):
         status = "time_limit"
@@ -382,7 +382,7 @@ def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bo
             ctx.left(),
             "cpsat",
             first_slice_s=_first_slice(prep),
-            gap=settings.gap,
+            gap=settings.stop_gap,
             repair=True,
             full=True,
         )
@@ -393,7 +393,7 @@ def _full(ctx: SearchCtx, settings: SolverSettings, stats: dict, until_first: bo
         if (
             ctx.best is not None
             and ctx.cpsat_bound is not None
-            and gap(ctx.best_npv, _bound(ctx)) <= settings.gap
+            and gap(ctx.best_npv, _bound(ctx)) <= settings.stop_gap
         ):
             break
     size = sub.size()

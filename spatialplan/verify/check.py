@@ -347,7 +347,7 @@ def verify_schedule(
     is_open, opened_by = events.openness(h, green_after, stands.age_start, green_start, settings)
     adj = settings.adjacency
     geoms = metre_geometry(stands.geometry, notes)
-    nb = neighbours(geoms, adj.min_shared_edge_m, adj.gap_tolerance_m, adj.corner_adjacency)
+    nb = neighbours(geoms, adj.min_shared_edge_m, adj.digitising_tolerance_m, adj.corner_adjacency)
     found, pre, openings = rules.opening_checks(
         ids, nb.edges, stands.gross_ha, is_open, opened_by, r.max_opening_ha
     )

@@ -4,7 +4,7 @@ This is written apart from :mod:`spatialplan.adjacency` on purpose, by a differe
 so that a mistake in the planner's graph shows up as a disagreement instead of hiding.
 The rule measured is the documented one: two stands are adjacent when they share more than
 ``adjacency.min_shared_edge_m`` of boundary, where boundary separated by a digitising gap
-of at most ``adjacency.gap_tolerance_m`` still counts as shared, and a contact at a corner
+of at most ``adjacency.digitising_tolerance_m`` still counts as shared, and a contact at a corner
 only counts with ``adjacency.corner_adjacency``.
 
 How the shared length is measured
@@ -233,7 +233,7 @@ def _facing_lengths(geoms: np.ndarray, tol: float) -> pd.Series:
 def neighbours(
     geoms: np.ndarray,
     min_shared_edge_m: float,
-    gap_tolerance_m: float,
+    digitising_tolerance_m: float,
     corner_adjacency: bool = False,
 ) -> Neighbours:
     """Adjacent stand pairs by the measure described in the module docstring.
@@ -244,7 +244,7 @@ def neighbours(
         (n,) stand polygons in metres (see :func:`metre_geometry`), by position.
     min_shared_edge_m
         Stands sharing more than this length of boundary are adjacent.
-    gap_tolerance_m
+    digitising_tolerance_m
         Boundary separated by at most this gap still counts as shared.
     corner_adjacency
         Any contact within the tolerance, a corner included, makes stands adjacent.
@@ -258,12 +258,12 @@ def neighbours(
     Two 1 m squares side by side share 1 m; a third touches the second at a corner only:
 
     >>> sq = np.array([shapely.box(0, 0, 1, 1), shapely.box(1, 0, 2, 1), shapely.box(2, 1, 3, 2)])
-    >>> nb = neighbours(sq, min_shared_edge_m=0.5, gap_tolerance_m=0.1)
+    >>> nb = neighbours(sq, min_shared_edge_m=0.5, digitising_tolerance_m=0.1)
     >>> nb.edges.tolist(), nb.shared_m.tolist()
     ([[0, 1]], [1.0])
     """
     geoms = np.asarray(geoms, dtype=object)
-    tol = max(float(gap_tolerance_m), MIN_GAP_M)
+    tol = max(float(digitising_tolerance_m), MIN_GAP_M)
     a, b = shapely.STRtree(geoms).query(geoms, predicate="dwithin", distance=tol)
     pair = a < b
     a, b = a[pair].astype(np.int64), b[pair].astype(np.int64)

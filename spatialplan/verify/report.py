@@ -96,7 +96,7 @@ class VerifyReport:
 
     @property
     def verdict(self) -> str:
-        """One line: ``passed`` or ``failed`` with counts per rule."""
+        """One line: ``passed: ...`` or ``failed: ...`` with counts per rule."""
         pre = (
             f"; {len(self.preexisting)} pre-existing condition(s) noted" if self.preexisting else ""
         )

@@ -2,7 +2,7 @@
 
 Every case goes through :func:`spatialplan.cli.cli` (click's CliRunner, or a subprocess
 where stderr must be seen as a user sees it). A user mistake must give a non-zero exit
-code and one clear ``Error:`` line, never a Python traceback or the "Internal error"
+code and one clear ``error:`` line, never a Python traceback or the "internal error"
 message kept for bugs (exit code 70). Input files are fingerprinted with SHA-256 before
 each command and compared after it.
 """
@@ -22,7 +22,7 @@ from spatialplan.synthetic import synthetic_yield_table
 from tests.conftest import grid_stands, sha256, write_layer
 
 TRACEBACK = "Traceback (most recent call last)"
-INTERNAL = "Internal error"
+INTERNAL = "internal error"
 # Small, quick solves: the bad-input cases are about messages, not plan quality.
 FAST = ("--price", "40", "--periods", "3", "--time-limit", "3", "--workers", "1")
 
@@ -70,9 +70,9 @@ def run() -> Iterator[GuardedCli]:
 
 
 def assert_user_error(res: Result, code: int, *needles: str) -> None:
-    """A user error: exit ``code``, one ``Error:`` message holding every needle."""
+    """A user error: exit ``code``, one ``error:`` message holding every needle."""
     assert res.exit_code == code, res.output
-    assert res.output.count("Error:") == 1, res.output
+    assert res.output.count("error:") == 1, res.output
     for n in needles:
         assert n in res.output, f"{n!r} not in:\n{res.output}"
 

@@ -69,15 +69,15 @@ def test_field_names_match_case_insensitively(
     area_ha = shapely.area(np.asarray(g.geometry.values)) / 10_000.0
     assert ["stands", str(len(g))] in rows
     assert ["total area (ha)", f"{area_ha.sum():,.1f}"] in rows
-    # The ages were read from 'Age': 20-year age classes (common practice, no source)
-    # summed here from the layer's own values.
-    lo = (g["Age"].to_numpy() // 20) * 20
+    # The ages were read from 'Age': 10-year age classes (output.age_class_width_yr,
+    # default; common practice, no source) summed here from the layer's own values.
+    lo = (g["Age"].to_numpy() // 10) * 10
     for c in sorted(set(lo)):
-        assert [f"{c}-{c + 19}", f"{area_ha[lo == c].sum():,.1f}"] in rows
+        assert [f"{c}-{c + 9}", f"{area_ha[lo == c].sum():,.1f}"] in rows
     for s in sorted(set(g["stratum"])):
         sel = (g["stratum"] == s).to_numpy()
         assert [s, str(sel.sum()), f"{area_ha[sel].sum():,.1f}"] in rows
-    assert "Inputs are usable for planning." in res.output
+    assert "passed: the inputs are usable for planning" in res.output
     # The plan keeps the user's field names and uses 'Age' as the start age: age at
     # harvest = start age + (p - 0.5) L at mid-period (common practice, no source).
     out = tmp_path / "o.gpkg"

@@ -154,7 +154,7 @@ def test_subprocess_prints_one_message_without_traceback(tmp_path: Path, yields:
     missing = tmp_path / "stands.gpkg"
     res = run_subprocess(["check", missing, "--yields", yields])
     assert res.returncode == 1
-    assert res.stderr.strip().startswith("Error:") and str(missing) in res.stderr
+    assert res.stderr.strip().startswith("error:") and str(missing) in res.stderr
     assert TRACEBACK not in res.stderr + res.stdout
     # --debug shows the traceback for a developer.
     res = run_subprocess(["--debug", "check", missing, "--yields", yields])

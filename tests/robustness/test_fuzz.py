@@ -3,7 +3,7 @@
 Layers are drawn on a small grid of 200 m cells and then damaged: bow-ties, slivers,
 duplicates, overlaps, holes, multipolygons, empty and null geometries; attribute tables get
 duplicate, missing and non-ASCII ids and junk ages. The properties: no unhandled exception
-(exit code 70, "Internal error", a traceback), inputs unchanged, and every plan written
+(exit code 70, "internal error", a traceback), inputs unchanged, and every plan written
 passes the independent ``verify`` command.
 """
 
@@ -166,7 +166,7 @@ def test_check_and_plan_never_crash(
         res = run("verify", out)
         assert res.exit_code == 0, res.output
     else:
-        assert res.output.count("Error:") == 1, res.output
+        assert res.output.count("error:") == 1, res.output
         assert not out.exists()
 
 
@@ -245,4 +245,4 @@ def test_random_rules_give_verified_plans_or_clear_errors(
     if res.exit_code == 0:
         assert run("verify", out).exit_code == 0
     else:
-        assert res.output.count("Error:") == 1 and not out.exists(), res.output
+        assert res.output.count("error:") == 1 and not out.exists(), res.output

@@ -109,7 +109,7 @@ def test_plan_on_broken_geometry_is_verified(run: GuardedCli, tmp_path: Path, yi
         assert got[sid] == pytest.approx(ha, rel=1e-9), sid
     res = run("verify", out)
     assert res.exit_code == 0, res.output
-    assert "passed" in res.output
+    assert "passed: all rules hold" in res.output
 
 
 def test_coordinates_in_degrees(run: GuardedCli, tmp_path: Path, yields: Path) -> None:

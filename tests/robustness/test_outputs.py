@@ -84,7 +84,7 @@ def test_output_is_an_input(run: GuardedCli, stands: Path, yields: Path, which: 
     target = stands if which == "stands" else yields
     run.guard(stands, yields)
     res = _plan(run, stands, yields, target, "--overwrite")
-    assert res.exit_code == 1 and res.output.count("Error:") == 1, res.output
+    assert res.exit_code == 1 and res.output.count("error:") == 1, res.output
     assert str(target) in res.output
 
 

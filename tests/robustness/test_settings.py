@@ -152,5 +152,5 @@ def test_subprocess_settings_error_has_no_traceback(
         ["plan", stands, "--yields", yields, "--settings", s, "--out", tmp_path / "o.gpkg"]
     )
     assert res.returncode == 1
-    assert res.stderr.count("Error:") == 1 and "did you mean 'rules.max_opening_ha'" in res.stderr
+    assert res.stderr.count("error:") == 1 and "did you mean 'rules.max_opening_ha'" in res.stderr
     assert TRACEBACK not in res.stderr + res.stdout

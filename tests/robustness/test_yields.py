@@ -125,7 +125,7 @@ def test_excel_bom_is_accepted(run: GuardedCli, stands: Path, tmp_path: Path) ->
     # The first column is still 'stratum' (not '\ufeffstratum'): every key of the table is
     # read, the layer's S1 and S2 match and the other three are noted.
     assert "yield curves with no stand in the layer: S3, S4, S5" in res.output
-    assert "Inputs are usable for planning." in res.output
+    assert "passed: the inputs are usable for planning" in res.output
     # The mark changes nothing: the same report as for the table without it.
     ref = run("check", stands, "--yields", plain)
     assert ref.exit_code == 0, ref.output

@@ -1,0 +1,100 @@
+"""How good a plan is: the proven upper bounds on the optimal NPV and the best of them.
+
+Two methods bound the optimum from above: the aspatial LP (Model I without the spatial
+rules, solved with HiGHS: a relaxation, so its optimum is at least the spatial optimum) and
+CP-SAT's own bound on the full model. The best proven bound is the smaller of the two,
+never below the plan's NPV (a legal plan reaches it), and the NPV itself once the plan is
+proven optimal. The functions take anything with ``npv``, ``lp_bound``, ``cpsat_bound``
+and ``gap``: a :class:`~spatialplan.schedule.PlanResult` or a scenario's result.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Protocol
+
+__all__ = ["BOUND_METHODS", "HasBounds", "best_bound", "best_bound_method", "proven_bounds"]
+
+#: The proven bounds a result may carry (attribute -> the method, in words).
+BOUND_METHODS: dict[str, str] = {
+    "lp_bound": "aspatial LP (HiGHS)",
+    "cpsat_bound": "CP-SAT",
+}
+
+
+class HasBounds(Protocol):
+    """A solved plan with its NPV, its proven bounds and its gap."""
+
+    @property
+    def npv(self) -> float: ...  # pragma: no cover - a protocol
+
+    @property
+    def lp_bound(self) -> float | None: ...  # pragma: no cover - a protocol
+
+    @property
+    def cpsat_bound(self) -> float | None: ...  # pragma: no cover - a protocol
+
+    @property
+    def gap(self) -> float: ...  # pragma: no cover - a protocol
+
+
+def proven_bounds(result: HasBounds) -> dict[str, float]:
+    """Every finite proven upper bound of ``result``, keyed by its method.
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as R
+    >>> proven_bounds(R(npv=90.0, lp_bound=110.0, cpsat_bound=None, gap=0.18))
+    {'aspatial LP (HiGHS)': 110.0}
+    """
+    out = {}
+    for attr, method in BOUND_METHODS.items():
+        b = getattr(result, attr)
+        if b is not None and math.isfinite(float(b)):
+            out[method] = float(b)
+    return out
+
+
+def _best(result: HasBounds) -> tuple[float, str]:
+    npv = float(result.npv)
+    if not math.isfinite(npv):
+        return math.nan, ""
+    bounds = proven_bounds(result)
+    if not bounds:
+        return math.nan, ""
+    method = min(bounds, key=bounds.__getitem__)
+    if result.gap == 0.0:  # proven optimal: the plan's NPV is the optimum
+        return npv, method
+    return max(npv, bounds[method]), method
+
+
+def best_bound(result: HasBounds) -> float:
+    """The tightest proven upper bound on the optimal NPV.
+
+    The smaller of the aspatial LP bound and CP-SAT's bound on the full model (both bound
+    the optimum from above), never below the plan's own NPV; the NPV itself when the gap
+    is 0 (the plan is proven optimal). NaN without a plan (NaN NPV) or without any finite
+    bound.
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as R
+    >>> best_bound(R(npv=90.0, lp_bound=110.0, cpsat_bound=100.0, gap=0.1))
+    100.0
+    >>> best_bound(R(npv=90.0, lp_bound=110.0, cpsat_bound=90.0004, gap=0.0))
+    90.0
+    """
+    return _best(result)[0]
+
+
+def best_bound_method(result: HasBounds) -> str:
+    """The method that gave :func:`best_bound` (a :data:`BOUND_METHODS` value; ``""`` when
+    there is none).
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as R
+    >>> best_bound_method(R(npv=90.0, lp_bound=110.0, cpsat_bound=100.0, gap=0.1))
+    'CP-SAT'
+    """
+    return _best(result)[1]
