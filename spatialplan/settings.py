@@ -12,7 +12,7 @@ The tree mirrors the TOML sections::
     [growth]      optional parametric curves and diameter/height by age per stratum
     [terrain]     DEM, stream layer, slope classes
     [solver]      time limit, workers, seed, gap
-    [output]      map and raster options
+    [output]      map, raster and chart options
 
 Every value is validated once, at load, with a message naming the TOML key (and its line
 in the file when it came from one) and the allowed range. Dotted keys such as
@@ -261,6 +261,9 @@ class OutputSettings:
     raster_out: str | None = None
     raster_cell_m: float = field(default=10.0, metadata=_rng(0, None, lo_open=True))
     write_back: bool = False
+    # Width of the age classes in the charts, the report and `check` (years; 10 is the
+    # usual class width for age-class tables, common practice, no source).
+    age_class_width_yr: float = field(default=10.0, metadata=_rng(0, 200, lo_open=True))
 
 
 @dataclass(frozen=True)
