@@ -23,6 +23,7 @@ import pandas as pd
 
 from spatialplan import _review as _rv
 from spatialplan._io import write_text_atomic
+from spatialplan.inventory import is_reserve_flag
 
 __all__ = [
     "CAUTIONS",
@@ -266,6 +267,7 @@ def rules_achieved(
         One row per rule: ``key``, ``rule`` (sentence), ``achieved`` (words), ``value``
         (the measured number, NaN when none), ``limit`` (NaN when none) and ``check``:
         ``passed``, ``failed``, ``not checked`` or ``""`` (nothing to judge).
+        ``attrs["notes"]`` holds ``note:`` lines about what the measures found.
     """
     info = _rv.current_run_info(run_info or {})
     ident = id_col or str(_rv.setting(settings, "fields.id_field", "stand_id"))
@@ -291,6 +293,7 @@ def rules_achieved(
         return "passed" if ok else "failed"
 
     rows: list[dict[str, Any]] = []
+    notes: list[str] = []
 
     def add(key: str, text: str, achieved: str, check: str, value: float = np.nan,
             limit: float = np.nan) -> None:  # fmt: skip
@@ -329,10 +332,11 @@ def rules_achieved(
                 other = _column(pdf, "largest_other_opening_ha")
                 if np.isfinite(lim) and np.isfinite(other).any() and np.nanmax(other) > lim:
                     k = int(np.nanargmax(other))
-                    achieved += (
-                        f"; young stands from before the plan or earlier cuts form an opening "
-                        f"of {other[k]:,.1f} ha in {hz.period(int(periods[k]))}, with no "
-                        "harvest of that period in it"
+                    notes.append(
+                        f"note: young stands from before the plan or from earlier cuts form "
+                        f"an opening of {other[k]:,.1f} ha in {hz.period(int(periods[k]))} "
+                        "with no harvest of that period in it; the opening rule judges "
+                        "openings that hold a harvest of the period"
                     )
                 check = "" if limit is None else judged(x <= lim * (1 + _SLACK) + 1e-6)
                 add(key, text, achieved, check, x, lim)
@@ -359,8 +363,6 @@ def rules_achieved(
                 add(key, text, "no harvest", "", limit=lim)
         elif key == "reserves":
             col = "reserve" if "reserve" in sched.columns else None
-            from spatialplan.inventory import is_reserve_flag
-
             res = (is_reserve_flag(sched[col]) if col else np.zeros(len(sched), dtype=bool)).astype(
                 bool
             )
@@ -464,7 +466,9 @@ def rules_achieved(
             add(key, text, achieved, judged(x >= need - 1e-9), x, need)
         else:  # adjacency and any rule without a measure here
             add(key, text, "–", "")
-    return pd.DataFrame(rows, columns=["key", "rule", "achieved", "value", "limit", "check"])
+    out = pd.DataFrame(rows, columns=["key", "rule", "achieved", "value", "limit", "check"])
+    out.attrs["notes"] = notes
+    return out
 
 
 def _changes(vol: np.ndarray) -> np.ndarray:
@@ -909,6 +913,7 @@ def write_report(
                                openings=openings, id_col=id_col)  # fmt: skip
         for rec in rules[rules["check"] == "failed"].to_dict("records"):
             messages.append(f"violation: {rec['rule']}: {rec['achieved']}")
+        messages.extend(rules.attrs.get("notes", []))
         rules_html = _rules_html(rules)
         sust = sustainability(settings, schedule, pdf, info, harvests=harvests, id_col=id_col)
         if not np.isfinite(sust["share_of_ltsy_rotation"]):
