@@ -443,10 +443,13 @@ def _flow_chart(
     ax1.set_ylim(0, top * 1.12)
     ax1.set_ylabel("Volume (1000 m³)")
     ax1.grid(axis="y", alpha=0.3)
+    parts = ["the range the flow rules allowed"] if band_drawn else []
+    if any(
+        np.isfinite(_rv.numeric(info.get(k))) for k in ("ltsy_rotation_m3_yr", "ltsy_mai_m3_yr")
+    ):
+        parts.append("the long-term sustained yield (LTSY)")
     ax1.set_title(
-        "Volume, with the range the flow rules allowed and the long-term sustained yield",
-        fontsize=10.5,
-        loc="left",
+        "Volume" + (", with " + " and ".join(parts) if parts else ""), fontsize=10.5, loc="left"
     )
     area = pdf["harvest_net_area_ha"].to_numpy(float)
     ax2.bar(p, area, color=bar_c, edgecolor="#333333", lw=0.6)
@@ -495,12 +498,22 @@ def _age_chart(schedule: Any, settings: Any, harvests: Any, id_col: str | None, 
         fontsize=8.5,
     )
     width = float(_rv.setting(settings, "output.age_class_width_yr", 10.0))
+    min_age = float(_rv.setting(settings, "rules.min_age_yr", 0.0) or 0.0)
+    if 0 < min_age < n * width:
+        # Class k spans x = k - 0.5 .. k + 0.5, so age a sits at a / width - 0.5.
+        ax.axvline(
+            min_age / width - 0.5,
+            color="#8a2b4a",
+            ls="--",
+            lw=1.3,
+            label=f"Minimum harvest age ({min_age:g} years)",
+        )
     ax.set_xlabel(f"Age class (years; classes of {width:g} years)")
     ax.set_ylabel("Area (gross, ha)")
     ax.set_ylim(0, max(float(table[list(cols)].to_numpy().max(initial=0.0)), 1e-9) * 1.1)
     ax.set_title("Area by age class at the start, the middle and the end", fontsize=14)
     ax.grid(axis="y", alpha=0.3)
-    fig.legend(loc="outside lower center", ncol=3, fontsize=9)
+    fig.legend(loc="outside lower center", ncol=4, fontsize=9)
     return _save(fig, path)
 
 

@@ -355,8 +355,8 @@ def rules_achieved(
                 j = int(np.nanargmin(ages))
                 x = float(ages[j])
                 achieved = (
-                    f"youngest age at harvest {x:,.1f} years (stand {ids[ev['pos'].iloc[j]]}, "
-                    f"{hz.period(int(ev['period'].iloc[j]))})"
+                    f"youngest age at harvest {x:,.1f} years: stand {ids[ev['pos'].iloc[j]]} "
+                    f"in {hz.period(int(ev['period'].iloc[j]))}"
                 )
                 add(key, text, achieved, judged(x >= lim - 1e-9), x, lim)
             else:
@@ -804,20 +804,27 @@ def _rules_html(rules: pd.DataFrame) -> str:
     )
 
 
-def _age_table_html(ages: pd.DataFrame) -> str:
-    tot0 = float(ages["area_start_ha"].sum()) or 1.0
-    tot1 = float(ages["area_end_ha"].sum()) or 1.0
+def _age_table_html(ages: pd.DataFrame, hz: _Horizon) -> str:
+    """Gross area and share by age class at the start, the middle and the end."""
+    cols = ("area_start_ha", "area_mid_ha", "area_end_ha")
+    tot = [float(ages[c].sum()) or 1.0 for c in cols]
+    times = ages.attrs.get("times_yr", (0.0, hz.P * hz.L / 2, hz.P * hz.L))
+    head = "".join(
+        f'<th colspan="2">{w} ({_esc(hz.at(t))})</th>'
+        for w, t in zip(("Start", "Middle", "End"), times, strict=True)
+    )
     rows = "".join(
-        f"<tr><td>{_esc(r['age_class'])}</td><td>{_num(r['area_start_ha'], 1)}</td>"
-        f"<td>{_num(100 * r['area_start_ha'] / tot0, 1)}</td>"
-        f"<td>{_num(r['area_end_ha'], 1)}</td><td>{_num(100 * r['area_end_ha'] / tot1, 1)}</td>"
-        "</tr>"
+        f"<tr><td>{_esc(r['age_class'])}</td>"
+        + "".join(
+            f"<td>{_num(r[c], 1)}</td><td>{_num(100 * r[c] / t, 1)}</td>"
+            for c, t in zip(cols, tot, strict=True)
+        )
+        + "</tr>"
         for r in ages.to_dict("records")
     )
     return (
-        '<table class="num ages"><thead><tr><th>Age class (years)</th>'
-        "<th>Start: area (gross, ha)</th><th>Start: %</th>"
-        "<th>End: area (gross, ha)</th><th>End: %</th></tr></thead>"
+        '<table class="num ages"><thead><tr><th rowspan="2">Age class (years)</th>'
+        f"{head}</tr><tr>" + "<th>ha (gross)</th><th>%</th>" * 3 + "</tr></thead>"
         f"<tbody>{rows}</tbody></table>"
     )
 
@@ -924,7 +931,7 @@ def write_report(
         if not sust["standing_basis"]:
             messages.append("note: the plan records no standing volume")
         sentences = "".join(f"<li>{_esc(s)}</li>" for s in sust["sentences"])
-        sust_html = f'<ul class="sust">{sentences}</ul>{_age_table_html(sust["age_classes"])}'
+        sust_html = f'<ul class="sust">{sentences}</ul>{_age_table_html(sust["age_classes"], hz)}'
     elif settings is None:
         rules_html = _rules_html(pd.DataFrame())
 
@@ -975,7 +982,7 @@ border-bottom:1px solid #ccc}}
 table{{border-collapse:collapse;margin:.5rem 0;font-size:.85rem}}
 th,td{{border:1px solid #ccc;padding:3px 6px;vertical-align:top}}
 thead th{{background:#eef0ec;font-weight:600}} table.num td{{text-align:right}}
-.summary th{{text-align:left;background:#f7f7f5;font-weight:600}}
+.summary th{{text-align:left;background:#f7f7f5;font-weight:600;white-space:nowrap}}
 .wide{{overflow-x:auto}} table.periods td:nth-child(2){{white-space:nowrap}}
 table.periods th{{font-size:.8rem}}
 tr.total td{{font-weight:700;background:#f4f4f0;border-top:2px solid #888}}

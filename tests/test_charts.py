@@ -119,11 +119,16 @@ def test_plan_charts(tmp_path, figures):
     heights = [[b.get_height() for b in c] for c in age["axes"][0]["bars"]]
     for h, col in zip(heights, ("area_start_ha", "area_mid_ha", "area_end_ha"), strict=True):
         np.testing.assert_allclose(h, table[col])
-    assert age["legends"][0][1] == [
+    labels = age["legends"][0][1]
+    assert [t for t in labels if " of the plan " in t] == [
         f"Start of the plan ({START})",
         f"Middle of the plan ({START + P * L / 2:g})",
         f"End of the plan ({START + P * L:g})",
     ]
+    # The minimum harvest age as a line between the classes it separates (25 yr: the
+    # class 20-29 spans x = 1.5 .. 2.5 with 10-year classes, so 25 years is at x = 2).
+    line = age["axes"][0]["lines"]["Minimum harvest age (25 years)"]
+    np.testing.assert_allclose(line.get_xdata(), 25.0 / 10.0 - 0.5)
 
     # Value chart: gross value named as such, inside its axes, legend clear of the axes.
     val = figures["npv_by_period.png"]
