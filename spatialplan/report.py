@@ -325,9 +325,10 @@ def rules_achieved(
             if len(largest) and np.isfinite(largest).any():
                 j = int(np.nanargmax(largest))
                 x = float(largest[j])
+                by_period = ", ".join(_num(v, 1) for v in largest)
                 achieved = (
                     f"largest opening holding a harvest {x:,.1f} ha (gross), in "
-                    + hz.period(int(periods[j]))
+                    f"{hz.period(int(periods[j]))}; by period: {by_period} ha"
                 )
                 other = _column(pdf, "largest_other_opening_ha")
                 if np.isfinite(lim) and np.isfinite(other).any() and np.nanmax(other) > lim:
@@ -392,22 +393,28 @@ def rules_achieved(
             add(key, text, achieved, check, float(most), np.nan if lim_v is None else lim_v)
         elif key == "old_forest":
             need = float(r.old_forest_min_share)
-            share = _column(pdf, "old_forest_share")
-            if not np.isfinite(share).any():
-                share = _old_forest_shares(sched, ev, settings, hz)
+            unit_col = _rv.setting(settings, "fields.unit_field")
+            where = ""
+            if unit_col and unit_col in sched.columns:
+                # The rule holds in each management unit: the smallest share of any unit.
+                units = sched[unit_col].astype(str).to_numpy()
+                by_unit = {
+                    u: _old_forest_shares(sched, ev, settings, hz, units == u)
+                    for u in np.unique(units)
+                }
+                u_min = min(by_unit, key=lambda u: np.nanmin(by_unit[u], initial=np.inf))
+                share, where = by_unit[u_min], f"unit {u_min}, "
+            else:
+                share = _column(pdf, "old_forest_share")
+                if not np.isfinite(share).any():
+                    share = _old_forest_shares(sched, ev, settings, hz)
             j = int(np.nanargmin(share)) if np.isfinite(share).any() else -1
             if j >= 0:
                 x = float(share[j])
                 achieved = (
-                    f"smallest share {_pct(x)} in {hz.period(int(periods[j]))}, "
-                    f"required {_pct(need)}"
+                    f"smallest share {_pct(x)} in {where}{hz.period(j + 1)}, required {_pct(need)}"
                 )
-                if _rv.setting(settings, "fields.unit_field"):
-                    achieved += " (whole forest; the rule holds per management unit)"
-                    check = by_verify("old_forest")
-                else:
-                    check = judged(x >= need - 1e-9)
-                add(key, text, achieved, check, x, need)
+                add(key, text, achieved, judged(x >= need - 1e-9), x, need)
             else:
                 add(key, text, "not measured", "not checked", limit=need)
         elif key == "flow_tolerance":
@@ -525,13 +532,20 @@ def _start_ages(schedule: pd.DataFrame, settings: Any) -> np.ndarray:
 
 
 def _old_forest_shares(
-    schedule: pd.DataFrame, ev: pd.DataFrame, settings: Any, hz: _Horizon
+    schedule: pd.DataFrame,
+    ev: pd.DataFrame,
+    settings: Any,
+    hz: _Horizon,
+    among: np.ndarray | None = None,
 ) -> np.ndarray:
-    """Gross-area share at least ``rules.old_forest_age_yr`` old at each mid-period."""
+    """Gross-area share at least ``rules.old_forest_age_yr`` old at each mid-period, of all
+    stands or of those in ``among`` (a mask)."""
     old = float(_rv.setting(settings, "rules.old_forest_age_yr"))
     delay = float(_rv.setting(settings, "regeneration.delay_yr", 0.0))
     age0 = _start_ages(schedule, settings)
     gross = np.nan_to_num(_column(schedule, "area_ha"))
+    if among is not None:
+        gross = np.where(among, gross, 0.0)
     total = gross.sum()
     out = np.full(hz.P, np.nan)
     if total <= 0:

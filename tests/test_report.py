@@ -106,6 +106,8 @@ def test_rules_achieved_against_the_frames():
     assert got.loc["operability", "rule"] == "inoperable stands are never harvested"
     # maximum opening: the largest per-period opening holding a harvest
     assert got.loc["max_opening", "value"] == pytest.approx(per["largest_opening_ha"].max())
+    by_period = ", ".join(f"{v:,.1f}" for v in per["largest_opening_ha"])
+    assert got.loc["max_opening", "achieved"].endswith(f"by period: {by_period} ha")
     assert got.loc["max_opening", "check"] == (
         "passed" if per["largest_opening_ha"].max() <= 40.0 else "failed"
     )
@@ -334,3 +336,31 @@ def test_review_files_carry_harvests(tmp_path):
     assert page.count('src="data:image/png;base64,') == 3
     assert 'href="estate.map.html"' in page
     assert 'href="estate.report.html"' in done["map"].read_text(encoding="utf-8")
+
+
+def test_old_forest_rule_per_management_unit():
+    ep = estate_plan()
+    s = ep.schedule.copy()
+    s["unit"] = np.where(s.geometry.centroid.x < s.geometry.centroid.x.median(), "West", "East")
+    settings = estate_settings(**{"fields.unit_field": "unit"})
+    got = rules_achieved(settings, s, ep.periods, ep.run_info, harvests=ep.harvests)
+    row = got.set_index("key").loc["old_forest"]
+    # Reference: share of each unit's gross area at least 80 years old at each mid-period,
+    # stand by stand (timing rule of docs/architecture.md; common practice, no source).
+    gross = s["area_ha"].to_numpy()
+    worst = (np.inf, "", 0)
+    for p in range(1, P + 1):
+        t = (p - 0.5) * L
+        age = s["age"].to_numpy(float) + t
+        for i, sid in enumerate(s["stand_id"]):
+            qs = ep.harvests.loc[ep.harvests["stand_id"] == sid, "period"]
+            done = [q for q in qs if (q - 0.5) * L <= t]
+            if done:
+                age[i] = max(t - (max(done) - 0.5) * L - DELAY, 0.0)
+        for u in ("East", "West"):
+            m = (s["unit"] == u).to_numpy()
+            share = gross[m & (age >= 80.0)].sum() / gross[m].sum()
+            worst = min(worst, (share, u, p))
+    assert row["value"] == pytest.approx(worst[0])
+    assert f"in unit {worst[1]}, period {worst[2]} " in row["achieved"]
+    assert row["check"] == ("passed" if worst[0] >= 0.05 else "failed")
