@@ -19,16 +19,17 @@ _ = plt
 # --- rotation charts ---
 import math  # noqa: E402
 import re  # noqa: E402
+from collections.abc import Mapping  # noqa: E402
 from pathlib import Path  # noqa: E402
 from typing import TYPE_CHECKING  # noqa: E402
 
 import numpy as np  # noqa: E402
 
+from spatialplan import _review as _rv  # noqa: E402
 from spatialplan._io import atomic_path  # noqa: E402
+from spatialplan.errors import OutputError  # noqa: E402
 
 if TYPE_CHECKING:
-    from collections.abc import Mapping
-
     from spatialplan.economics import RotationCurves
 
 __all__ += ["rotation_chart", "safe_file_stem"]
@@ -161,13 +162,28 @@ def rotation_chart(curves: RotationCurves, path: str | Path, title: str | None =
 
 # --- plan charts ---
 
-__all__ += ["age_class_areas", "plan_charts"]
+__all__ += ["age_class_areas", "age_class_table", "plan_charts"]
+
+#: Colours of the age-class series at the start, the middle and the end of the horizon:
+#: light to dark, so the order reads in greyscale too.
+AGE_SERIES_COLOURS = ("#c9bfa8", "#7d9c74", "#2e5e4e")
+LTSY_ROTATION_COLOUR = "#8a2b4a"  # LTSY at the economic rotation (solid line)
+LTSY_MAI_COLOUR = "#4a4a4a"  # LTSY at MAI culmination (dashed line)
+ENDING_VALUE_COLOUR = "#6f7f8f"
+#: Age classes beyond this many are pooled into the last, open class.
+MAX_AGE_CLASSES = 30
 
 
 def age_class_areas(
     age_yr: np.ndarray, area_ha: np.ndarray, class_width_yr: float, n_classes: int
 ) -> np.ndarray:
-    """Area per age class ``[k w, (k + 1) w)``; the last class also takes everything older."""
+    """Area per age class ``[k w, (k + 1) w)``; the last class also takes everything older.
+
+    Examples
+    --------
+    >>> age_class_areas(np.array([3.0, 12.0, 95.0]), np.array([1.0, 2.0, 4.0]), 10.0, 3).tolist()
+    [1.0, 2.0, 4.0]
+    """
     k = np.clip(np.floor(np.asarray(age_yr, float) / class_width_yr), 0, n_classes - 1).astype(int)
     return np.bincount(k, weights=np.asarray(area_ha, float), minlength=n_classes)
 
@@ -182,62 +198,201 @@ def _save(fig: Any, path: Path) -> Path:
     return path
 
 
-def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Path) -> list[Path]:
+def _class_label(lo: float, hi: float, width: float) -> str:
+    if float(width).is_integer():  # whole-year classes: 0–9, 10–19, ...
+        return f"{lo:g}–{hi - 1:g}"
+    return f"{lo:g}–{hi:g}"
+
+
+def _start_ages(schedule: Any, settings: Any) -> np.ndarray:
+    import pandas as pd
+
+    col = str(_rv.setting(settings, "fields.age_field", "age"))
+    col = col if col in schedule.columns else "age"
+    if col not in schedule.columns:
+        msg = f"the schedule has no age column ({col!r}); cannot draw age classes"
+        raise OutputError(msg)
+    return np.nan_to_num(np.asarray(pd.to_numeric(schedule[col], errors="coerce"), dtype=float))
+
+
+def _gross_area(schedule: Any) -> np.ndarray:
+    import pandas as pd
+
+    col = "area_ha" if "area_ha" in schedule.columns else "net_area_ha"
+    return np.nan_to_num(np.asarray(pd.to_numeric(schedule[col], errors="coerce"), dtype=float))
+
+
+def age_class_table(
+    schedule: Any, settings: Any, harvests: Any = None, *, id_col: str | None = None
+) -> Any:
+    """Gross area by age class at the start, the middle and the end of the horizon.
+
+    Ages at ``t = 0``, ``P L / 2`` and ``P L`` come from the start ages and the harvests:
+    after a harvest in period ``q`` the stand is age 0 at mid-period ``q`` plus
+    ``regeneration.delay_yr`` (bare land counts in the youngest class).
+
+    Parameters
+    ----------
+    schedule
+        The ``schedule`` layer: start age (``fields.age_field``, else ``age``),
+        ``area_ha`` (gross), ``period`` or ``harvest_periods``.
+    settings
+        Settings tree (``horizon``, ``regeneration.delay_yr``,
+        ``output.age_class_width_yr``, ``fields``).
+    harvests
+        The ``harvests`` table (one row per harvest) or ``None`` (one harvest per stand,
+        read from the schedule).
+    id_col
+        Stand id column (default ``fields.id_field``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per class: ``age_class`` (label), ``from_yr``, ``to_yr`` (NaN for the last,
+        open class when older stands are pooled), ``area_start_ha``, ``area_mid_ha``,
+        ``area_end_ha``. ``attrs["times_yr"]`` holds the three times in years from the start.
+    """
+    import pandas as pd
+
+    P = int(_rv.setting(settings, "horizon.periods", 10))
+    L = float(_rv.setting(settings, "horizon.period_length_yr", 5.0))
+    delay = float(_rv.setting(settings, "regeneration.delay_yr", 0.0))
+    width = float(_rv.setting(settings, "output.age_class_width_yr", 10.0))
+    ident = id_col or str(_rv.setting(settings, "fields.id_field", "stand_id"))
+    events = _rv.harvest_events(schedule, harvests, ident)
+    age0 = _start_ages(schedule, settings)
+    area = _gross_area(schedule)
+    times = (0.0, P * L / 2.0, P * L)
+    ages = [_rv.ages_at(age0, events, t, L, delay) for t in times]
+    oldest = max((float(a.max(initial=0.0)) for a in ages), default=0.0)
+    n_cls = max(1, math.floor(oldest / width) + 1)
+    pooled = n_cls > MAX_AGE_CLASSES
+    n_cls = min(n_cls, MAX_AGE_CLASSES)
+    lo = np.arange(n_cls) * width
+    hi = lo + width
+    labels = [_class_label(a, b, width) for a, b in zip(lo, hi, strict=True)]
+    if pooled:
+        labels[-1] = f"≥ {lo[-1]:g}"
+    table = pd.DataFrame(
+        {
+            "age_class": labels,
+            "from_yr": lo,
+            "to_yr": np.where(pooled & (np.arange(n_cls) == n_cls - 1), np.nan, hi),
+            "area_start_ha": age_class_areas(ages[0], area, width, n_cls),
+            "area_mid_ha": age_class_areas(ages[1], area, width, n_cls),
+            "area_end_ha": age_class_areas(ages[2], area, width, n_cls),
+        }
+    )
+    table.attrs["times_yr"] = times
+    return table
+
+
+def _period_axis(ax: Any, p: np.ndarray, first_years: np.ndarray, calendar: bool) -> None:
+    """Period numbers with the first year of each period below; thinned when crowded."""
+    step = 1 if len(p) <= 16 else math.ceil(len(p) / 16)
+    shown = p[::step]
+    years = first_years[::step]
+    ax.set_xticks(shown, [f"{k}\n{y:g}" for k, y in zip(shown, years, strict=True)], fontsize=8)
+    ax.set_xlabel("Period (first year)" if calendar else "Period (years from the plan start)")
+
+
+def _periods_years(pdf: Any, settings: Any, P: int, L: float) -> tuple[np.ndarray, bool]:
+    """(P, 2) start and end year of each period in ``pdf`` and whether they are calendar years."""
+    start_year = float(_rv.setting(settings, "horizon.start_year", 0) or 0)
+    calendar = start_year != 0
+    if {"start_year", "end_year"} <= set(pdf.columns):
+        return pdf[["start_year", "end_year"]].to_numpy(dtype=float), calendar
+    return _rv.period_years(P, L, start_year)[pdf["period"].to_numpy(dtype=int) - 1], calendar
+
+
+def plan_charts(
+    periods_df: Any,
+    schedule: Any,
+    settings: Any,
+    out_dir: str | Path,
+    *,
+    harvests: Any = None,
+    run_info: Mapping[str, Any] | None = None,
+    id_col: str | None = None,
+) -> list[Path]:
     """Write the plan's PNG charts into ``out_dir`` (created when missing).
 
-    Charts: ``harvest_flow.png`` (volume and area by period, with the flow band that
-    applied), ``age_classes.png`` (area by age class at the start and at the end of the
-    horizon), ``npv_by_period.png`` (discounted value by period and its running total).
+    Charts: ``harvest_flow.png`` (volume and net area by period, with the flow band that
+    applied and the long-term sustained yield per period), ``age_classes.png`` (gross area
+    by age class at the start, the middle and the end of the horizon) and
+    ``npv_by_period.png`` (discounted value of each period's harvests, the discounted
+    ending value, the running total, and the gross value before costs and discounting).
 
     Parameters
     ----------
     periods_df
-        Frame from :func:`spatialplan.outputs.period_table`.
+        The ``periods`` table (old column names are read too).
     schedule
-        Stand frame with ``period`` (0/null = not harvested), the age at the start (column
-        ``fields.age_field`` of the settings, else ``age``) and ``net_area_ha`` or
-        ``area_ha``.
+        The ``schedule`` layer (start age, ``area_ha``, ``period``/``harvest_periods``).
     settings
-        :class:`spatialplan.settings.Settings` or the same tree as nested dicts
-        (``horizon.periods``, ``horizon.period_length_yr``).
+        :class:`spatialplan.settings.Settings` or the same tree as nested dicts.
     out_dir
         Folder for the PNGs.
+    harvests
+        The ``harvests`` table, one row per harvest (``None``: one per stand, from the
+        schedule).
+    run_info
+        The ``run`` table as a dict: ``ltsy_mai_m3_yr``, ``ltsy_rotation_m3_yr`` (m3 per
+        year) and ``ending_value_npv`` are drawn when present.
+    id_col
+        Stand id column (default ``fields.id_field``).
 
     Returns
     -------
     list of pathlib.Path
         The PNGs written, in the order above.
     """
-    import pandas as pd
+    from spatialplan.outputs import period_colours
 
-    from spatialplan.outputs import _area_column, _get, _period_array, period_colours
-
+    info = _rv.current_run_info(run_info or {})
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    P = int(_get(settings, "horizon.periods", len(periods_df)))
-    L = float(_get(settings, "horizon.period_length_yr", 5.0))
+    pdf = _rv.current_names(periods_df, "periods").sort_values("period")
+    P = int(_rv.setting(settings, "horizon.periods", len(pdf)))
+    L = float(_rv.setting(settings, "horizon.period_length_yr", 5.0))
     colours = period_colours(P)
-    pdf = periods_df.sort_values("period")
     p = pdf["period"].to_numpy(dtype=int)
+    years, calendar = _periods_years(pdf, settings, P, L)
     bar_c = [colours[i - 1] if 1 <= i <= P else "grey" for i in p]
-    paths: list[Path] = []
+    return [
+        _flow_chart(pdf, p, years, calendar, bar_c, L, info, out / "harvest_flow.png"),
+        _age_chart(schedule, settings, harvests, id_col, out / "age_classes.png"),
+        _value_chart(pdf, p, years, calendar, bar_c, schedule, info, out / "npv_by_period.png"),
+    ]
 
-    # 1. harvest flow ----------------------------------------------------------------
-    fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(8.5, 7.5), sharex=True, layout="constrained")
+
+def _flow_chart(
+    pdf: Any,
+    p: np.ndarray,
+    years: np.ndarray,
+    calendar: bool,
+    bar_c: list[str],
+    L: float,
+    info: Mapping[str, Any],
+    path: Path,
+) -> Path:
+    fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(9.0, 8.0), sharex=True, layout="constrained")
     fig.suptitle("Harvest by period", fontsize=14)
     vol = pdf["harvest_volume_m3"].to_numpy(float) / 1000.0
-    ax1.bar(p, vol, color=bar_c, edgecolor="#333333", lw=0.6, label="Harvest volume")
+    ax1.bar(p, vol, color=bar_c, edgecolor="#333333", lw=0.6)
+    tops = [vol, [0.0]]
     lo = pdf.get("flow_lower_m3")
     hi = pdf.get("flow_upper_m3")
+    band_drawn = False
     if lo is not None and hi is not None:
         lo_v = lo.to_numpy(float) / 1000.0
         hi_v = hi.to_numpy(float) / 1000.0
-        top = np.nanmax(np.r_[vol, hi_v[np.isfinite(hi_v)], 0.0]) * 1.3 or 1.0
+        tops.append(hi_v[np.isfinite(hi_v)])
         band = np.isfinite(lo_v) | np.isfinite(hi_v)
-        first = True
+        ceiling = max(float(np.nanmax(np.r_[vol, hi_v[np.isfinite(hi_v)], 0.0])), 1e-9) * 1.6
         for x, a, b in zip(p[band], lo_v[band], hi_v[band], strict=True):
             a = 0.0 if not np.isfinite(a) else a
-            b = top if not np.isfinite(b) else b
+            b = ceiling if not np.isfinite(b) else b
             ax1.fill_between(
                 [x - 0.45, x + 0.45],
                 a,
@@ -245,108 +400,222 @@ def plan_charts(periods_df: Any, schedule: Any, settings: Any, out_dir: str | Pa
                 color="#f0a030",
                 alpha=0.25,
                 lw=0,
-                label="Allowed range (flow rules)" if first else None,
+                label=None if band_drawn else "Volume allowed by the flow rules",
             )
             ax1.hlines([a, b], x - 0.45, x + 0.45, color="#c06000", lw=1.2)
-            first = False
-        ax1.set_ylim(0, top)
+            band_drawn = True
+    # LTSY per period = LTSY per year x L (names contract); lines span the whole axis.
+    for key, colour, style, words in (
+        ("ltsy_rotation_m3_yr", LTSY_ROTATION_COLOUR, "-", "LTSY at the economic rotation"),
+        ("ltsy_mai_m3_yr", LTSY_MAI_COLOUR, "--", "LTSY at MAI culmination"),
+    ):
+        per_year = _rv.numeric(info.get(key))
+        if np.isfinite(per_year):
+            y = per_year * L / 1000.0
+            tops.append([y])
+            ax1.axhline(
+                y,
+                color=colour,
+                ls=style,
+                lw=1.8,
+                label=f"{words}: {per_year * L:,.0f} m³ per period",
+            )
+    top = max(float(np.max(np.concatenate([np.asarray(t, float) for t in tops]))), 1e-9)
+    ltsy_rot = _rv.numeric(info.get("ltsy_rotation_m3_yr")) * L / 1000.0
+    if len(vol) and np.isfinite(ltsy_rot) and ltsy_rot > 0:
+        # The late harvest against the LTSY, written over the last bar.
+        above = [float(vol[-1])]
+        if hi is not None and np.isfinite(hi.to_numpy(float)[-1]):
+            above.append(float(hi.to_numpy(float)[-1]) / 1000.0)
+        ax1.annotate(
+            f"{100.0 * vol[-1] / ltsy_rot:.0f} % of LTSY\n(economic rotation)",
+            (float(p[-1]), max(above)),
+            xytext=(0, 4),
+            textcoords="offset points",
+            ha="center",
+            va="bottom",
+            fontsize=8,
+            color=LTSY_ROTATION_COLOUR,
+            bbox={"boxstyle": "round,pad=0.25", "fc": "white", "ec": LTSY_ROTATION_COLOUR,
+                  "lw": 0.6},
+        )  # fmt: skip
+        top = max(top, max(above) * 1.3)
+    ax1.set_ylim(0, top * 1.12)
     ax1.set_ylabel("Volume (1000 m³)")
     ax1.grid(axis="y", alpha=0.3)
-    ax1.legend(loc="upper center", ncol=2, fontsize=9)
+    parts = ["the range the flow rules allowed"] if band_drawn else []
+    if any(
+        np.isfinite(_rv.numeric(info.get(k))) for k in ("ltsy_rotation_m3_yr", "ltsy_mai_m3_yr")
+    ):
+        parts.append("the long-term sustained yield (LTSY)")
     ax1.set_title(
-        "Volume, with the range allowed given the previous period", fontsize=11, loc="left"
+        "Volume" + (", with " + " and ".join(parts) if parts else ""), fontsize=10.5, loc="left"
     )
-    area = pdf["harvest_area_ha"].to_numpy(float)
+    area = pdf["harvest_net_area_ha"].to_numpy(float)
     ax2.bar(p, area, color=bar_c, edgecolor="#333333", lw=0.6)
-    for col, txt in (("area_lower_ha", "area target, min"), ("area_upper_ha", "area target, max")):
+    for col, txt, style in (
+        ("area_lower_ha", "Area target, least", ":"),
+        ("area_upper_ha", "Area target, most", "--"),
+    ):
         if col in pdf and np.isfinite(pdf[col].to_numpy(float)).any():
-            ax2.axhline(float(np.nanmax(pdf[col])), color="#c06000", ls="--", lw=1.2, label=txt)
-            ax2.legend(loc="upper right", fontsize=9)
-    ax2.set_ylabel("Area (ha)")
-    ax2.set_xlabel("Period")
-    ax2.set_xticks(p)
+            ax2.axhline(float(np.nanmax(pdf[col])), color="#c06000", ls=style, lw=1.2, label=txt)
+    ax2.set_ylim(0, max(float(np.nanmax(np.r_[area, 0.0])), 1e-9) * 1.12)
+    ax2.set_ylabel("Harvest area (net, ha)")
     ax2.grid(axis="y", alpha=0.3)
-    ax2.set_title("Area harvested", fontsize=11, loc="left")
-    paths.append(_save(fig, out / "harvest_flow.png"))
+    ax2.set_title("Area harvested (net of stream buffers)", fontsize=10.5, loc="left")
+    _period_axis(ax2, p, years[:, 0], calendar)
+    handles, labels = ax1.get_legend_handles_labels()
+    h2, l2 = ax2.get_legend_handles_labels()
+    fig.legend(handles + h2, labels + l2, loc="outside lower center", ncol=2, fontsize=9)
+    return _save(fig, path)
 
-    # 2. age classes at start and end -------------------------------------------------
-    per = _period_array(schedule["period"])
-    a_col = _area_column(schedule, None)
-    area_s = np.nan_to_num(np.asarray(schedule[a_col], dtype=float))
-    age_col = _get(settings, "fields.age_field", "age")
-    age_col = age_col if age_col in schedule.columns else "age"
-    age0 = np.nan_to_num(np.asarray(pd.to_numeric(schedule[age_col], errors="coerce"), dtype=float))
-    horizon = P * L
-    # Harvest at mid-period, regrowth from then on (docs/architecture.md, "Timing").
-    age_end = np.where(per > 0, horizon - (per - 0.5) * L, age0 + horizon)
-    width = 10.0 if max(age0.max(initial=0), age_end.max(initial=0)) <= 200 else 20.0
-    n_cls = int(np.ceil((max(age0.max(initial=0), age_end.max(initial=0)) + 1e-9) / width)) or 1
-    a0 = age_class_areas(age0, area_s, width, n_cls)
-    a1 = age_class_areas(age_end, area_s, width, n_cls)
-    x = np.arange(n_cls)
-    fig, ax = plt.subplots(figsize=(9.5, 5.2), layout="constrained")
-    ax.bar(x - 0.2, a0, width=0.4, color="#8a8a8a", label="Start of plan")
-    ax.bar(
-        x + 0.2,
-        a1,
-        width=0.4,
-        color=colours[-1] if P > 1 else "#3b528b",
-        edgecolor="#333333",
-        lw=0.5,
-        label=f"End of plan (after {horizon:g} years)",
-    )
+
+def _age_chart(schedule: Any, settings: Any, harvests: Any, id_col: str | None, path: Path) -> Path:
+    table = age_class_table(schedule, settings, harvests, id_col=id_col)
+    start_year = float(_rv.setting(settings, "horizon.start_year", 0) or 0)
+    times = table.attrs["times_yr"]
+    n = len(table)
+    x = np.arange(n)
+    fig, ax = plt.subplots(figsize=(max(9.0, 0.45 * n + 3.0), 5.6), layout="constrained")
+    names = ("Start of the plan", "Middle of the plan", "End of the plan")
+    cols = ("area_start_ha", "area_mid_ha", "area_end_ha")
+    for j, (name, col, colour) in enumerate(zip(names, cols, AGE_SERIES_COLOURS, strict=True)):
+        when = f"{start_year + times[j]:g}" if start_year else f"year {times[j]:g}"
+        ax.bar(
+            x + (j - 1) * 0.28,
+            table[col].to_numpy(float),
+            width=0.28,
+            color=colour,
+            edgecolor="#333333",
+            lw=0.4,
+            label=f"{name} ({when})",
+        )
     ax.set_xticks(
         x,
-        [f"{int(k * width)}–{int((k + 1) * width) - 1}" for k in x],
-        rotation=45 if n_cls > 10 else 0,
-        ha="right" if n_cls > 10 else "center",
+        table["age_class"].tolist(),
+        rotation=45 if n > 10 else 0,
+        ha="right" if n > 10 else "center",
+        fontsize=8.5,
     )
-    ax.set_xlabel("Age class (years)")
-    ax.set_ylabel("Area (ha)")
-    ax.set_title("Area by age class", fontsize=14)
+    width = float(_rv.setting(settings, "output.age_class_width_yr", 10.0))
+    min_age = float(_rv.setting(settings, "rules.min_age_yr", 0.0) or 0.0)
+    if 0 < min_age < n * width:
+        # Class k spans x = k - 0.5 .. k + 0.5, so age a sits at a / width - 0.5.
+        ax.axvline(
+            min_age / width - 0.5,
+            color="#8a2b4a",
+            ls="--",
+            lw=1.3,
+            label=f"Minimum harvest age ({min_age:g} years)",
+        )
+    ax.set_xlabel(f"Age class (years; classes of {width:g} years)")
+    ax.set_ylabel("Area (gross, ha)")
+    ax.set_ylim(0, max(float(table[list(cols)].to_numpy().max(initial=0.0)), 1e-9) * 1.1)
+    ax.set_title("Area by age class at the start, the middle and the end", fontsize=14)
     ax.grid(axis="y", alpha=0.3)
-    ax.legend(fontsize=9)
-    paths.append(_save(fig, out / "age_classes.png"))
+    fig.legend(loc="outside lower center", ncol=4, fontsize=9)
+    return _save(fig, path)
 
-    # 3. NPV by period -----------------------------------------------------------------
-    disc = pdf["discounted_value"].to_numpy(float)
-    fig, ax = plt.subplots(figsize=(8.5, 5.0), layout="constrained")
-    ax.bar(p, disc / 1000.0, color=bar_c, edgecolor="#333333", lw=0.6, label="Discounted net value")
-    if "gross_value" in pdf and np.isfinite(pdf["gross_value"].to_numpy(float)).any():
+
+def _value_chart(
+    pdf: Any,
+    p: np.ndarray,
+    years: np.ndarray,
+    calendar: bool,
+    bar_c: list[str],
+    schedule: Any,
+    info: Mapping[str, Any],
+    path: Path,
+) -> Path:
+    import pandas as pd
+
+    disc = np.nan_to_num(pdf["npv"].to_numpy(float))
+    ending = _rv.numeric(info.get("ending_value_npv"))
+    if not np.isfinite(ending) and "ending_value_npv" in schedule.columns:
+        ending = float(pd.to_numeric(schedule["ending_value_npv"], errors="coerce").sum())
+    has_end = bool(np.isfinite(ending))
+    fig, (ax, ax2) = plt.subplots(
+        2, 1, figsize=(9.0, 8.0), sharex=True, layout="constrained", height_ratios=(3, 2)
+    )
+    ax.bar(p, disc / 1000.0, color=bar_c, edgecolor="#333333", lw=0.6)
+    # Legend swatch in a neutral grey: the bars take the period colours of the map.
+    ax.bar(
+        [],
+        [],
+        color="#b5b5b5",
+        edgecolor="#333333",
+        lw=0.6,
+        label="NPV of the period's harvests (discounted, after costs; colours as on the map)",
+    )
+    xs = [float(x) for x in p]
+    steps = list(disc)
+    if has_end:
+        x_end = float(p.max(initial=0)) + 1.0
+        ax.bar(
+            [x_end],
+            [ending / 1000.0],
+            color=ENDING_VALUE_COLOUR,
+            edgecolor="#333333",
+            lw=0.6,
+            hatch="//",
+            label="Ending value of the forest left (discounted)",
+        )
+        xs.append(x_end)
+        steps.append(ending)
+    vals = np.asarray(steps, float) / 1000.0
+    lows, highs = [0.0, float(vals.min(initial=0.0))], [float(vals.max(initial=0.0))]
+    gross = pdf["gross_value"].to_numpy(float) if "gross_value" in pdf else np.full(len(p), np.nan)
+    if np.isfinite(gross).any():
         ax.plot(
             p,
-            pdf["gross_value"].to_numpy(float) / 1000.0,
+            gross / 1000.0,
             "o--",
             color="#555555",
-            label="Undiscounted net value",
+            ms=4,
+            label="Gross value, undiscounted (volume x price, before costs)",
         )
-    ax.set_xlabel("Period")
+        highs.append(float(np.nanmax(gross)) / 1000.0)
+        lows.append(float(np.nanmin(gross)) / 1000.0)
+    _fit_ylim(ax, min(lows), max(highs))
     ax.set_ylabel("Value (1000s)")
-    ax.set_xticks(p)
     ax.grid(axis="y", alpha=0.3)
-    ax3 = ax.twinx()
-    ax3.plot(
-        p,
-        np.cumsum(disc) / 1000.0,
-        "-",
-        color="#c06000",
-        lw=2,
-        marker="s",
-        ms=4,
-        label="Running total (NPV)",
-    )
-    ax3.set_ylabel("Running total (1000s)")
-    ax3.set_ylim(bottom=min(0.0, float(np.min(np.cumsum(disc))) / 1000.0))
+    ax.set_title("Value of each period's harvests", fontsize=10.5, loc="left")
+
+    total = np.cumsum(vals)
+    ax2.plot(xs, total, "-", color="#c06000", lw=2, marker="s", ms=4, label="NPV, running total")
+    t_hi = [float(total.max(initial=0.0))]
+    bound = _rv.numeric(info.get("best_bound"))
+    if np.isfinite(bound):
+        method = str(info.get("best_bound_method") or "").strip()
+        ax2.axhline(
+            bound / 1000.0,
+            color="#222222",
+            ls=":",
+            lw=1.4,
+            label=f"Best proven upper bound{f', {method}' if method else ''}: {bound:,.0f}",
+        )
+        t_hi.append(bound / 1000.0)
+    _fit_ylim(ax2, min(0.0, float(total.min(initial=0.0))), max(t_hi))
+    ax2.set_ylabel("Running total (1000s)")
+    ax2.grid(axis="y", alpha=0.3)
+    ax2.set_title("NPV added up over the periods, ending value last", fontsize=10.5, loc="left")
+    _period_axis(ax2, p, years[:, 0], calendar)
+    if has_end:
+        ticks = [*ax2.get_xticks(), xs[-1]]
+        labels = [t.get_text() for t in ax2.get_xticklabels()]
+        end_year = years[-1, 1] if len(years) else 0.0
+        ax2.set_xticks(ticks, [*labels, f"End\n{end_year:g}"], fontsize=8)
     h1, l1 = ax.get_legend_handles_labels()
-    h2, l2 = ax3.get_legend_handles_labels()
-    ax.set_ylim(
-        min(0.0, float(np.nanmin(disc)) / 1000.0), max(1e-9, float(np.nanmax(disc))) / 1000.0 * 1.3
-    )
-    ax3.set_ylim(top=max(1e-9, float(np.max(np.cumsum(disc)))) / 1000.0 * 1.15)
-    ax.legend(h1 + h2, l1 + l2, loc="upper center", ncol=3, fontsize=9)
-    ax.set_title(f"Net present value by period (total {np.sum(disc):,.0f})", fontsize=14)
-    paths.append(_save(fig, out / "npv_by_period.png"))
-    return paths
+    h2, l2 = ax2.get_legend_handles_labels()
+    fig.legend(h1 + h2, l1 + l2, loc="outside lower center", ncol=2, fontsize=9)
+    fig.suptitle(f"Net present value by period (plan NPV {float(np.sum(steps)):,.0f})", fontsize=14)
+    return _save(fig, path)
+
+
+def _fit_ylim(ax: Any, low: float, high: float) -> None:
+    """Y range holding ``low .. high`` with head room, so no line or marker touches the frame."""
+    span = max(high - low, 1e-9)
+    ax.set_ylim(low - (0.06 * span if low < 0 else 0.0), high + 0.1 * span)
 
 
 # --- scenario charts ---

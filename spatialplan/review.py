@@ -2,8 +2,10 @@
 
 ``spatialplan plan`` writes the map, charts and report right after the GeoPackage; this
 module writes them again later from the file (another basemap, a lost report, a plan
-copied to another machine). It reads the five plan layers and the ``run`` table and hands
-them to :func:`spatialplan.report.write_review_files`, the same writer ``plan`` uses.
+copied to another machine). It reads the plan layers, the ``harvests`` table when the plan
+has one (one row per harvest) and the ``run`` table, and hands them to
+:func:`spatialplan.report.write_review_files`, the same writer ``plan`` uses. Plans written
+before the estate model (other column and run-key names) are read too.
 """
 
 from __future__ import annotations
@@ -11,12 +13,17 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
+import pandas as pd
+
 from spatialplan.errors import InputError, OutputError
 
-__all__ = ["PLAN_LAYERS", "read_plan_layers", "render_review_files"]
+__all__ = ["OPTIONAL_LAYERS", "PLAN_LAYERS", "read_plan_layers", "render_review_files"]
 
 # Layers and tables of a plan GeoPackage that the review files are drawn from.
 PLAN_LAYERS = ("schedule", "openings", "periods", "strata", "run")
+# Tables read when present: ``harvests`` (one row per harvest; plans before the estate
+# model and plans that cut each stand at most once may lack it).
+OPTIONAL_LAYERS = ("harvests",)
 
 
 def read_plan_layers(
@@ -30,12 +37,14 @@ def read_plan_layers(
         A GeoPackage written by ``spatialplan plan``.
     names
         Layers and attribute tables to read (default: all but ``run``, which
-        :func:`spatialplan.runtable.read_run_table` reads).
+        :func:`spatialplan.runtable.read_run_table` reads). The :data:`OPTIONAL_LAYERS`
+        present in the file are read too.
 
     Returns
     -------
     dict
-        Name to GeoDataFrame (layers) or DataFrame (attribute tables).
+        Name to GeoDataFrame (layers) or DataFrame (attribute tables); an optional table
+        the file lacks is absent.
 
     Raises
     ------
@@ -60,7 +69,11 @@ def read_plan_layers(
             "(write one with `spatialplan plan`)"
         )
         raise InputError(msg)
-    return {n: pyogrio.read_dataframe(g, layer=n) for n in names}
+    frames = {n: pyogrio.read_dataframe(g, layer=n) for n in names}
+    for n in OPTIONAL_LAYERS:
+        if n in present and n not in frames:
+            frames[n] = pd.DataFrame(pyogrio.read_dataframe(g, layer=n, read_geometry=False))
+    return frames
 
 
 def render_review_files(
@@ -114,6 +127,6 @@ def render_review_files(
         raise OutputError(msg)
     return write_review_files(
         g, frames["schedule"], frames["openings"], frames["periods"], frames["strata"], run,
-        settings, out_html=paths["map"], basemap=basemap or settings.output.basemap,
-        id_col=settings.fields.id_field,
+        settings, harvests=frames.get("harvests"), out_html=paths["map"],
+        basemap=basemap or settings.output.basemap, id_col=settings.fields.id_field,
     )  # fmt: skip

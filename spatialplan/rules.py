@@ -20,7 +20,13 @@ import numpy as np
 from spatialplan.errors import SettingsError
 from spatialplan.settings import Settings
 
-__all__ = ["eligible_matrix", "green_up_periods_for_stands", "initially_open", "rule_summary"]
+__all__ = [
+    "eligible_matrix",
+    "green_up_periods_for_stands",
+    "initially_open",
+    "rule_summary",
+    "rules_in_force",
+]
 
 #: ages compare with this slack (years) so 37.5 + 2.5 >= 40 holds despite rounding
 AGE_EPS_YR = 1e-9
@@ -204,43 +210,92 @@ def eligible_matrix(
     return elig
 
 
-def rule_summary(settings: Settings) -> list[str]:
-    """The rules in force, one plain sentence each."""
+def rules_in_force(settings: Settings) -> list[tuple[str, str]]:
+    """The rules in force as ``(key, sentence)`` pairs, in the order a report lists them.
+
+    Keys: ``horizon``, ``max_opening``, ``green_up``, ``unit_restriction``, ``min_age``,
+    ``reserves``, ``operability`` (terrain used), ``max_harvests``, ``old_forest``,
+    ``flow_tolerance``, ``non_declining``, ``period_volume_min_m3``,
+    ``period_volume_max_m3``, ``period_area_min_ha``, ``period_area_max_ha``,
+    ``ending_value``, ``ending_volume``, ``ending_mean_age``, ``adjacency``; a rule that is
+    off is left out (the opening limit says so when off).
+
+    Examples
+    --------
+    >>> s = Settings().with_overrides({"rules.max_opening_ha": 40, "rules.min_age_yr": 35})
+    >>> dict(rules_in_force(s))["min_age"]
+    'minimum harvest age 35 years at mid-period'
+    """
     r, hz, adj = settings.rules, settings.horizon, settings.adjacency
-    out = [f"{hz.periods} periods of {hz.period_length_yr:g} years; harvests at mid-period"]
+    out: list[tuple[str, str]] = []
+    span = ""
+    if hz.start_year:
+        span = f" ({hz.start_year}–{hz.start_year + hz.periods * hz.period_length_yr:g})"
+    out.append(
+        (
+            "horizon",
+            f"{hz.periods} periods of {hz.period_length_yr:g} years{span}; harvests at mid-period",
+        )
+    )
     if r.max_opening_ha is not None:
-        out.append(f"maximum opening {r.max_opening_ha:g} ha (connected open stands)")
+        out.append(
+            ("max_opening", f"maximum opening {r.max_opening_ha:g} ha (connected open stands)")
+        )
     else:
-        out.append("no maximum opening size")
+        out.append(("max_opening", "no maximum opening size"))
     if r.green_up_height_m is not None:
-        out.append(f"green-up when regeneration reaches {r.green_up_height_m:g} m (per stratum)")
+        g_text = f"green-up when regeneration reaches {r.green_up_height_m:g} m (per stratum)"
     elif r.green_up_years is not None:
         g = math.ceil(r.green_up_years / hz.period_length_yr - 1e-12)
-        out.append(f"green-up {r.green_up_years:g} years, rounded up to {g} period(s)")
+        g_text = f"green-up {r.green_up_years:g} years, rounded up to {g} period(s)"
     else:
-        out.append(
+        g_text = (
             f"green-up {r.green_up_periods} period(s) "
             f"({r.green_up_periods * hz.period_length_yr:g} years)"
         )
+    out.append(("green_up", g_text))
     if r.unit_restriction:
-        out.append("unit restriction: no two adjacent stands open in the same period")
-    out.append(f"minimum harvest age {r.min_age_yr:g} years at mid-period")
-    out.append("reserves are never harvested")
+        out.append(
+            ("unit_restriction", "unit restriction: no two adjacent stands open in the same period")
+        )
+    out.append(("min_age", f"minimum harvest age {r.min_age_yr:g} years at mid-period"))
+    out.append(("reserves", "reserves are never harvested"))
+    if settings.terrain.dem:
+        steepest = max((c.max_slope_pct for c in settings.terrain.slope_classes), default=0.0)
+        out.append(
+            (
+                "operability",
+                "inoperable stands are never harvested (more than "
+                f"{settings.terrain.max_inoperable_share:.0%} of the area steeper than "
+                f"{steepest:g} % slope)",
+            )
+        )
     out.append(
-        "at most one harvest per stand"
-        if r.max_harvests == 1
-        else "a stand may be harvested again once regrown to the minimum age"
-        + ("" if r.max_harvests is None else f", at most {r.max_harvests} times")
+        (
+            "max_harvests",
+            "at most one harvest per stand"
+            if r.max_harvests == 1
+            else "a stand may be harvested again once regrown to the minimum age"
+            + ("" if r.max_harvests is None else f", at most {r.max_harvests} times"),
+        )
     )
     if r.old_forest_age_yr is not None and r.old_forest_min_share is not None:
         out.append(
-            f"in every period at least {r.old_forest_min_share:.0%} of the forest is "
-            f"{r.old_forest_age_yr:g} years or older"
+            (
+                "old_forest",
+                f"in every period at least {r.old_forest_min_share:.0%} of the forest is "
+                f"{r.old_forest_age_yr:g} years or older",
+            )
         )
     if r.flow_tolerance is not None:
-        out.append(f"even flow: volume changes by at most {r.flow_tolerance:.0%} between periods")
+        out.append(
+            (
+                "flow_tolerance",
+                f"even flow: volume changes by at most {r.flow_tolerance:.0%} between periods",
+            )
+        )
     if r.non_declining:
-        out.append("non-declining volume from period to period")
+        out.append(("non_declining", "non-declining volume from period to period"))
     for key, text, unit in (
         ("period_volume_min_m3", "volume per period at least", "m3"),
         ("period_volume_max_m3", "volume per period at most", "m3"),
@@ -249,16 +304,41 @@ def rule_summary(settings: Settings) -> list[str]:
     ):
         v = getattr(r, key)
         if v is not None:
-            out.append(f"{text} {v:g} {unit}")
+            out.append((key, f"{text} {v:g} {unit}"))
+    out.append(("ending_value", _ENDING_VALUE_TEXT.get(settings.economics.ending_value, "")))
     if r.ending_volume_fraction is not None:
         out.append(
-            f"standing volume at the end at least {r.ending_volume_fraction:.0%} of the start"
+            (
+                "ending_volume",
+                f"standing volume at the end at least {r.ending_volume_fraction:.0%} of the start",
+            )
         )
     if r.ending_mean_age_yr is not None:
-        out.append(f"mean age at the end at least {r.ending_mean_age_yr:g} years")
+        out.append(
+            ("ending_mean_age", f"mean age at the end at least {r.ending_mean_age_yr:g} years")
+        )
     corner = "; corner contacts count" if adj.corner_adjacency else ""
     out.append(
-        f"stands are adjacent when they share more than {adj.min_shared_edge_m:g} m of "
-        f"boundary (gaps up to {adj.digitising_tolerance_m:g} m closed){corner}"
+        (
+            "adjacency",
+            f"stands are adjacent when they share more than {adj.min_shared_edge_m:g} m of "
+            f"boundary (gaps up to {adj.digitising_tolerance_m:g} m closed){corner}",
+        )
     )
     return out
+
+
+#: How the forest left at the end is valued, by ``economics.ending_value``.
+_ENDING_VALUE_TEXT = {
+    "faustmann": "the forest left at the end is valued by Faustmann: the standing crop cut "
+    "at its best future age, then Faustmann rotations on the land for ever, discounted to "
+    "the start",
+    "standing": "the forest left at the end is valued as the standing crop's harvest value, "
+    "discounted to the start (the land itself is not valued)",
+    "none": "the forest left at the end is not valued",
+}
+
+
+def rule_summary(settings: Settings) -> list[str]:
+    """The rules in force, one plain sentence each (the sentences of :func:`rules_in_force`)."""
+    return [text for _key, text in rules_in_force(settings)]

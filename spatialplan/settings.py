@@ -272,7 +272,8 @@ class OutputSettings:
     raster_out: str | None = None
     raster_cell_m: float = field(default=10.0, metadata=_rng(0, None, lo_open=True))
     write_back: bool = False
-    # Width of the age classes in ``check`` and the charts (years).
+    # Width of the age classes in the charts, the report and `check` (years; 10 is the
+    # usual class width for age-class tables, common practice, no source).
     age_class_width_yr: float = field(default=10.0, metadata=_rng(0, 200, lo_open=True))
 
 

@@ -30,6 +30,8 @@ from matplotlib.colors import to_rgb
 from matplotlib.image import imread
 
 from spatialplan import mapping, outputs
+from spatialplan.report import CAUTIONS, rules_achieved, write_review_files
+from tests.plan_frames import estate_plan
 from tests.test_outputs import P, make_plan
 
 pytestmark = pytest.mark.browser
@@ -176,6 +178,18 @@ class Browser:
         res = self.call("Page.captureScreenshot", {"format": "png"}, session=self.session)
         path.write_bytes(base64.b64decode(res["result"]["data"]))
 
+    def screenshot_page(self, path: Path, width: int = 1200) -> int:
+        """The whole page (not only the window) as PNG; returns the page height in px."""
+        height = int(self.js("document.documentElement.scrollHeight"))
+        res = self.call(
+            "Page.captureScreenshot",
+            {"format": "png", "captureBeyondViewport": True,
+             "clip": {"x": 0, "y": 0, "width": width, "height": height, "scale": 1}},
+            session=self.session,
+        )  # fmt: skip
+        path.write_bytes(base64.b64decode(res["result"]["data"]))
+        return height
+
     def page_requests(self) -> list[str]:
         return [e["params"]["request"]["url"] for e in self.events
                 if e.get("method") == "Network.requestWillBeSent"
@@ -264,3 +278,59 @@ def test_request_check_sees_web_request(tmp_path, browser):
     page.write_text(f'<html><body><img src="{web}"></body></html>', encoding="utf-8")
     browser.open(page.as_uri())
     assert web in browser.page_requests()
+
+
+def _not_blank(img: np.ndarray) -> None:
+    rgb = img[:, :, :3].reshape(-1, 3)
+    assert rgb.std() > 0.05  # not one flat colour
+    assert len(np.unique((rgb * 255).round().astype(int), axis=0)) > 20  # many colours
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium not installed")
+def test_review_files_in_a_browser(tmp_path, browser):
+    """Map and report of a plan that cuts stands twice, drawn and photographed offline."""
+    ep = estate_plan()
+    done = write_review_files(
+        tmp_path / "estate.gpkg", ep.schedule, ep.openings, ep.periods, ep.strata,
+        ep.run_info, ep.settings, harvests=ep.harvests,
+    )  # fmt: skip
+    browser.open(done["map"].as_uri())
+    cut = set(ep.harvests["stand_id"])
+    never = int((~ep.schedule["stand_id"].isin(cut)).sum())
+    n_paths = browser.js("document.querySelectorAll('.leaflet-overlay-pane path.sp-stand').length")
+    assert n_paths == never + len(ep.harvests)  # every harvest drawn, stands cut twice twice
+    inop = int(((ep.schedule["operable"] == 0) & (ep.schedule["reserve"] == 0)).sum())
+    assert browser.js("document.querySelectorAll('path.sp-inoperable').length") == inop
+    fills = browser.js(
+        "[...document.querySelectorAll('path.sp-inoperable')].map(p => p.getAttribute('fill'))"
+    )
+    assert set(fills) == {"url(#sp-hatch-inoperable)"}
+    heads = browser.js("[...document.querySelectorAll('.sp-group')].map(d => d.textContent)")
+    assert heads == ["Not harvested (stands, gross area)", "Harvested in period (stands, net area)",
+                     "Openings of each period (off at first)"]  # fmt: skip
+    cautions = browser.js("document.getElementById('sp-cautions').textContent")
+    assert all(c in cautions for c in CAUTIONS)
+    link = browser.js("document.querySelector('#sp-legend a').href")
+    assert link == done["report"].as_uri()
+    shot = tmp_path / "map.png"
+    browser.screenshot(shot)
+    img = imread(shot)
+    assert img.shape[:2] == (900, 1200)  # the window size set in Browser
+    _not_blank(img)
+
+    browser.open(done["report"].as_uri())
+    n_rules = browser.js("document.querySelectorAll('table.rules tbody tr').length")
+    assert n_rules == len(rules_achieved(ep.settings, ep.schedule, ep.periods, ep.run_info,
+                                         harvests=ep.harvests))  # fmt: skip
+    imgs = browser.js("[...document.images].map(i => i.naturalWidth > 0)")
+    assert imgs == [True, True, True]  # the three charts decode
+    # Nothing is wider than the window: the page reads without sideways scrolling.
+    assert browser.js("document.documentElement.scrollWidth") <= 1200
+    page = tmp_path / "report.png"
+    height = browser.screenshot_page(page)
+    img = imread(page)
+    assert img.shape[:2] == (height, 1200)
+    assert height > 900  # the whole page, not only the window
+    _not_blank(img)
+    requests = browser.page_requests()
+    assert all(_local(u) for u in requests), [u for u in requests if not _local(u)]

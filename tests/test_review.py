@@ -10,6 +10,8 @@ from spatialplan.errors import InputError, OutputError
 from spatialplan.outputs import write_plan_geopackage
 from spatialplan.review import read_plan_layers, render_review_files
 from spatialplan.runtable import run_table
+from tests.plan_frames import estate_plan
+from tests.test_mapping import overlay_layers
 from tests.test_outputs import make_layers
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
@@ -72,3 +74,28 @@ def test_unreadable_recorded_settings_name_the_file(tmp_path: Path) -> None:
     with pytest.raises(InputError, match=r"plan.gpkg: run.settings_json is not valid JSON"):
         render_review_files(gpkg)
     assert not (tmp_path / "plan.map.html").exists()
+
+
+def test_render_reads_the_harvests_table(tmp_path: Path) -> None:
+    ep = estate_plan()
+    layers = {
+        "schedule": ep.schedule,
+        "harvests": ep.harvests,
+        "openings": ep.openings,
+        "periods": ep.periods,
+        "strata": ep.strata,
+        "run": run_table(ep.run_info),
+    }
+    gpkg = tmp_path / "estate.gpkg"
+    write_plan_geopackage(gpkg, layers)
+    frames = read_plan_layers(gpkg)
+    assert len(frames["harvests"]) == len(ep.harvests)
+    done = render_review_files(gpkg)
+    # Every harvest is on the map: a stand cut twice is in two period layers.
+    feats = overlay_layers(done["map"].read_text(encoding="utf-8"))
+    n = sum(len(v["features"]) for k, v in feats.items() if k.startswith("Period "))
+    assert n == len(ep.harvests) > ep.harvests["stand_id"].nunique()
+    page = done["report"].read_text(encoding="utf-8")
+    assert f"{len(ep.harvests)} harvests on {ep.harvests['stand_id'].nunique()} of" in page
+    # A plan without a harvests table (old, or one cut per stand) has none in the frames.
+    assert "harvests" not in read_plan_layers(_plan(tmp_path, basemap=None))
