@@ -895,65 +895,18 @@ def write_plan(
 
 def _write_review(out_path: Path, layers: dict[str, Any], s: Settings) -> dict[str, Any]:
     """The map, report and charts of a plan (:func:`spatialplan.report.write_review_files`)."""
-    import inspect
-
     from spatialplan.report import write_review_files
 
     run = layers["run"]
-    info = dict(zip(run["key"], run["value"], strict=True))
-    frames = {k: layers[k] for k in ("schedule", "openings", "periods", "strata")}
-    kwargs: dict[str, Any] = {}
-    if "harvests" in inspect.signature(write_review_files).parameters:
-        kwargs["harvests"] = layers["harvests"]
-    else:
-        # A review writer that predates the harvests table reads the columns by their
-        # names before the estate model; give it copies under those names as well.
-        frames, info = _with_earlier_names(frames, info)
     return write_review_files(
         out_path,
-        frames["schedule"],
-        frames["openings"],
-        frames["periods"],
-        frames["strata"],
-        info,
+        layers["schedule"],
+        layers["openings"],
+        layers["periods"],
+        layers["strata"],
+        dict(zip(run["key"], run["value"], strict=True)),
         s,
+        harvests=layers["harvests"],
         basemap=s.output.basemap,
         id_col=s.fields.id_field,
-        **kwargs,
     )
-
-
-#: (layer, column) -> the column's name before the estate model, for a review writer
-#: that still reads that name (see :func:`_write_review`).
-_EARLIER_NAMES = {
-    ("schedule", "age_at_harvest_yr"): "age_at_harvest",
-    ("schedule", "harvest_mid_year"): "harvest_year",
-    ("schedule", "npv"): "value",
-    ("openings", "gross_area_ha"): "area_ha",
-    ("openings", "new_harvest_gross_ha"): "new_harvest_ha",
-    ("periods", "harvest_net_area_ha"): "harvest_area_ha",
-    ("periods", "npv"): "discounted_value",
-    ("strata", "harvest_net_area_ha"): "harvest_area_ha",
-    ("run", "bound_aspatial_lp"): "lp_bound",
-    ("run", "bound_cpsat"): "cpsat_bound",
-}
-
-
-def _with_earlier_names(
-    frames: dict[str, Any], info: dict[str, str]
-) -> tuple[dict[str, Any], dict[str, str]]:
-    out = {}
-    for name, frame in frames.items():
-        copy = frame.copy()
-        for (layer, col), earlier in _EARLIER_NAMES.items():
-            if layer == name and col in copy.columns and earlier not in copy.columns:
-                copy[earlier] = copy[col]
-        out[name] = copy
-    if "mid_year" in out["periods"].columns:  # years from the start, as before
-        p = out["periods"]
-        p["mid_yr"] = p["mid_year"] - p["start_year"].iloc[0] if len(p) else p["mid_year"]
-    info = dict(info)
-    for (layer, col), earlier in _EARLIER_NAMES.items():
-        if layer == "run" and col in info:
-            info.setdefault(earlier, info[col])
-    return out, info
