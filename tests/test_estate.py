@@ -298,3 +298,53 @@ def test_one_harvest_and_no_ending_value_is_the_single_harvest_model(tmp_path: P
     assert float(run["npv"]) == pytest.approx(ref.npv, abs=0.01)
     periods = sched["period"].fillna(0).astype(int).to_numpy()
     np.testing.assert_array_equal(periods, ref.period)
+
+
+# ---- the forest by period: old-forest share and standing volume ----------------------------
+def test_old_forest_share_and_standing_volume_by_period(tmp_path: Path) -> None:
+    g = voronoi_forest(30, seed=11, mean_area_ha=6.0)
+    stands, yields = tmp_path / "s.gpkg", tmp_path / "y.csv"
+    g.to_file(stands, layer="stands")
+    table = synthetic_yield_table()
+    table.to_csv(yields, index=False)
+    P, L = 6, 10.0
+    s = settings_from_dict(
+        {
+            "horizon": {"periods": P, "period_length_yr": L},
+            "rules": {"min_age_yr": 30.0, "max_opening_ha": 30.0, "flow_tolerance": None,
+                      "old_forest_age_yr": 70.0, "old_forest_min_share": 0.2},
+            "economics": {"price_per_m3": 40.0, "discount_rate": 0.05},
+            "solver": {"time_limit_s": 5.0, "workers": 1, "seed": 2},
+        }
+    )  # fmt: skip
+    inputs = pipeline.load_inputs(stands, yields, s)
+    bundle, result = pipeline.solve_plan(inputs)
+    layers, report = pipeline.plan_layers(inputs, bundle, result)
+    assert report.ok, [v.line() for v in report.violations]
+    periods, sched, harvests = layers["periods"], layers["schedule"], layers["harvests"]
+    assert "old_forest" in report.rules_checked
+    # Ages at every mid-period from the harvests table alone: before the first cut
+    # age + (p - 0.5) L, from a cut in q on (p - q) L (regrowth from age 0, common practice,
+    # no source); volumes by numpy.interp on the table with (0, 0) in front.
+    ids = sched["stand_id"].tolist()
+    age = sched["age"].to_numpy(float)[:, None] + (np.arange(1, P + 1) - 0.5)[None, :] * L
+    for sid, q in zip(harvests["stand_id"], harvests["period"], strict=True):
+        i = ids.index(sid)
+        age[i, q - 1 :] = (np.arange(q, P + 1) - q) * L
+    gross = sched["area_ha"].to_numpy(float)
+    old = (gross[:, None] * (age >= 70.0)).sum(axis=0) / gross.sum()
+    np.testing.assert_allclose(periods["old_forest_share"], old, rtol=1e-12)
+    np.testing.assert_allclose(report.periods["old_forest_share"], old, rtol=1e-12)
+    assert (old >= 0.2 - 1e-9).all()
+    volume = np.zeros(P)
+    for i, stratum in enumerate(sched["stratum"]):
+        # the yield table rows of the stratum
+        curve = table[table["stratum"] == stratum]
+        ages = np.r_[0.0, curve["age"].to_numpy(float)]
+        vols = np.r_[0.0, curve["volume"].to_numpy(float)]
+        volume += np.interp(np.maximum(age[i], 0.0), ages, vols) * sched["net_area_ha"].iloc[i]
+    np.testing.assert_allclose(periods["standing_volume_m3"], volume, rtol=1e-9)
+    # every harvest counts in its period, and the periods add up with the ending value
+    assert periods["stands_harvested"].sum() == len(harvests)
+    ending = float(layers["run"].set_index("key").loc["ending_value_npv", "value"])
+    assert periods["npv"].sum() + ending == pytest.approx(result.npv, rel=1e-6)

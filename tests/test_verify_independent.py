@@ -454,3 +454,32 @@ def test_regeneration_delay_and_stratum_map_are_read_when_set() -> None:
     # with 28 years' delay the second crop is only 50 - 28 = 22 years old
     rep = verify_schedule(sched, with_delay(28.0), YIELDS, harvests=harvests)
     assert ("min_age", 6, ("S01",)) in [(v.rule, v.period, v.stand_ids) for v in rep.violations]
+
+
+def test_old_forest_retention_by_hand() -> None:
+    # Three 4 ha squares, ages 90, 60, 30 at the start; periods of 10 years; at least 30 %
+    # of the area (3.6 ha) 80 years or older at every mid-period. Cutting S01 in period 1
+    # leaves no old stand until S02 reaches 60 + 25 = 85 in period 3 (ages at mid-period,
+    # common practice, no source): periods 1 and 2 break the rule.
+    sched = grid_stands(3, 1)
+    sched["age"] = [90.0, 60.0, 30.0]
+    sched["stratum"] = "S1"
+    sched["unit"] = ["north", "south", "south"]
+    rules = {"flow_tolerance": None, "old_forest_age_yr": 80.0, "old_forest_min_share": 0.3}
+    s = settings_from_dict({"horizon": {"periods": 4, "period_length_yr": 10.0}, "rules": rules})
+    sched["period"] = pd.array([1, None, None], dtype="Int64")
+    rep = verify_schedule(sched, s, YIELDS)
+    assert [(v.rule, v.period) for v in rep.violations] == [("old_forest", 1), ("old_forest", 2)]
+    assert rep.violations[0].value == 0.0 and rep.violations[0].limit == pytest.approx(3.6)
+    np.testing.assert_allclose(rep.periods["old_forest_share"], [0.0, 0.0, 1 / 3, 1 / 3])
+    sched["period"] = pd.array([None, 1, None], dtype="Int64")  # the old stand kept
+    assert verify_schedule(sched, s, YIELDS).ok
+    # per management unit: "south" (S02 cut in period 1, S03 at most 30 + 35 = 65 years)
+    # has no old stand in any period; "north" keeps S01
+    by_unit = settings_from_dict(
+        {"fields": {"unit_field": "unit"}, "horizon": {"periods": 4, "period_length_yr": 10.0},
+         "rules": rules}
+    )  # fmt: skip
+    rep = verify_schedule(sched, by_unit, YIELDS)
+    assert [(v.rule, v.period) for v in rep.violations] == [("old_forest", p) for p in (1, 2, 3, 4)]
+    assert all("unit south" in v.message for v in rep.violations)
