@@ -391,9 +391,8 @@ def chosen_prescriptions(problem: PlanProblem, plan: Any) -> np.ndarray:
         plan = k
     k = np.asarray(plan, dtype=np.int64)
     n = problem.n_stands
-    if k.shape != (n,) or (
-        n and (k.min() < 0 or np.any(rx.stand_of[np.clip(k, 0, None)] != np.arange(n)))
-    ):
+    inside = k.shape == (n,) and (not n or (k.min() >= 0 and k.max() < rx.n_prescriptions))
+    if not inside or np.any(rx.stand_of[k] != np.arange(n)):
         msg = f"a plan needs one prescription of each stand ({n} stands)"
         raise ValueError(msg)
     return k

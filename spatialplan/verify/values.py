@@ -240,19 +240,18 @@ def ending_value_per_ha(
         value = _net_stumpage(np.asarray(strata, dtype=object), e, cost, curves, econ)
         return np.full(len(e), np.nan) if value is None else value
     land = land_value(next_strata, cost, curves, settings)
-    rows = pd.DataFrame(
-        {"s": np.asarray(strata, dtype=object), "e": e, "h": np.asarray(cost, float), "v": land}
-    )
-    unique = rows.drop_duplicates(ignore_index=True)
+    rows = pd.DataFrame({"s": np.asarray(strata, dtype=object), "h": np.asarray(cost, float)})
     j = np.arange(LAND_VALUE_MAX_AGE_YR + 1, dtype=float)
-    out = np.full(len(unique), np.nan)
-    for u in range(len(unique)):  # a few hundred distinct (stratum, age, cost) at most
-        lab, age, h, lev = unique.loc[u, ["s", "e", "h", "v"]]
-        ages = max(float(age), 0.0) + j
-        value = _net_stumpage(np.full(len(j), lab, dtype=object), ages, np.full(len(j), h),
-                              curves, econ)  # fmt: skip
-        if value is None or not np.isfinite(lev):
+    out = np.full(len(e), np.nan)
+    for (lab, h), members in rows.groupby(["s", "h"]).groups.items():
+        idx = np.asarray(members)
+        ages = np.maximum(e[idx], 0.0)[:, None] + j[None, :]  # (stands, future ages)
+        value = _net_stumpage(np.full(ages.size, lab, dtype=object), ages.ravel(),
+                              np.full(ages.size, h), curves, econ)  # fmt: skip
+        if value is None:
             continue
-        out[u] = float(np.nanmax((value + lev) * discount(ages - float(age), econ.discount_rate)))
-    key = rows.merge(unique.reset_index(), on=["s", "e", "h", "v"], how="left")["index"]
-    return out[key.to_numpy(dtype=np.int64)]
+        worth = (value.reshape(ages.shape) + land[idx, None]) * discount(
+            ages - e[idx, None], econ.discount_rate
+        )
+        out[idx] = np.max(worth, axis=1)
+    return out
