@@ -1,4 +1,4 @@
-"""Plain-data helpers shared by the review outputs (charts, map, report, re-render).
+"""Plain-data helpers shared by the review outputs (charts, map, report, assessment, re-render).
 
 The review outputs read what the plan GeoPackage holds: the ``schedule`` layer (one row
 per stand), the ``harvests`` table (one row per harvest), the ``periods`` table, the
@@ -23,20 +23,41 @@ import pandas as pd
 from spatialplan.errors import OutputError
 
 __all__ = [
+    "CAUTIONS",
     "INOPERABLE_SYSTEM",
     "OLD_NAMES",
+    "Horizon",
     "ages_at",
+    "column",
     "current_names",
     "current_run_info",
+    "fmt_number",
+    "fmt_percent",
+    "fmt_signed",
     "harvest_events",
     "inoperable_mask",
     "numeric",
     "period_array",
     "period_years",
     "setting",
+    "verdict_parts",
     "verdict_word",
+    "volume_changes",
     "years_text",
 ]
+
+#: Cautions shown on the map and in the report.
+CAUTIONS: tuple[str, ...] = (
+    "This plan is a planning aid. It does not replace field checks, the forest practice "
+    "law and permits that apply where the forest is, or the judgement of a licensed "
+    "or registered forester.",
+    "Yields, prices, costs and growth are the inputs' estimates; the plan is only as good "
+    "as they are.",
+    "Slope, operability and net-area outputs are estimates from the elevation model and "
+    "stream data given; check them on the ground before laying out a harvest.",
+    "Openings are judged from the stand polygons and the adjacency rule chosen; local "
+    "rules may measure openings or green-up differently.",
+)
 
 #: Old column (or run key) -> current name, by table. Read-side only: nothing is written
 #: under an old name.
@@ -298,3 +319,97 @@ def verdict_word(verdict: Any) -> str:
     if head.startswith("fail"):
         return "failed"
     return ""
+
+
+def fmt_number(v: Any, digits: int) -> str:
+    """A table cell: ``1,234.5``, ``yes``/``no`` for flags, ``–`` when not finite."""
+    if isinstance(v, bool | np.bool_):
+        return "yes" if v else "no"
+    if isinstance(v, str):
+        return v
+    try:
+        x = float(v)
+    except (TypeError, ValueError):
+        return "" if v is None else str(v)
+    if not np.isfinite(x):
+        return "–"
+    return f"{x:,.{digits}f}"
+
+
+def fmt_percent(x: float, digits: int = 1, sign: bool = False) -> str:
+    """A share as ``12.5 %`` (``+12.5 %`` with ``sign``), ``–`` when not finite."""
+    if not np.isfinite(x):
+        return "–"
+    return fmt_signed(100.0 * x, digits) + " %" if sign else f"{100.0 * x:.{digits}f} %"
+
+
+def fmt_signed(x: float, digits: int) -> str:
+    """``+4.1`` / ``−9.8`` (a true minus sign), ``–`` when not finite."""
+    if not np.isfinite(x):
+        return "–"
+    return f"{x:+,.{digits}f}".replace("-", "−")
+
+
+class Horizon:
+    """Periods and their years, as the report states them."""
+
+    def __init__(self, settings: Any, periods_df: pd.DataFrame | None) -> None:
+        self.P = int(setting(settings, "horizon.periods", 0) or 0)
+        if not self.P and periods_df is not None and len(periods_df):
+            self.P = int(pd.to_numeric(periods_df["period"]).max())
+        self.L = float(setting(settings, "horizon.period_length_yr", 5.0))
+        self.start_year = float(setting(settings, "horizon.start_year", 0) or 0)
+        self.calendar = self.start_year != 0
+        self.years = period_years(self.P, self.L, self.start_year)
+        if periods_df is not None and {"start_year", "end_year"} <= set(periods_df.columns):
+            got = periods_df.sort_values("period")[["start_year", "end_year"]].to_numpy(float)
+            if got.shape == self.years.shape:
+                self.years = got
+
+    def text(self, p: int) -> str:
+        """``2025–2030`` for period ``p`` (1-based)."""
+        if not 1 <= p <= self.P:
+            return "–"
+        a, b = self.years[p - 1]
+        return years_text(a, b, self.calendar)
+
+    def span(self) -> str:
+        """The whole horizon, ``2025–2075``."""
+        if not self.P:
+            return "–"
+        return years_text(self.years[0, 0], self.years[-1, 1], self.calendar)
+
+    def at(self, t_yr: float) -> str:
+        """A time in years from the start as a calendar year (or ``year t``)."""
+        return f"{self.start_year + t_yr:g}" if self.calendar else f"year {t_yr:g}"
+
+    def period(self, p: int) -> str:
+        """``period 3 (2035–2040)``."""
+        return f"period {p} ({self.text(p)})"
+
+
+def column(frame: pd.DataFrame | None, name: str) -> np.ndarray:
+    """A column as floats (NaN where missing or not a number; all NaN when absent)."""
+    if frame is None or name not in frame.columns:
+        return np.full(0 if frame is None else len(frame), np.nan)
+    return pd.to_numeric(frame[name], errors="coerce").to_numpy(float)
+
+
+def verdict_parts(verdict: Any) -> tuple[str, str]:
+    """(``passed``/``failed``/"", the rest of the recorded verdict)."""
+    text = str(verdict or "").strip()
+    word = verdict_word(text)
+    if word:
+        rest = text.split(":", 1)[1].strip() if ":" in text else ""
+        return word, rest
+    return "", text
+
+
+def volume_changes(vol: np.ndarray) -> np.ndarray:
+    """Relative change of each period's volume from the period before (NaN for the first)."""
+    out = np.full(len(vol), np.nan)
+    if len(vol) > 1:
+        prev, cur = vol[:-1], vol[1:]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[1:] = np.where(prev > 0, cur / prev - 1.0, np.where(cur > 0, np.inf, 0.0))
+    return out

@@ -301,7 +301,7 @@ def write_map(
     import folium
     from folium.utilities import JsCode
 
-    from spatialplan.report import CAUTIONS
+    from spatialplan._review import CAUTIONS
 
     path = Path(path)
     if schedule.crs is None:

@@ -112,7 +112,7 @@ def check_plan_outputs(
 
     The GeoPackage must end in ``.gpkg``; it and the raster (``output.raster_out``) pass
     :func:`check_output_path`; unless ``output.no_map``, the map, report and chart folder
-    beside it (:func:`spatialplan.report.review_paths`) must not exist without ``overwrite``.
+    beside it (:func:`spatialplan.review.review_paths`) must not exist without ``overwrite``.
 
     Parameters
     ----------
@@ -135,7 +135,7 @@ def check_plan_outputs(
     OutputError
         Naming the file and what to do.
     """
-    from spatialplan.report import review_paths
+    from spatialplan.review import review_paths
 
     out = Path(out)
     inputs = [Path(p) for p in inputs if p is not None]

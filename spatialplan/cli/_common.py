@@ -28,6 +28,7 @@ __all__ = [
     "settings_from_flags",
     "settings_options",
     "split_severity",
+    "yields_option",
 ]
 
 log = logging.getLogger("spatialplan")
@@ -356,3 +357,14 @@ def handle_errors(ctx: click.Context) -> Iterator[None]:
 def run_cli(group: click.Group, argv: list[str] | None = None) -> Any:
     """Run ``group`` as the console script."""
     return group.main(args=argv, prog_name="spatialplan")
+
+
+#: ``--yields``: the yield-table CSV of a command that reads stands and yields (``check``,
+#: ``plan``); one definition so the option reads the same everywhere.
+yields_option = click.option(
+    "--yields",
+    "yields_path",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Yield-table CSV (long format: key columns, age, volume).",
+)

@@ -6,7 +6,13 @@ from typing import Any
 
 import click
 
-from spatialplan.cli._common import console, prefixed, settings_from_flags, settings_options
+from spatialplan.cli._common import (
+    console,
+    prefixed,
+    settings_from_flags,
+    settings_options,
+    yields_option,
+)
 
 CHECK_FLAGS = [
     "layer",
@@ -27,13 +33,7 @@ CHECK_FLAGS = [
 
 @click.command("check")
 @click.argument("stands", type=click.Path(dir_okay=False))
-@click.option(
-    "--yields",
-    "yields_path",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Yield-table CSV (long format: key columns, age, volume).",
-)
+@yields_option
 @settings_options(CHECK_FLAGS)
 def command(stands: str, yields_path: str | None, settings_path: str | None, **kwargs: Any) -> None:
     """Validate a stand layer (and yield table, DEM, streams) and summarise it.

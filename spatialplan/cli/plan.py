@@ -14,6 +14,7 @@ from spatialplan.cli._common import (
     settings_from_flags,
     settings_options,
     split_severity,
+    yields_option,
 )
 
 PLAN_FLAGS = [
@@ -92,13 +93,7 @@ def output_overrides(kwargs: dict[str, Any]) -> dict[str, Any]:
 
 @click.command("plan")
 @click.argument("stands", type=click.Path(dir_okay=False))
-@click.option(
-    "--yields",
-    "yields_path",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Yield-table CSV (long format: key columns, age, volume).",
-)
+@yields_option
 @click.option(
     "--out",
     "out",
