@@ -893,8 +893,8 @@ def write_plan(
 
 
 def _write_review(out_path: Path, layers: dict[str, Any], s: Settings) -> dict[str, Any]:
-    """The map, report and charts of a plan (:func:`spatialplan.report.write_review_files`)."""
-    from spatialplan.report import write_review_files
+    """The map, report and charts of a plan (:func:`spatialplan.review.write_review_files`)."""
+    from spatialplan.review import write_review_files
 
     run = layers["run"]
     return write_review_files(
