@@ -25,7 +25,7 @@ from spatialplan.schedule import diagnose, lp_bound, solve
 from spatialplan.settings import SolverSettings
 from spatialplan.synthetic import synthetic_prescriptions, voronoi_forest
 
-EXACT = SolverSettings(time_limit_s=60.0, workers=2, seed=1, gap=0.0)
+EXACT = SolverSettings(time_limit_s=60.0, workers=2, seed=1, stop_gap=0.0)
 RATE, PRICE = 0.04, 50.0
 
 
