@@ -426,8 +426,10 @@ def anneal(
                     # reassign i
                     w = r_opt[b]
                     if w < 0.5 and ki != null[i]:
-                        # Shift all (w < 1/6 of the half), the first or the last harvest.
-                        if w < 0.25:
+                        if not multi:
+                            sh = sh_all_dn if w < 0.25 else sh_all_up
+                        elif w < 0.25:
+                            # Shift all (first third), the first or the last harvest.
                             sh = (
                                 sh_all_dn
                                 if w < 0.0833
@@ -473,8 +475,11 @@ def anneal(
                     # Where u falls in its range picks the variant (no extra random
                     # draw): exchange whole harvest sequences, or only the first or only
                     # the last harvest periods (the same move for single harvests).
-                    v = (u - 0.55) * 4.0 if u < 0.8 else (u - 0.8) * 5.0
-                    if multi and v >= 0.3333 and mi and mj:
+                    if multi and mi and mj:
+                        v = (u - 0.55) * 4.0 if u < 0.8 else (u - 0.8) * 5.0
+                    else:
+                        v = 0.0
+                    if v >= 0.3333:
                         if v < 0.6667:
                             bi, bj = mi & -mi, mj & -mj
                         else:
