@@ -137,7 +137,9 @@ def run_one(n: int, seed: int, time_limit: float, workers: int, strategy: str, t
 
     settings = SolverSettings(time_limit_s=time_limit, workers=workers, seed=seed)
     res = solve(prob, settings, on_progress, _strategy=strategy)
-    viol = check_plan(prepare(prob), res.period)
+    # The plan is a prescription per stand since the prescription model (period before).
+    plan = getattr(res, "prescription", None)
+    viol = check_plan(prepare(prob), res.period if plan is None else plan)
     ratio = res.npv / res.lp_bound if res.lp_bound else float("nan")
 
     def ratio_at(ts: float) -> float:

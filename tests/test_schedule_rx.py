@@ -411,10 +411,22 @@ def test_old_forest_alone_infeasible_is_diagnosed() -> None:
     assert diag == diagnose(pr, SolverSettings(time_limit_s=10.0))
 
 
-def test_lp_bound_matches_linprog() -> None:
+@pytest.mark.parametrize(
+    ("column_generation", "volume_min"), [(False, None), (True, None), (True, 1500.0)]
+)
+def test_lp_bound_matches_linprog(
+    column_generation: bool, volume_min: float | None, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    if column_generation:  # price prescriptions in rounds even on this small model
+        monkeypatch.setattr("spatialplan.schedule.bound.CG_MIN_COLUMNS", 0)
+        monkeypatch.setattr("spatialplan.schedule.bound.CG_START", 1)
+        monkeypatch.setattr("spatialplan.schedule.bound.CG_ADD", 1)
     pr = _old_case(0.25)
     pr = dataclasses.replace(
-        pr, flow=dataclasses.replace(pr.flow, flow_tolerance=0.2, volume_max_m3=9000.0)
+        pr,
+        flow=dataclasses.replace(
+            pr.flow, flow_tolerance=0.2, volume_max_m3=9000.0, volume_min_m3=volume_min
+        ),
     )
     rx = pr.prescriptions
     assert rx is not None
@@ -437,6 +449,9 @@ def test_lp_bound_matches_linprog() -> None:
     for p in range(P):
         a_ub.append(vol[:, p])
         b_ub.append(9000.0)
+        if volume_min is not None:
+            a_ub.append(-vol[:, p])
+            b_ub.append(-volume_min)
         a_ub.append(-old[:, p])  # old area >= 0.25 x forest area
         b_ub.append(-0.25 * pr.opening_area_ha.sum())
     a_eq = np.array([(stand == i).astype(float) for i in range(n)])  # one rx per stand
@@ -446,6 +461,8 @@ def test_lp_bound_matches_linprog() -> None:
     assert got.status == "optimal"
     assert got.value == pytest.approx(-ref.fun, rel=1e-7)
     assert got.x_rx is not None and got.x_rx.shape == (K,)
+    if column_generation:
+        assert got.rounds > 1
     # Harvest shares by period and volumes agree with the prescription shares.
     assert got.period_volume_m3 == pytest.approx(got.x_rx @ vol, rel=1e-9, abs=1e-6)
 

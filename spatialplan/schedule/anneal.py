@@ -139,6 +139,7 @@ class _State:
                     d[m] = k
             self.lut.append(d)
         multi = bool(np.any(np.diff(prep.rx.harvest_start) > 1))
+        self.multi = multi
         self.shift: dict[tuple[str, bool], list[int]] = {}
         for how in ("all", "first", "last") if multi else ("all",):
             for up in (False, True):
@@ -374,6 +375,7 @@ def anneal(
     total_moves = 0
     accepted = 0
     stopped = False
+    multi = st.multi
     sh_all_dn, sh_all_up = st.shift[("all", False)], st.shift[("all", True)]
     sh_first_dn, sh_first_up = st.shift[("first", False)], st.shift[("first", True)]
     sh_last_dn, sh_last_up = st.shift[("last", False)], st.shift[("last", True)]
@@ -424,8 +426,10 @@ def anneal(
                     # reassign i
                     w = r_opt[b]
                     if w < 0.5 and ki != null[i]:
-                        # Shift all (w < 1/6 of the half), the first or the last harvest.
-                        if w < 0.25:
+                        if not multi:
+                            sh = sh_all_dn if w < 0.25 else sh_all_up
+                        elif w < 0.25:
+                            # Shift all (first third), the first or the last harvest.
                             sh = (
                                 sh_all_dn
                                 if w < 0.0833
@@ -446,7 +450,10 @@ def anneal(
                             continue
                     else:
                         opts = options[i]
-                        kn = opts[int(w * len(opts)) % len(opts)]
+                        # A cut stand draws w in [0.5, 1): rescale so that every
+                        # prescription (the no-harvest one too) can be drawn.
+                        u2 = 2.0 * w - 1.0 if ki != null[i] else w
+                        kn = opts[int(u2 * len(opts)) % len(opts)]
                         if kn == ki:
                             continue
                     dv = val[kn] - val[ki]
@@ -465,8 +472,25 @@ def anneal(
                     mj = hmask[kj]
                     if mi == mj:
                         continue
-                    kn = lut[i].get(mj, -1)
-                    knj = lut[j].get(mi, -1)
+                    # Where u falls in its range picks the variant (no extra random
+                    # draw): exchange whole harvest sequences, or only the first or only
+                    # the last harvest periods (the same move for single harvests).
+                    if multi and mi and mj:
+                        v = (u - 0.55) * 4.0 if u < 0.8 else (u - 0.8) * 5.0
+                    else:
+                        v = 0.0
+                    if v >= 0.3333:
+                        if v < 0.6667:
+                            bi, bj = mi & -mi, mj & -mj
+                        else:
+                            bi, bj = 1 << (mi.bit_length() - 1), 1 << (mj.bit_length() - 1)
+                        if bi == bj or (mi ^ bi) & bj or (mj ^ bj) & bi:
+                            continue
+                        kn = lut[i].get((mi ^ bi) | bj, -1)
+                        knj = lut[j].get((mj ^ bj) | bi, -1)
+                    else:
+                        kn = lut[i].get(mj, -1)
+                        knj = lut[j].get(mi, -1)
                     if kn < 0 or knj < 0:
                         continue
                     dv = val[kn] - val[ki] + val[knj] - val[kj]

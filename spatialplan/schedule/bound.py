@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import os
 import sys
+import time
 from dataclasses import dataclass
 
 import highspy
@@ -52,6 +53,8 @@ class LpResult:
         ``-inf`` for prescriptions left out. The heuristic ranks prescriptions by it.
     x_rx
         (K,) share of each prescription (0 for those left out).
+    columns, rounds
+        Prescription columns HiGHS held at the end and HiGHS calls (column generation).
     """
 
     value: float
@@ -60,6 +63,8 @@ class LpResult:
     period_volume_m3: np.ndarray
     price: np.ndarray | None = None
     x_rx: np.ndarray | None = None
+    columns: int = 0
+    rounds: int = 1
 
 
 _BANNER_SILENCED = False
@@ -99,6 +104,71 @@ def _new_highs() -> highspy.Highs:
     return h
 
 
+# Above this many prescriptions the LP is solved by column generation.
+CG_MIN_COLUMNS = 50_000
+CG_START = 3  # best prescriptions per stand (by objective) in the first restricted LP
+CG_ADD = 3  # most attractive prescriptions per stand added per round
+CG_TOL = 1e-9  # reduced cost (relative to the largest objective coefficient) worth adding
+
+
+def _x_columns(
+    rows: RowSet, stand_of: np.ndarray, cols: np.ndarray, n: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Column-wise arrays of the ``x_k`` columns, ``k in cols``, built without copies.
+
+    A column holds a 1 in its stand's convexity row, then its contributions in the
+    accounting rows ``n + j``. Returns ``(start, index, value)`` with ``len(cols) + 1``
+    starts from 0.
+    """
+    J = len(rows.names)
+    nx = len(cols)
+    q = rows.quant[cols] if J else sp.csr_matrix((nx, 0))
+    q.sort_indices()
+    start = np.zeros(nx + 1, dtype=np.int64)
+    np.cumsum(1 + np.diff(q.indptr), out=start[1:])
+    nnz = int(start[-1])
+    index = np.empty(nnz, dtype=np.int32)
+    value = np.empty(nnz, dtype=np.float64)
+    head = start[:-1]
+    index[head] = stand_of[cols]
+    value[head] = 1.0
+    rest = np.ones(nnz, dtype=bool)
+    rest[head] = False
+    index[rest] = n + q.indices
+    value[rest] = q.data
+    return start, index, value
+
+
+def _q_columns(rows: RowSet, n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Column-wise arrays of the quantity columns: -1 in the accounting row ``n + j``,
+    then the rule coefficients in rows ``n + J + r``."""
+    J = len(rows.names)
+    mat = rows.matrix  # (R, J), small
+    index: list[int] = []
+    value: list[float] = []
+    start = [0]
+    for j in range(J):
+        index.append(n + j)
+        value.append(-1.0)
+        for r in np.nonzero(mat[:, j])[0].tolist():
+            index.append(n + J + r)
+            value.append(float(mat[r, j]))
+        start.append(len(index))
+    return (
+        np.asarray(start, dtype=np.int64),
+        np.asarray(index, dtype=np.int32),
+        np.asarray(value, dtype=np.float64),
+    )
+
+
+def _best_per_stand(stand: np.ndarray, score: np.ndarray, count: int) -> np.ndarray:
+    """Positions of the ``count`` highest scores of every stand."""
+    order = np.lexsort((-score, stand))
+    s = stand[order]
+    first = np.searchsorted(s, s, side="left")
+    return order[np.arange(len(order)) - first < count]
+
+
 def solve_lp(
     problem: PlanProblem,
     rows: RowSet | None = None,
@@ -108,6 +178,16 @@ def solve_lp(
     rx: Prescriptions | None = None,
 ) -> LpResult:
     """Solve Model I with the given rows (default: the problem's own rules).
+
+    Up to ``CG_MIN_COLUMNS`` prescriptions the whole LP goes to HiGHS. Above, it is
+    solved by column generation (Dantzig-Wolfe pricing, from memory): HiGHS holds the
+    no-harvest and the best few prescriptions of every stand; after each solve every
+    other prescription is priced with the duals (reduced cost ``c_k - y_i - sum_j Q[k, j]
+    u_j``) and the most attractive few per stand are added, until none has a positive
+    reduced cost. The value returned adds ``sum_i max(0, max_k rc_k)`` over the
+    prescriptions left out (the Lagrangian bound: raising each convexity dual by it
+    makes the duals feasible for the full LP), so it is a valid upper bound in every
+    case; it is the LP optimum when the pricing finds nothing.
 
     Parameters
     ----------
@@ -122,10 +202,11 @@ def solve_lp(
         (K,) objective coefficients (defaults to area x npv per ha); pass zeros for a
         pure feasibility check.
     time_limit_s
-        HiGHS time limit.
+        Time limit of the HiGHS calls together.
     rx
         The prescriptions (default ``problem.rx()``).
     """
+    t_end = None if time_limit_s is None else time.perf_counter() + float(time_limit_s)
     n, P = problem.n_stands, problem.periods
     rx = problem.rx() if rx is None else rx
     rows = build_rows(problem, rx) if rows is None else rows
@@ -134,56 +215,99 @@ def solve_lp(
     area = np.asarray(problem.area_ha, dtype=np.float64)
     if objective is None:
         objective = area[stand_of] * np.asarray(rx.npv_per_ha, dtype=np.float64)
+    c = np.asarray(objective, dtype=np.float64)
     cols = np.arange(K) if allowed is None else np.nonzero(np.asarray(allowed, dtype=bool))[0]
-    nx = len(cols)
     J, R = len(rows.names), len(rows)
-    # Columns: x for the kept prescriptions, then one free column per quantity.
+    if len(cols) > CG_MIN_COLUMNS:
+        nulls = np.asarray(rx.stand_start[:-1])
+        rest = cols[~np.isin(cols, nulls)]
+        active = np.union1d(
+            np.intersect1d(cols, nulls), rest[_best_per_stand(stand_of[rest], c[rest], CG_START)]
+        )
+    else:
+        active = cols
+    # HiGHS columns: x for ``active``, the quantity columns, then x added by pricing.
     # Rows: convexity (n), accounting (J), rules (R).
-    conv = sp.csr_matrix((np.ones(nx), (stand_of[cols], np.arange(nx))), shape=(n, nx))
-    qt = rows.quant[cols].T.tocsr() if J else sp.csr_matrix((0, nx))
-    a_x = sp.vstack([conv, qt, sp.csr_matrix((R, nx))], format="csc")
-    a_q = sp.vstack(
-        [sp.csr_matrix((n, J)), -sp.identity(J, format="csr"), sp.csr_matrix(rows.matrix)],
-        format="csc",
-    )
-    a = sp.hstack([a_x, a_q], format="csc")
-    a.sort_indices()
-    del conv, qt, a_x, a_q
+    xs_, xi, xv = _x_columns(rows, stand_of, active, n)
+    qs, qi, qv = _q_columns(rows, n)
     inf = highspy.kHighsInf
     lp = highspy.HighsLp()
-    lp.num_col_ = nx + J
+    lp.num_col_ = len(active) + J
     lp.num_row_ = n + J + R
-    lp.col_cost_ = np.concatenate([np.asarray(objective, dtype=np.float64)[cols], np.zeros(J)])
-    lp.col_lower_ = np.concatenate([np.zeros(nx), np.full(J, -inf)])
-    lp.col_upper_ = np.concatenate([np.ones(nx), np.full(J, inf)])
+    lp.col_cost_ = np.concatenate([c[active], np.zeros(J)])
+    lp.col_lower_ = np.concatenate([np.zeros(len(active)), np.full(J, -inf)])
+    lp.col_upper_ = np.concatenate([np.ones(len(active)), np.full(J, inf)])
     lp.row_lower_ = np.concatenate([np.ones(n), np.zeros(J), np.full(R, -inf)])
     lp.row_upper_ = np.concatenate([np.ones(n), np.zeros(J), rows.rhs])
     lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
-    lp.a_matrix_.start_ = a.indptr.astype(np.int32)
-    lp.a_matrix_.index_ = a.indices.astype(np.int32)
-    lp.a_matrix_.value_ = a.data
-    del a
+    start = np.concatenate([xs_[:-1], qs + xs_[-1]])
+    if start[-1] >= 2**31:
+        msg = "the LP has more than 2**31 matrix entries"
+        raise ValueError(msg)
+    lp.a_matrix_.start_ = start.astype(np.int32)
+    lp.a_matrix_.index_ = np.concatenate([xi, qi])
+    lp.a_matrix_.value_ = np.concatenate([xv, qv])
+    del xs_, xi, xv, start
     lp.sense_ = highspy.ObjSense.kMaximize
     h = _new_highs()
     h.setOptionValue("threads", 1)
-    if time_limit_s is not None:
-        h.setOptionValue("time_limit", max(float(time_limit_s), 0.01))
     h.passModel(lp)
     del lp
-    h.run()
-    status = h.modelStatusToString(h.getModelStatus()).lower()
+    hcol = np.concatenate([active, np.full(J, -1)])  # prescription of every HiGHS column
+    is_active = np.zeros(K, dtype=bool)
+    is_active[active] = True
+    tol = CG_TOL * max(float(np.abs(c[cols]).max(initial=0.0)), 1.0)
+    lagrange = 0.0
+    rounds = 0
+    while True:
+        if t_end is not None:
+            h.setOptionValue("time_limit", max(t_end - time.perf_counter(), 0.01))
+        h.run()
+        rounds += 1
+        status = h.modelStatusToString(h.getModelStatus()).lower()
+        if status != "optimal" or is_active[cols].all():
+            if status == "infeasible" and not is_active[cols].all():
+                new = cols[~is_active[cols]]  # a restricted LP proves nothing: add all
+            else:
+                break
+        else:
+            y = np.asarray(h.getSolution().row_dual)
+            out = cols[~is_active[cols]]
+            rc = c[out] - y[stand_of[out]] - (rows.quant[out] @ y[n : n + J] if J else 0.0)
+            pos = rc > tol
+            if not pos.any():
+                best = np.zeros(n)
+                np.maximum.at(best, stand_of[out], rc)
+                lagrange = float(best.sum())
+                break
+            out, rc = out[pos], rc[pos]
+            new = out[_best_per_stand(stand_of[out], rc, CG_ADD)]
+        new = np.sort(new)
+        ns, ni, nv = _x_columns(rows, stand_of, new, n)
+        h.addCols(
+            len(new),
+            c[new],
+            np.zeros(len(new)),
+            np.ones(len(new)),
+            len(ni),
+            ns[:-1].astype(np.int32),
+            ni,
+            nv,
+        )
+        hcol = np.concatenate([hcol, new])
+        is_active[new] = True
     x_rx = np.zeros(K)
     price = None
     if status == "optimal":
         solution = h.getSolution()
-        x_rx[cols] = np.clip(np.asarray(solution.col_value)[:nx], 0.0, 1.0)
-        value = float(h.getInfo().objective_function_value)
-        # HiGHS: col_dual = c - A^T y. Adding back the stand's convexity dual leaves the
-        # prescription's objective net of the quantities' prices only.
-        cd = np.asarray(solution.col_dual)[:nx]
-        rd = np.asarray(solution.row_dual)[:n]
+        xcol = hcol >= 0
+        x_rx[hcol[xcol]] = np.clip(np.asarray(solution.col_value)[xcol], 0.0, 1.0)
+        value = float(h.getInfo().objective_function_value) + lagrange
+        # The prescription's objective net of the quantities' dual prices (its reduced
+        # cost plus its stand's convexity dual; HiGHS: col_dual = c - A^T y).
+        y = np.asarray(solution.row_dual)
         price = np.full(K, -np.inf)
-        price[cols] = cd + rd[stand_of[cols]]
+        price[cols] = c[cols] - (rows.quant[cols] @ y[n : n + J] if J else 0.0)
     else:
         value = float("nan")
     del h
@@ -194,7 +318,16 @@ def solve_lp(
     x = np.bincount(stand_of[hk] * P + hp, weights=xs, minlength=n * P).reshape(n, P)
     hv = area[stand_of[hk]] * np.asarray(rx.harvest_volume_m3_ha, dtype=np.float64) * xs
     vol = np.bincount(hp, weights=hv, minlength=P)[:P]
-    return LpResult(value=value, x=x, status=status, period_volume_m3=vol, price=price, x_rx=x_rx)
+    return LpResult(
+        value=value,
+        x=x,
+        status=status,
+        period_volume_m3=vol,
+        price=price,
+        x_rx=x_rx,
+        columns=int(is_active[cols].sum()),
+        rounds=rounds,
+    )
 
 
 def lp_bound(problem: PlanProblem) -> LpResult:

@@ -398,7 +398,6 @@ def greedy_plan(
     else:
         n_spatial_skip = _assign_sequential(st, c, P)
     rows = _RowState(prep, st.plan)
-    # lhs above counts D of uncut stands as 0 (their delta against themselves).
     info["assigned"] = int(st.cut.sum())
     info["spatial_skips"] = n_spatial_skip
 

@@ -416,11 +416,15 @@ def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: boo
     """Simulated annealing from the best plan (:mod:`spatialplan.schedule.anneal`).
 
     With ``repeat`` the search starts again from the best plan with longer rounds and the
-    next seed whenever it stalls, until ``until``.
+    next seed whenever it stalls, until ``until``. Rounds are ``max(50,000, 400 n, 15 x
+    prescription variables)`` moves to begin with.
     """
     prep = ctx.prep
     assert ctx.best is not None
-    round_moves = max(50_000, 400 * prep.n)
+    # Longer rounds with many prescriptions per stand (re-harvest models): 3M moves a
+    # round gave 93.5 % of the LP bound in 60 s on the 2,000-stand estate landscape,
+    # 800k-move rounds 92.7 %. The single-harvest model keeps 400 moves per stand.
+    round_moves = max(50_000, 400 * prep.n, 15 * prep.n_vars)
     k = 0
     tl = time.perf_counter()
     info: dict = {"runs": 0, "moves": 0, "rounds": 0, "improving_rounds": 0}
