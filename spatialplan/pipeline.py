@@ -328,6 +328,9 @@ def build_problem(inputs: PlanInputs, progress: Callable[[str], None] | None = N
     rx = prescriptions.build_prescriptions(
         strata, age0, eligible, inputs.growth, s, values.harvest_cost_per_m3, eligible_any_age
     )
+    cap_note = prescriptions.harvest_cap(s)[1]
+    if cap_note:
+        messages.append(cap_note)
     old_group = None
     if s.fields.unit_field:
         old_group = pd.factorize(st["unit"].fillna("").astype(str))[0].astype(np.int64)

@@ -44,6 +44,7 @@ from spatialplan.settings import Regeneration, Settings
 __all__ = [
     "MAX_PRESCRIPTIONS",
     "build_prescriptions",
+    "harvest_cap",
     "harvest_gap_periods",
     "period_sequences",
     "regenerated_strata",
@@ -53,6 +54,10 @@ __all__ = [
 #: Refuse to build more prescriptions than this (about 100 bytes each, and the scheduler
 #: needs a variable per prescription).
 MAX_PRESCRIPTIONS = 5_000_000
+#: With ``rules.max_harvests`` unset, keep at most this many period sequences per stand by
+#: lowering the number of harvests (a note says so): past several hundred choices per stand
+#: the search gains little and the model grows fast (2**P sequences with no minimum age).
+SEQUENCES_PER_STAND = 600
 
 
 def regeneration_map(regeneration: Regeneration, growth: GrowthModel) -> dict[str, str]:
@@ -119,6 +124,42 @@ def harvest_gap_periods(min_age_yr: float, period_length_yr: float, delay_yr: fl
     while g * period_length_yr - delay_yr < min_age_yr - AGE_EPS_YR:
         g += 1
     return g
+
+
+def harvest_cap(settings: Settings) -> tuple[int, str | None]:
+    """Most harvests per stand the prescriptions allow, and a note when it was lowered.
+
+    ``rules.max_harvests`` when set; otherwise as many as the minimum age allows, lowered
+    until a stand has at most :data:`SEQUENCES_PER_STAND` harvest sequences.
+
+    Examples
+    --------
+    >>> from spatialplan.settings import Settings
+    >>> s = Settings().with_overrides({"horizon.periods": 20, "rules.min_age_yr": 40})
+    >>> harvest_cap(s)
+    (3, None)
+    >>> cap, note = harvest_cap(s.with_overrides({"rules.min_age_yr": 0}))
+    >>> cap, note.split(";")[0]
+    (2, 'rules.max_harvests is not set: at most 2 harvests per stand are planned')
+    """
+    hz, rules = settings.horizon, settings.rules
+    P = hz.periods
+    gap = harvest_gap_periods(rules.min_age_yr, hz.period_length_yr, settings.regeneration.delay_yr)
+    most = 1 + (P - 1) // gap
+    if rules.max_harvests is not None:
+        return min(int(rules.max_harvests), most), None
+    m = most
+    while m > 1 and _count_sequences(P, gap, m) + 1 > SEQUENCES_PER_STAND:
+        m -= 1
+    if m == most:
+        return m, None
+    note = (
+        f"rules.max_harvests is not set: at most {m} harvests per stand are planned; the "
+        f"minimum age ({rules.min_age_yr:g} years) would allow {most} in {P} periods, "
+        f"{_count_sequences(P, gap, most) + 1:,} prescriptions per stand; set --max-harvests "
+        "or --min-age to choose"
+    )
+    return m, note
 
 
 def _count_sequences(periods: int, gap: int, max_len: int) -> int:
@@ -264,8 +305,7 @@ def build_prescriptions(
             ending_age_yr=none_k.copy(),
         )
     gap = harvest_gap_periods(rules.min_age_yr, L, delay)
-    most = 1 + (P - 1) // gap
-    m = most if rules.max_harvests is None else min(int(rules.max_harvests), most)
+    m, _ = harvest_cap(settings)
     n_seq = _count_sequences(P, gap, m)
     if n_seq + 1 > MAX_PRESCRIPTIONS:
         msg = (

@@ -325,9 +325,36 @@ def test_stratum_map_errors_name_the_key():
 
 def test_too_many_prescriptions_is_a_settings_error():
     # No minimum age: a harvest could fall in every one of 40 periods (2^40 sequences).
-    s = _settings(P=40, L=5.0, min_age=0.0)
+    s = _settings(P=40, L=5.0, min_age=0.0).with_overrides({"rules.max_harvests": 40})
     with pytest.raises(SettingsError, match=r"rules\.max_harvests.*rules\.min_age_yr"):
         _build(s, ["X"], [50.0])
+
+
+def test_unset_harvest_cap_is_lowered_with_a_note():
+    # Unset rules.max_harvests: as many harvests as the minimum age allows, lowered until a
+    # stand has at most SEQUENCES_PER_STAND sequences. Counts by brute force over subsets
+    # of the periods (a harvest every period at minimum age 0; every 8th at 40 years).
+    from itertools import combinations, pairwise
+
+    from spatialplan.prescriptions import SEQUENCES_PER_STAND, harvest_cap
+
+    def count(P: int, gap: int, m: int) -> int:
+        return sum(
+            1
+            for k in range(m + 1)
+            for c in combinations(range(P), k)
+            if all(b - a >= gap for a, b in pairwise(c))
+        )
+
+    s = _settings(P=12, L=5.0, min_age=0.0)
+    cap, note = harvest_cap(s)
+    assert count(12, 1, cap) <= SEQUENCES_PER_STAND < count(12, 1, cap + 1)
+    assert note is not None and "--max-harvests" in note and f"at most {cap} harvests" in note
+    rx = _build(s, ["X"], [50.0])
+    assert rx.n_prescriptions == count(12, 1, cap)
+    # 20 periods of 5 years at minimum age 40: every sequence fits, no note
+    s = _settings(P=20, L=5.0, min_age=40.0)
+    assert harvest_cap(s) == (3, None) and count(20, 8, 3) <= SEQUENCES_PER_STAND
 
 
 def test_faustmann_needs_a_positive_rate():
