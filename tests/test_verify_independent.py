@@ -173,6 +173,28 @@ def test_reserve_words_are_shared_and_reserved_cut_fails(tmp_path: Path) -> None
     assert not verify_schedule(sched, s, YIELDS).ok
 
 
+def test_operability_from_the_recorded_columns() -> None:
+    # A stand the terrain stage found inoperable (operable = 0, or harvest_system
+    # "inoperable") must not be cut; without terrain every stand is operable and verify
+    # has nothing to note about it.
+    sched = grid_stands(3, 1)
+    sched["period"] = pd.array([1, 2, 3], dtype="Int64")
+    s = settings_from_dict(
+        {"horizon": {"periods": 3}, "rules": {"max_opening_ha": None, "flow_tolerance": None}}
+    )
+    rep = verify_schedule(sched, s, YIELDS)
+    assert rep.ok and not [n for n in rep.notes if "operab" in n]
+    sched["operable"] = [1, 0, 1]
+    rep = verify_schedule(sched, s, YIELDS)
+    assert [(v.rule, v.period, v.stand_ids) for v in rep.violations] == [
+        ("inoperable", 2, ("S02",))
+    ]
+    sched = sched.drop(columns="operable")
+    sched["harvest_system"] = ["ground", "ground", "inoperable"]
+    rep = verify_schedule(sched, s, YIELDS)
+    assert [(v.rule, v.stand_ids) for v in rep.violations] == [("inoperable", ("S03",))]
+
+
 # ---- yield reading and interpolation --------------------------------------------------------
 def test_own_interpolation_by_hand_and_against_the_planners_model() -> None:
     table = pd.DataFrame({"stratum": ["A", "A", "B"], "age": [10, 20, 30], "volume": [50, 150, 90]})

@@ -159,11 +159,19 @@ def _read_stands(
                 f"net_area_ha empty for {int(np.isnan(given).sum())} stands; polygon area used"
             )
         net = np.where(np.isnan(given), gross, given)
+    # Operability comes from the DEM (terrain stage); the plan records it per stand as
+    # harvest_system (with terrain) and operable (always). Without a DEM every stand is
+    # operable, so there is nothing to check and nothing to note.
     steep = None
     if "harvest_system" in schedule.columns:
         steep = schedule["harvest_system"].astype(str).to_numpy() == INOPERABLE
-    else:
-        notes.append("operability is not checked (no harvest_system column in the schedule)")
+    elif "operable" in schedule.columns:
+        flag = pd.to_numeric(schedule["operable"], errors="coerce").fillna(1).to_numpy()
+        steep = flag == 0
+    elif settings.terrain.dem:
+        notes.append(
+            "operability is not checked (the schedule has no harvest_system or operable column)"
+        )
     return _Stands(
         ids=ids,
         geometry=geometry,
