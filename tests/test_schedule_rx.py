@@ -478,3 +478,57 @@ def test_single_harvest_prescriptions_give_the_same_plan_value() -> None:
     assert a.status == b.status == "optimal"
     assert a.npv == pytest.approx(best, rel=1e-6) and b.npv == pytest.approx(best, rel=1e-6)
     assert a.lp_bound == pytest.approx(b.lp_bound, rel=1e-9)
+
+
+# ---- chained flow rules over long horizons ----------------------------------------------
+def _non_declining_landscape(seed: int) -> PlanProblem:
+    """About 150 Voronoi stands, 12 periods of 5 years, up to 3 clear-cuts per stand."""
+    gdf = voronoi_forest(150, seed=seed)
+    area = shapely.area(np.asarray(gdf.geometry.values)) / 10_000.0
+    return rx_problem(
+        touch_edges(gdf),
+        gdf["age"].to_numpy(float),
+        seed,
+        area=area,
+        periods=12,
+        length=5.0,
+        max_harvests=3,
+        max_opening=40.0,
+        flow=FlowRules(
+            flow_tolerance=None,
+            non_declining=True,
+            old_forest_age_yr=80.0,
+            old_forest_min_share=0.1,
+        ),
+    )
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_non_declining_construction_reaches_most_of_the_lp_bound(seed: int) -> None:
+    # The construction alone (LP rounding, repair by moving stands between periods, flow
+    # sweep) must give a plan the independent checker accepts with at least 85 % of the
+    # aspatial LP bound; measured 0.92 on both seeds. Before the repair moved stands, the
+    # trim dropped every stand on this kind of instance (a period one stand short forces
+    # every earlier period down).
+    pr = _non_declining_landscape(seed)
+    res = solve(pr, dataclasses.replace(EXACT, time_limit_s=120.0), _strategy="heuristic")
+    assert res.prescription is not None
+    assert rule_breaks(pr, res.prescription) == []
+    assert res.npv >= 0.85 * res.lp_bound
+    # The plan harvests in every period (the volumes are non-declining and positive).
+    _, _, period = res.harvests(pr)
+    assert set(period.tolist()) == set(range(1, pr.periods + 1))
+
+
+@pytest.mark.parametrize("seed", [1, 4])
+def test_non_declining_matches_brute_force(seed: int) -> None:
+    pr = rx_problem(
+        grid_edges(2, 3), AGES6, seed, flow=FlowRules(flow_tolerance=None, non_declining=True)
+    )
+    best, _ = assert_matches_brute_force(pr, reharvest=False)
+    # The construction alone already gives a legal, non-empty plan no better than the
+    # optimum.
+    res = solve(pr, EXACT, _strategy="heuristic")
+    assert res.prescription is not None
+    assert rule_breaks(pr, res.prescription) == []
+    assert 0 < res.npv <= best + 1e-6 * abs(best)

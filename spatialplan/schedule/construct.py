@@ -10,10 +10,18 @@ harvesting prescription.
    LP's volume and where every new opening stays legal. Openings are checked
    incrementally: a search over the open stands of each period the prescription keeps
    open, stopped as soon as the group passes the maximum area.
-2. *Trim.* While a rule row (flow, targets, ending inventory, old forest) is broken, the
-   stand with the lowest loss of value per unit of excess on the broken row goes back to
-   its no-harvest prescription.
-3. *Fill.* Uncut stands get a prescription wherever every row and the spatial rules still
+2. *Repair.* Stands move between prescriptions until the rule rows hold
+   (:func:`_repair`). With a flow rule, each period's volume is first steered towards its
+   LP volume (which decouples the periods: one move changes a few periods, each judged on
+   its own), then a sweep from the last period back brings every period into the range
+   the flow rules allow given the next one, by moves that keep every later pair legal.
+   Only what cannot be mended that way falls to a joint descent on all rows. Dropping
+   stands alone cannot repair a chained rule (non-declining flow, even flow over many
+   periods): one period short forces every earlier one down with it.
+3. *Trim.* While a rule row (flow, targets, ending inventory, old forest) is still broken,
+   the stand with the lowest loss of value per unit of excess on the broken row goes back
+   to its no-harvest prescription.
+4. *Fill.* Uncut stands get a prescription wherever every row and the spatial rules still
    hold, last periods first (with a falling flow, the later periods bound the earlier ones).
 
 Everything runs on plain arrays and small Python loops over stands; a 10,000-stand
@@ -29,6 +37,7 @@ import numpy as np
 from spatialplan.schedule.model import Prep, check_plan
 
 __all__ = ["SpatialState", "greedy_plan"]
+_DEBUG = False
 
 
 def _bits(mask: int) -> list[int]:
@@ -188,6 +197,270 @@ class _Cands:
         return sum(v for p, v in self.harvests(k) if p == pc)
 
 
+def _descend(
+    st: SpatialState,
+    prep: Prep,
+    G: np.ndarray,
+    cap: np.ndarray,
+    w: np.ndarray,
+    deadline: float,
+    max_passes: int = 400,
+) -> int:
+    """Move stands between prescriptions to lower a weighted sum of hinge excesses.
+
+    The cost of a plan is ``sum_m w[m] * max(q[m] - cap[m], 0)`` with ``q`` the sum of the
+    rows ``G[k]`` (``(K, M)``, against the no-harvest prescription) of its prescriptions.
+    Each pass prices every allowed prescription of every stand at once: how much the
+    switch lowers the cost and how much value it loses. The moves with the most cost
+    removed per unit of value lost are then applied one by one, each re-checked against
+    the current cost (it must still lower it) and the openings; a stand moves at most
+    once per pass. Returns the number of moves made.
+    """
+    if G.shape[1] == 0:
+        return 0
+    ks = np.nonzero(prep.allowed)[0]
+    Gk = G[ks]
+    sk = prep.stand_of[ks]
+    rel = prep.rel_value
+    relk = rel[ks]
+    pos = relk[relk > 0]
+    # Value lost is weighed with a floor of a twentieth of a typical stand's value, so
+    # that a move losing nothing is not preferred for removing a trace of excess.
+    eps = 0.05 * (float(np.mean(pos)) if pos.size else 1.0)
+    q = G[st.plan].sum(axis=0)
+    moves = 0
+    for _ in range(max_passes):
+        if time.perf_counter() >= deadline:
+            break
+        exc = float(np.maximum(q - cap, 0.0) @ w)
+        if exc <= 0.0:
+            break
+        cur = st.plan[sk]
+        red = exc - np.maximum(q[None, :] + (Gk - G[cur]) - cap, 0.0) @ w
+        ok = (red > 1e-9 * exc) & (ks != cur)
+        if not ok.any():
+            break
+        idx = np.nonzero(ok)[0]
+        loss = np.maximum(rel[cur[idx]] - relk[idx], 0.0)
+        idx = idx[np.argsort(-red[idx] / (loss + eps), kind="stable")]
+        moved: set[int] = set()
+        applied = tried = 0
+        for t in idx.tolist():
+            i = int(sk[t])
+            if i in moved:
+                continue
+            tried += 1
+            if tried > 256 and (applied or tried > 4096):
+                break
+            k, k0 = int(ks[t]), int(st.plan[i])
+            dq = G[k] - G[k0]
+            now = float(np.maximum(q - cap, 0.0) @ w)
+            if now <= 0.0:
+                break
+            if float(np.maximum(q + dq - cap, 0.0) @ w) >= now * (1.0 - 1e-9):
+                continue
+            st.unset(i)
+            if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
+                st.set(i, k0)
+                continue
+            st.set(i, k)
+            q += dq
+            moved.add(i)
+            applied += 1
+        moves += applied
+        if applied == 0:
+            break
+    return moves
+
+
+def _period_volumes(prep: Prep) -> np.ndarray:
+    """(K, P) harvest volume of every prescription by period (m3)."""
+    rx = prep.rx
+    hk = np.repeat(np.arange(prep.n_rx), np.diff(rx.harvest_start))
+    hp = np.asarray(rx.harvest_period, dtype=np.int64) - 1
+    area = np.asarray(prep.problem.area_ha, dtype=np.float64)
+    hv = area[prep.stand_of[hk]] * np.asarray(rx.harvest_volume_m3_ha, dtype=np.float64)
+    out = np.zeros((prep.n_rx, prep.P))
+    np.add.at(out, (hk, hp), hv)
+    return out
+
+
+def _row_units(D: np.ndarray) -> np.ndarray:
+    """(R,) median magnitude of the non-zero entries of each column (a typical stand's share)."""
+    unit = np.ones(D.shape[1])
+    for r in range(D.shape[1]):
+        a = np.abs(D[:, r])
+        nz = a[a > 0]
+        if nz.size:
+            unit[r] = float(np.median(nz))
+    return unit
+
+
+def _flow_ok(prep: Prep, V: np.ndarray) -> np.ndarray:
+    """``(..., P - 1)`` bool: period ``p``'s volume keeps the flow rules with period ``p + 1``.
+
+    ``V`` holds period volumes in its last axis; a relative margin of 1e-6 of the largest
+    volume is kept below every bound.
+    """
+    fr = prep.problem.flow
+    a, b = V[..., :-1], V[..., 1:]
+    m = 1e-6 * max(float(np.max(V, initial=0.0)), 1.0)
+    ok = np.ones(a.shape, dtype=bool)
+    t = fr.flow_tolerance
+    if t is not None:
+        ok &= (b <= (1.0 + t) * a - m) & (b >= (1.0 - t) * a + m)
+    if fr.non_declining:
+        ok &= b >= a + m
+    if fr.volume_min_m3 is not None:
+        ok &= a >= float(fr.volume_min_m3) + m
+    if fr.volume_max_m3 is not None:
+        ok &= a <= float(fr.volume_max_m3) - m
+    return ok
+
+
+def _flow_sweep(
+    st: SpatialState,
+    prep: Prep,
+    vol: np.ndarray,
+    other: np.ndarray,
+    other_cap: np.ndarray,
+    other_w: np.ndarray,
+    deadline: float,
+) -> int:
+    """Make the period volumes keep the flow rules, last period first; returns the moves.
+
+    Going back from the last period, each period's volume is brought into the range the
+    flow rules allow given the next period's volume, by moves that keep the flow rules
+    among all later periods (shift, drop or add a harvest): what is fixed stays fixed, so
+    a shortfall late in the horizon lowers the earlier periods by just that much instead
+    of dragging a chain of rows towards zero. A move may not raise the excess of the
+    other rows (``other``: ``(K, R')`` against the no-harvest prescription, ``other_cap``
+    and ``other_w`` their limits and weights).
+    """
+    P = prep.P
+    ks_all = np.nonzero(prep.allowed)[0]
+    sk_all = prep.stand_of[ks_all]
+    rel = prep.rel_value
+    V = vol[st.plan].sum(axis=0)
+    oq = other[st.plan].sum(axis=0)
+    tv = vol[ks_all].sum()
+    unit_value = float(np.maximum(rel[ks_all], 0.0).sum() / tv) if tv > 0 else 0.0
+    moves = 0
+    for q in range(P - 2, -1, -1):
+        for _ in range(4 * prep.n):
+            if time.perf_counter() >= deadline:
+                return moves
+            if _flow_ok(prep, V[q:])[0] if q < P - 1 else True:
+                break
+            cur_all = st.plan[sk_all]
+            # Only moves that change period q's volume can help.
+            sel = np.nonzero(vol[ks_all, q] != vol[cur_all, q])[0]
+            ks, sk, cur = ks_all[sel], sk_all[sel], cur_all[sel]
+            dV = vol[ks] - vol[cur]
+            nV = V[None, q:] + dV[:, q:]
+            ok_now = _flow_ok(prep, V[q:])
+            ok = _flow_ok(prep, nV)
+            # Later pairs that hold must keep holding.
+            later = np.all(ok[:, 1:] | ~ok_now[None, 1:], axis=1)
+            lo, hi = _bounds_of(prep, float(V[q + 1]))
+            gap0 = max(V[q] - hi, lo - V[q])
+            gap1 = np.maximum(nV[:, 0] - hi, lo - nV[:, 0])
+            keep = later & (ok[:, 0] | (gap1 < gap0 - 1e-9 * abs(gap0)))
+            if other.shape[1]:
+                now = float(np.maximum(oq - other_cap, 0.0) @ other_w)
+                nxt = np.maximum(oq[None, :] + (other[ks] - other[cur]) - other_cap, 0.0) @ other_w
+                keep &= nxt <= now + 1e-9 * max(now, 1.0)
+            idx = np.nonzero(keep)[0]
+            if idx.size == 0:
+                break
+            # Volume pushed into earlier periods above the level they will have to keep
+            # (the bound compounded back from period q) is likely lost later: price it.
+            ceil = np.empty(q)
+            h = hi
+            for p in range(q - 1, -1, -1):
+                h = _bounds_of(prep, h)[1]
+                ceil[p] = h
+            push = (
+                np.maximum(V[None, :q] + dV[idx, :q] - ceil, 0.0).sum(axis=1)
+                - np.maximum(V[:q] - ceil, 0.0).sum()
+            )
+            loss = np.maximum(rel[cur[idx]] - rel[ks[idx]], 0.0) + unit_value * np.maximum(push, 0)
+            gain = np.minimum(gap0 - gap1[idx], gap0)
+            # Moves that mend the pair come first, the cheapest; then the cheapest per unit.
+            score = np.where(ok[idx, 0], -1.0 / (1.0 + loss), loss / np.maximum(gain, 1e-12))
+            done = False
+            for t in idx[np.argsort(score, kind="stable")][:64].tolist():
+                i, k = int(sk[t]), int(ks[t])
+                k0 = int(st.plan[i])
+                st.unset(i)
+                if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
+                    st.set(i, k0)
+                    continue
+                st.set(i, k)
+                V += vol[k] - vol[k0]
+                oq += other[k] - other[k0]
+                moves += 1
+                done = True
+                break
+            if not done:
+                break
+    return moves
+
+
+def _bounds_of(prep: Prep, after: float) -> tuple[float, float]:
+    """Range for a period's volume that keeps the flow rules with the next period (``after``)."""
+    fr = prep.problem.flow
+    lo, hi = 0.0, np.inf
+    t = fr.flow_tolerance
+    if t is not None:
+        lo = after / (1.0 + t)
+        hi = after / (1.0 - t) if t < 1.0 else np.inf
+    if fr.non_declining:
+        hi = min(hi, after)
+    if fr.volume_min_m3 is not None:
+        lo = max(lo, float(fr.volume_min_m3))
+    if fr.volume_max_m3 is not None:
+        hi = min(hi, float(fr.volume_max_m3))
+    return lo, hi
+
+
+def _repair(
+    st: SpatialState, rows: _RowState, prep: Prep, target: np.ndarray, deadline: float
+) -> int:
+    """Repair the rule rows by moving stands between prescriptions; returns the moves.
+
+    With a flow rule (even flow or non-declining): first every period's volume is steered
+    towards its target (the LP's volume) together with the other rows, which decouples
+    the periods; then :func:`_flow_sweep` makes the volumes keep the flow rules exactly.
+    Last, whatever rows are still broken are lowered together. ``rows`` is brought up to
+    date with the plan.
+    """
+    R = len(rows.rhs)
+    if R == 0:
+        return 0
+    const = prep.rows.lhs(prep.null)
+    cap = rows.rhs - rows.margin - const
+    D = rows.D
+    w = 1.0 / _row_units(D[prep.allowed])
+    moves = 0
+    fr = prep.problem.flow
+    if (fr.flow_tolerance is not None or fr.non_declining) and prep.P > 1:
+        vol = _period_volumes(prep)
+        other = np.array([r.family != "flow" for r in prep.rows], dtype=bool)
+        d_other = D[:, other]
+        wv = 1.0 / _row_units(vol[prep.allowed]).mean()
+        G = np.hstack([d_other, vol, -vol])
+        capg = np.concatenate([cap[other], target, -target])
+        wg = np.concatenate([w[other], np.full(2 * prep.P, wv)])
+        moves += _descend(st, prep, G, capg, wg, deadline)
+        moves += _flow_sweep(st, prep, vol, d_other, cap[other], w[other], deadline)
+    rows.lhs = const + D[st.plan].sum(axis=0)
+    if rows.violated().size:
+        moves += _descend(st, prep, D, cap, w, deadline)
+        rows.lhs = const + D[st.plan].sum(axis=0)
+    return moves
+
+
 def _by_stand(prep: Prep, price: np.ndarray) -> list[list[int]]:
     """Per stand, its candidate prescriptions with a positive price, best first."""
     ks = np.nonzero(np.isfinite(price) & (price > 0))[0]
@@ -340,6 +613,7 @@ def greedy_plan(
     deadline: float,
     slack: float = 0.0,
     order: str = "sequential",
+    repair: bool = True,
 ) -> tuple[np.ndarray, dict]:
     """Build a plan that satisfies every rule, guided by the LP solution.
 
@@ -400,6 +674,8 @@ def greedy_plan(
     rows = _RowState(prep, st.plan)
     info["assigned"] = int(st.cut.sum())
     info["spatial_skips"] = n_spatial_skip
+    if repair:
+        info["repaired"] = _repair(st, rows, prep, c.target, deadline)
 
     # ---- 2. trim until every row holds --------------------------------------------------
     removed = 0
