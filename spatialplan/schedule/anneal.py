@@ -450,9 +450,11 @@ def anneal(
                             continue
                     else:
                         opts = options[i]
-                        # A cut stand draws w in [0.5, 1): rescale so that every
-                        # prescription (the no-harvest one too) can be drawn.
-                        u2 = 2.0 * w - 1.0 if ki != null[i] else w
+                        # A cut stand draws w in [0.5, 1): with several harvests per
+                        # prescription, rescale so that every prescription can be drawn
+                        # (early first harvests included); single-harvest draws keep
+                        # the later half of the periods, which measured better there.
+                        u2 = 2.0 * w - 1.0 if multi and ki != null[i] else w
                         kn = opts[int(u2 * len(opts)) % len(opts)]
                         if kn == ki:
                             continue
