@@ -31,6 +31,8 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from spatialplan._io import atomic_path
+from spatialplan._review import harvest_events as _review_harvest_events
+from spatialplan._review import period_array, setting
 from spatialplan.errors import OutputError
 
 __all__ = [
@@ -96,23 +98,18 @@ def period_colours(periods: int) -> list[str]:
 # ---------------------------------------------------------------------------------------
 # openings
 # ---------------------------------------------------------------------------------------
-def _period_array(values: Any) -> np.ndarray:
-    """Integer harvest period per stand, 0 where not harvested (null/NaN/0)."""
-    s = pd.to_numeric(pd.Series(values), errors="coerce").fillna(0)
-    return s.to_numpy(dtype=np.int64)
-
-
 def harvest_events(
     schedule: pd.DataFrame, harvests: pd.DataFrame | None = None, id_col: str = "stand_id"
 ) -> tuple[np.ndarray, np.ndarray]:
     """Every harvest of a plan as ``(stand position, period)`` arrays.
 
     From the ``harvests`` table when given (its ``id_col`` matched to the schedule's),
-    else from the schedule's ``period`` column (one harvest per stand).
+    else from the schedule's ``harvest_periods`` or ``period`` column; the same reading the
+    review files use.
 
     Raises
     ------
-    ValueError
+    OutputError
         The harvests table names a stand the schedule lacks.
 
     Examples
@@ -124,19 +121,8 @@ def harvest_events(
     >>> [x.tolist() for x in harvest_events(sched, h)]
     [[0, 0, 2], [2, 7, 1]]
     """
-    if harvests is None:
-        per = _period_array(schedule["period"])
-        stand = np.flatnonzero(per > 0)
-        return stand, per[stand]
-    index = pd.Index(schedule[id_col].astype(str))
-    pos = index.get_indexer(harvests[id_col].astype(str))
-    if (pos < 0).any():
-        missing = sorted(set(harvests[id_col].astype(str)[pos < 0]))[:10]
-        msg = f"harvests table names stands not in the schedule: {', '.join(missing)}"
-        raise ValueError(msg)
-    per = _period_array(harvests["period"])
-    keep = per > 0
-    return pos[keep].astype(np.int64), per[keep]
+    ev = _review_harvest_events(schedule, harvests, id_col)
+    return ev["pos"].to_numpy(dtype=np.int64), ev["period"].to_numpy(dtype=np.int64)
 
 
 def open_matrix(
@@ -303,16 +289,6 @@ def opening_table(
 # ---------------------------------------------------------------------------------------
 # tables
 # ---------------------------------------------------------------------------------------
-def _get(settings: Any, dotted: str, default: Any = None) -> Any:
-    """Read ``horizon.periods`` style keys from a Settings tree or a nested mapping."""
-    node = settings
-    for part in dotted.split("."):
-        if node is None:
-            return default
-        node = node.get(part) if isinstance(node, Mapping) else getattr(node, part, None)
-    return default if node is None else node
-
-
 def _area_column(frame: pd.DataFrame, area_col: str | None) -> str:
     if area_col is not None:
         return area_col
@@ -355,7 +331,7 @@ def _event_figures(
         }
         figures = {k: v[stand] for k, v in figures.items()}
     else:
-        keep = _period_array(harvests["period"]) > 0
+        keep = period_array(harvests["period"]) > 0
         h = harvests[keep]
         figures = {
             "volume": np.nan_to_num(_col(h, "volume_m3")),
@@ -420,16 +396,16 @@ def period_table(
         ``flow_ok``, ``area_lower_ha``, ``area_upper_ha``, ``old_forest_share``,
         ``standing_volume_m3``.
     """
-    P = int(_get(settings, "horizon.periods", 10))
-    L = float(_get(settings, "horizon.period_length_yr", 5.0))
-    year0 = float(_get(settings, "horizon.start_year", 0))
-    tol = _get(settings, "rules.flow_tolerance")
-    non_declining = bool(_get(settings, "rules.non_declining", False))
-    vmin = _get(settings, "rules.period_volume_min_m3")
-    vmax = _get(settings, "rules.period_volume_max_m3")
-    amin = _get(settings, "rules.period_area_min_ha")
-    amax = _get(settings, "rules.period_area_max_ha")
-    limit = _get(settings, "rules.max_opening_ha")
+    P = int(setting(settings, "horizon.periods", 10))
+    L = float(setting(settings, "horizon.period_length_yr", 5.0))
+    year0 = float(setting(settings, "horizon.start_year", 0))
+    tol = setting(settings, "rules.flow_tolerance")
+    non_declining = bool(setting(settings, "rules.non_declining", False))
+    vmin = setting(settings, "rules.period_volume_min_m3")
+    vmax = setting(settings, "rules.period_volume_max_m3")
+    amin = setting(settings, "rules.period_area_min_ha")
+    amax = setting(settings, "rules.period_area_max_ha")
+    limit = setting(settings, "rules.max_opening_ha")
 
     ev = _event_figures(schedule, harvests, id_col, area_col)
     idx = np.clip(ev["period"], 0, P)  # bincount slot 0 collects periods out of range
@@ -553,11 +529,11 @@ def strata_table(
         ``stratum_net_area_ha`` (net area of the stands of the stratum at the start),
         sorted by stratum then period.
     """
-    P = int(_get(settings, "horizon.periods", 10))
+    P = int(setting(settings, "horizon.periods", 10))
     ev = _event_figures(schedule, harvests, id_col, area_col)
     start = schedule[stratum_col].astype(str).to_numpy()
     if harvests is not None and "stratum" in harvests.columns:
-        keep = _period_array(harvests["period"]) > 0
+        keep = period_array(harvests["period"]) > 0
         cut = harvests.loc[keep, "stratum"].astype(str).to_numpy()
     else:
         cut = start[ev["stand"]]
@@ -767,7 +743,7 @@ def _periods_of(layers: Mapping[str, pd.DataFrame], schedule_name: str) -> int:
     if "periods" in layers and len(layers["periods"]) and "period" in layers["periods"]:
         return int(pd.to_numeric(layers["periods"]["period"]).max())
     if schedule_name in layers:
-        return max(1, int(_period_array(layers[schedule_name]["period"]).max()))
+        return max(1, int(period_array(layers[schedule_name]["period"]).max()))
     return 1
 
 
@@ -967,7 +943,7 @@ def write_period_raster(
             f"raster {path} would have {width} x {height} cells; use a larger output.raster_cell_m"
         )
         raise OutputError(msg)
-    per = _period_array(schedule[period_col])
+    per = period_array(schedule[period_col])
     dtype = "uint8" if per.max(initial=0) <= 255 else "uint16"
     transform = Affine(cell_m, 0.0, minx, 0.0, -cell_m, maxy)  # north-up, origin top-left
     shapes = [(g, int(p)) for g, p in zip(schedule.geometry.values, per, strict=True) if p > 0]
