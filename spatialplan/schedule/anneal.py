@@ -13,7 +13,10 @@ prescription of one or two stands; drawn at random:
 The spatial rules are hard: a move is applied only if every opening it touches stays within
 the maximum (a search over the open neighbours in each period the new prescription keeps
 the stand open, stopped as soon as the group passes the maximum area) and, with the unit
-restriction, no open neighbour. Openness comes from per-prescription bit masks. The rule
+restriction, no open neighbour. Openness comes from per-prescription bit masks. When the
+start plan meets every rule row, the rows are hard as well (a move breaking one is rejected,
+or paired with a one-period shift of another stand that restores them all), so every
+accepted plan is legal. Otherwise the rule
 rows (flow, targets, ending inventory, old forest) are a penalty in the acceptance test
 whose weight rises within a round, so the search may cross slightly infeasible plans to
 shift volume between periods; only plans that meet every row with a small margin are
