@@ -13,7 +13,10 @@ prescription of one or two stands; drawn at random:
 The spatial rules are hard: a move is applied only if every opening it touches stays within
 the maximum (a search over the open neighbours in each period the new prescription keeps
 the stand open, stopped as soon as the group passes the maximum area) and, with the unit
-restriction, no open neighbour. Openness comes from per-prescription bit masks. The rule
+restriction, no open neighbour. Openness comes from per-prescription bit masks. When the
+start plan meets every rule row, the rows are hard as well (a move breaking one is rejected,
+or paired with a one-period shift of another stand that restores them all), so every
+accepted plan is legal. Otherwise the rule
 rows (flow, targets, ending inventory, old forest) are a penalty in the acceptance test
 whose weight rises within a round, so the search may cross slightly infeasible plans to
 shift volume between periods; only plans that meet every row with a small margin are
@@ -306,6 +309,8 @@ def anneal(
     mu_end: float = 30.0,
     stop: Callable[[], bool] | None = None,
     on_best: Callable[[np.ndarray, float], None] | None = None,
+    hard_rows: bool | None = None,
+    repair_tries: int = 4,
 ) -> AnnealResult:
     """Improve a legal plan by simulated annealing; never returns a worse plan.
 
@@ -343,6 +348,15 @@ def anneal(
         Called every few thousand moves; ``True`` stops the search (Ctrl-C, gap reached).
     on_best
         Called with ``(plan, npv)`` at the end of every round that improved the best plan.
+    hard_rows
+        Keep the rule rows hard, like the openings: a move that takes any row past its
+        right-hand side is rejected, so every accepted plan is legal and every improvement
+        is recorded. A single move that breaks a row may be paired with a shift of another
+        stand's harvests one period earlier or later that restores every row (``repair_tries``
+        random partners). ``None`` (the default) keeps the rows hard when the start plan
+        meets them all; with ``False`` they are a penalty as described above.
+    repair_tries
+        Partners tried for a single move that breaks a row (hard rows only).
 
     Returns
     -------
@@ -368,6 +382,9 @@ def anneal(
     moves_per_round = int(round_moves or max(50_000, 400 * n))
     D, cap, k = st.D, st.cap, st.k
     soft = bool(soft and prep.max_opening is not None and not prep.unit)
+    if hard_rows is None:
+        hard_rows = bool(k) and bool(np.all(st.lhs <= cap))
+    hard = bool(hard_rows and k and not soft)
     best_npv = start_npv
     best_plan = list(st.plan)
     idle = 0
@@ -407,6 +424,9 @@ def anneal(
             r_type = rng.random(BLOCK).tolist()
             r_opt = rng.random(BLOCK).tolist()
             r_acc = rng.random(BLOCK).tolist()
+            # Partner draws for repaired moves (drawn only with hard rows, so the other
+            # modes keep their random streams).
+            r_rep = rng.random(BLOCK).tolist() if hard else r_acc
             inv_t = 1.0 / temp
             plan = st.plan
             null = st.null
@@ -498,7 +518,35 @@ def anneal(
                     dv = val[kn] - val[ki] + val[knj] - val[kj]
                     if k:
                         nl = lhs + (D[kn] - D[ki] + D[knj] - D[kj])
-                if k:
+                if hard:
+                    npen = 0.0
+                    if (nl > cap).any():
+                        if j >= 0 or repair_tries <= 0:
+                            continue
+                        # Pair the move with a one-period shift of another stand's harvests
+                        # that brings every row back within its bound (volume moved out of
+                        # one period and into its neighbour keeps a chained flow legal).
+                        j = -1
+                        for t in range(repair_tries):
+                            jj = movable[int(((r_rep[b] + t * 0.618034) % 1.0) * n_mov)]
+                            if jj == i:
+                                continue
+                            kjj = plan[jj]
+                            if kjj == null[jj]:
+                                continue
+                            knn = (sh_all_dn if (t + b) & 1 else sh_all_up)[kjj]
+                            if knn < 0:
+                                continue
+                            nl2 = nl + (D[knn] - D[kjj])
+                            if not (nl2 > cap).any():
+                                j, kj, knj = jj, kjj, knn
+                                nl = nl2
+                                dv += val[knn] - val[kjj]
+                                break
+                        if j < 0:
+                            continue
+                    delta = dv
+                elif k:
                     npen = float(np.maximum(nl - cap, 0.0) @ wl)
                     delta = dv - (npen - pen)
                 else:
