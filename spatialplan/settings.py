@@ -544,13 +544,20 @@ def _find_line(text: str, dotted: str) -> int | None:
     return fallback
 
 
+def _is_off(value: Any) -> bool:
+    """``"off"`` (any case): an optional rule switched off (TOML has no null)."""
+    return isinstance(value, str) and value.strip().lower() == OFF
+
+
 def _convert(tp: Any, value: Any, key: str, ctx: _Ctx, meta: dict | None = None) -> Any:
     origin = typing.get_origin(tp)
     args = typing.get_args(tp)
     if origin in (types.UnionType, typing.Union):
-        if value is None:
-            return None
         inner = [a for a in args if a is not type(None)]
+        # "off" switches an optional numeric rule off in a settings file or a flag, as in
+        # scenario files (TOML has no null); text settings keep "off" as text.
+        if value is None or (_is_off(value) and str not in inner):
+            return None
         return _convert(inner[0], value, key, ctx, meta)
     if dataclasses.is_dataclass(tp):
         if not isinstance(value, dict):
@@ -799,10 +806,6 @@ def load_settings(
 # ---------------------------------------------------------------------------------------
 #: Value that switches an optional rule off in an override (TOML has no null).
 OFF = "off"
-
-
-def _is_off(value: Any) -> bool:
-    return isinstance(value, str) and value == OFF
 
 
 def flatten_overrides(table: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:

@@ -450,3 +450,24 @@ def test_renamed_flags_still_work_with_a_note_and_are_hidden() -> None:
     assert "--stop-gap" in helptext and "--digitising-tolerance" in helptext
     assert "--gap " not in helptext and "--gap-tolerance" not in helptext
     assert "replaces a price schedule" in helptext  # what --price does to a schedule
+
+
+def test_off_switches_optional_rules_off_in_files_and_flags(tmp_path: Path) -> None:
+    # TOML has no null: "off" switches an optional rule off, as in scenario files; a rule
+    # that cannot be off (minimum age) names the key.
+    p = _toml(tmp_path, '[rules]\nflow_tolerance = "off"\nmax_opening_ha = "Off"\n')
+    s = load_settings(p)
+    assert s.rules.flow_tolerance is None and s.rules.max_opening_ha is None
+    with pytest.raises(SettingsError, match=r"rules\.min_age_yr"):
+        load_settings(_toml(tmp_path, '[rules]\nmin_age_yr = "off"\n'))
+    from click.testing import CliRunner
+
+    from spatialplan.cli import cli
+
+    res = CliRunner().invoke(cli, ["plan", "x.gpkg", "--out", "y.gpkg", "--flow-tolerance", "lots"])
+    assert res.exit_code != 0 and "is not a number or 'off'" in res.output, res.output
+    from spatialplan.cli._common import settings_from_flags
+
+    kw = {"flow_tolerance": "off", "max_opening": 25.0}
+    s = settings_from_flags(None, kw)
+    assert s.rules.flow_tolerance is None and s.rules.max_opening_ha == 25.0

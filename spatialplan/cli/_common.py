@@ -40,6 +40,22 @@ def _csv(value: str | None) -> tuple[str, ...] | None:
     return tuple(v.strip() for v in value.split(",") if v.strip())
 
 
+class _FloatOrOff(click.ParamType):
+    """A number, or ``off`` to switch an optional rule off (kept as text for the settings)."""
+
+    name = "number|off"
+
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> Any:
+        if isinstance(value, str) and value.strip().lower() == "off":
+            return "off"
+        try:
+            return float(value)
+        except (TypeError, ValueError):
+            self.fail(f"{value!r} is not a number or 'off'", param, ctx)
+
+
+FLOAT_OR_OFF = _FloatOrOff()
+
 # flag name -> (dotted settings key, click type, help). Flags win over the TOML file.
 SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     "layer": ("fields.layer", str, "Layer name inside a multi-layer file (GeoPackage)."),
@@ -68,7 +84,11 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     "crs": ("fields.crs", str, "CRS to assume when the layer has none, e.g. EPSG:32610."),
     "periods": ("horizon.periods", int, "Number of planning periods."),
     "period-length": ("horizon.period_length_yr", float, "Length of one period in years."),
-    "max-opening": ("rules.max_opening_ha", float, "Maximum opening (clearcut) size in ha."),
+    "max-opening": (
+        "rules.max_opening_ha",
+        FLOAT_OR_OFF,
+        "Maximum opening (clearcut) size in ha, or 'off' for no opening rule.",
+    ),
     "green-up": ("rules.green_up_periods", int, "Green-up delay in periods."),
     "min-age": ("rules.min_age_yr", float, "Minimum age at harvest (years, at mid-period)."),
     "max-harvests": (
@@ -78,8 +98,8 @@ SETTINGS_FLAGS: dict[str, tuple[str, Any, str]] = {
     ),
     "flow-tolerance": (
         "rules.flow_tolerance",
-        float,
-        "Allowed change of volume between periods (fraction).",
+        FLOAT_OR_OFF,
+        "Allowed change of volume between periods (fraction), or 'off' for no even-flow band.",
     ),
     "discount-rate": ("economics.discount_rate", float, "Annual discount rate (fraction)."),
     "price": (
