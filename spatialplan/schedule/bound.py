@@ -360,7 +360,7 @@ def lp_bound(problem: PlanProblem) -> LpResult:
 
 # ---- the cover LP: Model I with the opening rule as cover inequalities -----------------------
 COVER_VIOLATION = 1e-4  # how far a cover must be broken by the LP solution to be added
-COVER_MAX_PER_ROUND = 2_000  # covers added per round at most
+COVER_MAX_PER_ROUND = 150  # covers added per period and round at most (the most broken)
 
 
 @dataclass(frozen=True)
@@ -419,6 +419,7 @@ def separate_covers(
     abandoned as soon as its closedness reaches 1; then every stand whose removal keeps it
     connected, over-size and holding a stand not open from the start is dropped (most
     closed first). With the unit restriction every pair of adjacent stands is over-size.
+    The ``limit`` most broken sets are returned, most broken first.
     """
     mx = prep.max_opening
     oa = prep.opening_area
@@ -474,9 +475,9 @@ def separate_covers(
             continue
         seen.add(key_s)
         found.append(sorted(members))
-        if len(found) >= limit:
-            break
-    return found
+    # The most broken first: fewer, deeper rows re-solve faster than many shallow ones.
+    found.sort(key=lambda m: float(closed[m].sum()))
+    return found[:limit]
 
 
 def cover_lp_bound(prep: Prep, time_limit_s: float = 5.0, max_rounds: int = 100) -> CoverLpResult:
