@@ -359,6 +359,9 @@ def lp_bound(problem: PlanProblem) -> LpResult:
 
 
 # ---- the cover LP: Model I with the opening rule as cover inequalities -----------------------
+# The cover LP holds every allowed prescription (no column generation) up to this many;
+# 64,000 (the demo, 20 periods with re-harvest) solve in about a second.
+COVER_MAX_COLUMNS = 250_000
 COVER_VIOLATION = 1e-4  # how far a cover must be broken by the LP solution to be added
 COVER_MAX_PER_ROUND = 150  # covers added per period and round at most (the most broken)
 
@@ -494,8 +497,9 @@ def cover_lp_bound(prep: Prep, time_limit_s: float = 5.0, max_rounds: int = 100)
     (McDill, Rebain & Braze 2002, Forest Science 48(4):631-642, from memory). Every row
     is valid, so each LP optimum on the way bounds the spatial optimum from above.
 
-    Only the full LP is used (no column generation): above ``CG_MIN_COLUMNS`` allowed
-    prescriptions the result is ``"skipped"``.
+    Only the full LP is used (no column generation, so no Lagrangian correction is
+    needed): above ``COVER_MAX_COLUMNS`` allowed prescriptions the result is
+    ``"skipped"``.
 
     Parameters
     ----------
@@ -515,7 +519,7 @@ def cover_lp_bound(prep: Prep, time_limit_s: float = 5.0, max_rounds: int = 100)
     n, P = prep.n, prep.P
     cols = np.nonzero(prep.allowed)[0]
     nan = float("nan")
-    if len(cols) > CG_MIN_COLUMNS:
+    if len(cols) > COVER_MAX_COLUMNS:
         return CoverLpResult(nan, "skipped", nan, 0, 0, time.perf_counter() - t0)
     rows, stand_of = prep.rows, prep.stand_of
     h = _build_highs(rows, stand_of, prep.value, cols, n)
