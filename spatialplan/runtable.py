@@ -162,13 +162,15 @@ def recorded_settings(run: Mapping[str, str], source: str | Path) -> Settings | 
 
 
 def _bounds(result: Any) -> dict[str, str]:
-    """``best_bound`` (the tightest proven upper bound), its method, the gap and both bounds."""
+    """``best_bound`` (the tightest proven upper bound), its method, the gap and every bound."""
     import math
 
     from spatialplan.schedule import best_bound, best_bound_method, gap
 
     lp = float(result.lp_bound)
     cps = None if result.cpsat_bound is None else float(result.cpsat_bound)
+    cov = getattr(result, "cover_bound", None)  # scenario results may lack it
+    cov = None if cov is None else float(cov)
     best = best_bound(result)
     finite = math.isfinite(best)
     return {
@@ -177,6 +179,7 @@ def _bounds(result: Any) -> dict[str, str]:
         # the gap to the best bound (the solver's own gap uses the same tighter bound)
         "gap": f"{gap(float(result.npv), best) if finite else result.gap:.6f}",
         "bound_aspatial_lp": f"{lp:.2f}" if math.isfinite(lp) else "",
+        "bound_cover_lp": "" if cov is None or not math.isfinite(cov) else f"{cov:.2f}",
         "bound_cpsat": "" if cps is None else f"{cps:.2f}",
     }
 
@@ -214,7 +217,7 @@ def plan_run_info(
     dict
         Keys to text values, ready for :func:`run_table`: ``npv``, ``best_bound``,
         ``best_bound_method``, ``gap`` (to the best bound), ``bound_aspatial_lp``,
-        ``bound_cpsat``, ``ending_value_npv``, ``ltsy_mai_m3_yr``,
+        ``bound_cover_lp``, ``bound_cpsat``, ``ending_value_npv``, ``ltsy_mai_m3_yr``,
         ``ltsy_rotation_m3_yr``, the inputs and their SHA-256, the settings, versions,
         solver status and statistics (``stat_*``).
     """

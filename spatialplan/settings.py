@@ -261,6 +261,8 @@ class SolverSettings:
     seed: int = field(default=0, metadata=_rng(0, 2**31 - 1))
     # Stop when the relative gap of the best plan to the best proven bound is this small.
     stop_gap: float = field(default=0.001, metadata=_rng(0, 1))
+    # Share of the time limit the cover LP bound may use (0 = do not compute it).
+    cover_bound_share: float = field(default=0.05, metadata=_rng(0, 1))
 
 
 @dataclass(frozen=True)

@@ -116,9 +116,14 @@ def test_plan_writes_verified_geopackage(tmp_path: Path, small_forest: tuple[Pat
     # A bound is an upper bound: never below a legal plan's value; the best is the least.
     if run["bound_cpsat"]:
         assert float(run["bound_cpsat"]) >= float(run["npv"]) * (1 - 1e-6)
-    bounds = [float(run[k]) for k in ("bound_aspatial_lp", "bound_cpsat") if run[k]]
+    if run["bound_cover_lp"]:
+        assert float(run["npv"]) * (1 - 1e-6) <= float(run["bound_cover_lp"])
+        assert float(run["bound_cover_lp"]) <= float(run["bound_aspatial_lp"]) * (1 + 1e-6)
+    keys = ("bound_aspatial_lp", "bound_cover_lp", "bound_cpsat")
+    bounds = [float(run[k]) for k in keys if run[k]]
     assert float(run["npv"]) - 0.01 <= float(run["best_bound"]) <= min(bounds) + 0.01
-    assert run["best_bound_method"] in ("aspatial LP (HiGHS)", "CP-SAT")
+    methods = ("aspatial LP (HiGHS)", "LP with opening covers (HiGHS)", "CP-SAT")
+    assert run["best_bound_method"] in methods
     assert float(run["ltsy_mai_m3_yr"]) >= float(run["ltsy_rotation_m3_yr"]) > 0
     # The independent checker agrees when run on the file.
     res = CliRunner().invoke(cli, ["verify", str(out)])
@@ -237,6 +242,8 @@ def test_plan_console_tables_fit_80_columns(
     lp = float(run.get("bound_aspatial_lp") or run["lp_bound"])
     cp_text = run.get("bound_cpsat", run.get("cpsat_bound", ""))
     bounds = {"aspatial LP (HiGHS)": lp}
+    if run.get("bound_cover_lp"):
+        bounds["LP with opening covers (HiGHS)"] = float(run["bound_cover_lp"])
     if cp_text:
         bounds["CP-SAT"] = float(cp_text)
     assert ("NPV", f"{npv:,.0f}", "") in items

@@ -61,7 +61,7 @@ class ScenarioResult:
         ``infeasible``, ``no_solution``, ``input_error``, ``settings_error``, ``error``.
     error, diagnosis
         Message and, for infeasible rules, the diagnosis lines.
-    npv, lp_bound, cpsat_bound, gap, solve_time_s
+    npv, lp_bound, cpsat_bound, gap, solve_time_s, cover_bound
         From :class:`spatialplan.schedule.PlanResult` (NaN when failed).
     verify_ok, verify_verdict
         Independent verification of the written plan.
@@ -96,6 +96,7 @@ class ScenarioResult:
     messages: list[str] = field(default_factory=list)
     wall_s: float = float("nan")
     worker: str = ""
+    cover_bound: float | None = None
 
     @property
     def succeeded(self) -> bool:
@@ -115,6 +116,7 @@ class ScenarioResult:
             npv=float(r.npv),
             lp_bound=float(r.lp_bound),
             cpsat_bound=None if r.cpsat_bound is None else float(r.cpsat_bound),
+            cover_bound=None if r.cover_bound is None else float(r.cover_bound),
             gap=float(r.gap),
             solve_time_s=float(r.solve_time_s),
             verify_ok=bool(outcome.verify.ok),

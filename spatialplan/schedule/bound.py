@@ -26,9 +26,9 @@ import numpy as np
 import scipy.sparse as sp
 
 from spatialplan.problem import PlanProblem, Prescriptions
-from spatialplan.schedule.model import RowSet, build_rows
+from spatialplan.schedule.model import Prep, RowSet, build_rows, mask_bits
 
-__all__ = ["LpResult", "lp_bound", "solve_lp"]
+__all__ = ["CoverLpResult", "LpResult", "cover_lp_bound", "lp_bound", "solve_lp"]
 
 
 @dataclass(frozen=True)
@@ -169,6 +169,42 @@ def _best_per_stand(stand: np.ndarray, score: np.ndarray, count: int) -> np.ndar
     return order[np.arange(len(order)) - first < count]
 
 
+def _build_highs(
+    rows: RowSet, stand_of: np.ndarray, c: np.ndarray, active: np.ndarray, n: int
+) -> highspy.Highs:
+    """A HiGHS instance holding Model I over the prescriptions ``active``.
+
+    Columns: ``x`` for ``active``, then the quantity columns. Rows: convexity (``n``),
+    accounting (``J``), rules (``R``).
+    """
+    J, R = len(rows.names), len(rows)
+    xs_, xi, xv = _x_columns(rows, stand_of, active, n)
+    qs, qi, qv = _q_columns(rows, n)
+    inf = highspy.kHighsInf
+    lp = highspy.HighsLp()
+    lp.num_col_ = len(active) + J
+    lp.num_row_ = n + J + R
+    lp.col_cost_ = np.concatenate([c[active], np.zeros(J)])
+    lp.col_lower_ = np.concatenate([np.zeros(len(active)), np.full(J, -inf)])
+    lp.col_upper_ = np.concatenate([np.ones(len(active)), np.full(J, inf)])
+    lp.row_lower_ = np.concatenate([np.ones(n), np.zeros(J), np.full(R, -inf)])
+    lp.row_upper_ = np.concatenate([np.ones(n), np.zeros(J), rows.rhs])
+    lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
+    start = np.concatenate([xs_[:-1], qs + xs_[-1]])
+    if start[-1] >= 2**31:
+        msg = "the LP has more than 2**31 matrix entries"
+        raise ValueError(msg)
+    lp.a_matrix_.start_ = start.astype(np.int32)
+    lp.a_matrix_.index_ = np.concatenate([xi, qi])
+    lp.a_matrix_.value_ = np.concatenate([xv, qv])
+    del xs_, xi, xv, start
+    lp.sense_ = highspy.ObjSense.kMaximize
+    h = _new_highs()
+    h.setOptionValue("threads", 1)
+    h.passModel(lp)
+    return h
+
+
 def solve_lp(
     problem: PlanProblem,
     rows: RowSet | None = None,
@@ -217,7 +253,7 @@ def solve_lp(
         objective = area[stand_of] * np.asarray(rx.npv_per_ha, dtype=np.float64)
     c = np.asarray(objective, dtype=np.float64)
     cols = np.arange(K) if allowed is None else np.nonzero(np.asarray(allowed, dtype=bool))[0]
-    J, R = len(rows.names), len(rows)
+    J = len(rows.names)
     if len(cols) > CG_MIN_COLUMNS:
         nulls = np.asarray(rx.stand_start[:-1])
         rest = cols[~np.isin(cols, nulls)]
@@ -226,33 +262,7 @@ def solve_lp(
         )
     else:
         active = cols
-    # HiGHS columns: x for ``active``, the quantity columns, then x added by pricing.
-    # Rows: convexity (n), accounting (J), rules (R).
-    xs_, xi, xv = _x_columns(rows, stand_of, active, n)
-    qs, qi, qv = _q_columns(rows, n)
-    inf = highspy.kHighsInf
-    lp = highspy.HighsLp()
-    lp.num_col_ = len(active) + J
-    lp.num_row_ = n + J + R
-    lp.col_cost_ = np.concatenate([c[active], np.zeros(J)])
-    lp.col_lower_ = np.concatenate([np.zeros(len(active)), np.full(J, -inf)])
-    lp.col_upper_ = np.concatenate([np.ones(len(active)), np.full(J, inf)])
-    lp.row_lower_ = np.concatenate([np.ones(n), np.zeros(J), np.full(R, -inf)])
-    lp.row_upper_ = np.concatenate([np.ones(n), np.zeros(J), rows.rhs])
-    lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
-    start = np.concatenate([xs_[:-1], qs + xs_[-1]])
-    if start[-1] >= 2**31:
-        msg = "the LP has more than 2**31 matrix entries"
-        raise ValueError(msg)
-    lp.a_matrix_.start_ = start.astype(np.int32)
-    lp.a_matrix_.index_ = np.concatenate([xi, qi])
-    lp.a_matrix_.value_ = np.concatenate([xv, qv])
-    del xs_, xi, xv, start
-    lp.sense_ = highspy.ObjSense.kMaximize
-    h = _new_highs()
-    h.setOptionValue("threads", 1)
-    h.passModel(lp)
-    del lp
+    h = _build_highs(rows, stand_of, c, active, n)
     hcol = np.concatenate([active, np.full(J, -1)])  # prescription of every HiGHS column
     is_active = np.zeros(K, dtype=bool)
     is_active[active] = True
@@ -346,3 +356,234 @@ def lp_bound(problem: PlanProblem) -> LpResult:
     """
     problem.validate()
     return solve_lp(problem)
+
+
+# ---- the cover LP: Model I with the opening rule as cover inequalities -----------------------
+# The cover LP holds every allowed prescription (no column generation) up to this many;
+# 64,000 (the demo, 20 periods with re-harvest) solve in about a second.
+COVER_MAX_COLUMNS = 250_000
+COVER_VIOLATION = 1e-4  # how far a cover must be broken by the LP solution to be added
+COVER_MAX_PER_ROUND = 150  # covers added per period and round at most (the most broken)
+
+
+@dataclass(frozen=True)
+class CoverLpResult:
+    """Result of :func:`cover_lp_bound`.
+
+    Attributes
+    ----------
+    value
+        Upper bound on the NPV of every legal plan (the last LP optimum with the covers
+        added so far); ``nan`` unless ``status`` is ``"optimal"`` or ``"time_limit"``.
+    status
+        ``"optimal"`` (no violated cover left), ``"time_limit"`` (budget spent; ``value``
+        is still a valid bound), ``"skipped"`` (too many prescriptions for the full LP)
+        or the HiGHS status of the first solve when it failed.
+    lp_value
+        Optimum of the first LP (Model I over the allowed prescriptions, no cover).
+    rounds, covers, seconds
+        HiGHS solves, cover rows added, wall time.
+    """
+
+    value: float
+    status: str
+    lp_value: float
+    rounds: int
+    covers: int
+    seconds: float
+
+
+def _is_connected(indptr: np.ndarray, indices: np.ndarray, members: list[int]) -> bool:
+    """True when ``members`` induce a connected subgraph of the CSR adjacency."""
+    if len(members) <= 1:
+        return True
+    ms = set(members)
+    seen = {members[0]}
+    stack = [members[0]]
+    while stack:
+        i = stack.pop()
+        for j in indices[indptr[i] : indptr[i + 1]].tolist():
+            if j in ms and j not in seen:
+                seen.add(j)
+                stack.append(j)
+    return len(seen) == len(ms)
+
+
+def separate_covers(
+    prep: Prep, openness: np.ndarray, p: int, limit: int = COVER_MAX_PER_ROUND
+) -> list[list[int]]:
+    """Minimal over-size connected stand sets whose cover inequality ``openness`` breaks.
+
+    ``openness`` is the ``(n, P)`` fractional openness of an LP solution (1 where a stand
+    is open from the start). A set ``S`` breaks its cover ``sum_S o[i, p] <= |S| - 1`` when
+    its total *closedness* ``sum_S (1 - o[i, p])`` is below 1. From every stand that may be
+    harvest-open in ``p``, in decreasing openness, a set is grown by adding the neighbour
+    with the least closedness (larger area first on ties) until it is over-size, and
+    abandoned as soon as its closedness reaches 1; then every stand whose removal keeps it
+    connected, over-size and holding a stand not open from the start is dropped (most
+    closed first). With the unit restriction every pair of adjacent stands is over-size.
+    The ``limit`` most broken sets are returned, most broken first.
+    """
+    mx = prep.max_opening
+    oa = prep.opening_area
+    o = openness[:, p]
+    fixed = prep.fixed_open[:, p]
+    closed = 1.0 - o
+    indptr, indices = prep.indptr, prep.indices
+    eps = 1e-9
+
+    def oversize(members: list[int], area: float) -> bool:
+        return (prep.unit and len(members) >= 2) or (mx is not None and area > mx)
+
+    seeds = np.nonzero(~fixed & (o > eps))[0]
+    seeds = seeds[np.argsort(-o[seeds], kind="stable")]
+    found: list[list[int]] = []
+    seen: set[frozenset[int]] = set()
+    for s in seeds.tolist():
+        members = [s]
+        inset = {s}
+        area = float(oa[s])
+        total = float(closed[s])
+        ok = True
+        while not oversize(members, area):
+            best, best_key = -1, (np.inf, 0.0)
+            for i in members:
+                for j in indices[indptr[i] : indptr[i + 1]].tolist():
+                    if j not in inset and o[j] > eps:
+                        key = (float(closed[j]), -float(oa[j]))
+                        if key < best_key:
+                            best, best_key = j, key
+            if best < 0 or total + closed[best] >= 1.0 - COVER_VIOLATION:
+                ok = False
+                break
+            members.append(best)
+            inset.add(best)
+            area += float(oa[best])
+            total += float(closed[best])
+        if not ok:
+            continue
+        for i in sorted(members, key=lambda i: (-closed[i], oa[i])):
+            if len(members) == 1:
+                break
+            rest = [j for j in members if j != i]
+            if (
+                oversize(rest, area - float(oa[i]))
+                and not fixed[rest].all()
+                and _is_connected(indptr, indices, rest)
+            ):
+                members = rest
+                area -= float(oa[i])
+        key_s = frozenset(members)
+        if key_s in seen or float(closed[members].sum()) >= 1.0 - COVER_VIOLATION:
+            continue
+        seen.add(key_s)
+        found.append(sorted(members))
+    # The most broken first: fewer, deeper rows re-solve faster than many shallow ones.
+    found.sort(key=lambda m: float(closed[m].sum()))
+    return found[:limit]
+
+
+def cover_lp_bound(prep: Prep, time_limit_s: float = 5.0, max_rounds: int = 100) -> CoverLpResult:
+    """Upper bound on NPV: Model I with the opening rule as cover inequalities (HiGHS).
+
+    The aspatial LP (:func:`solve_lp`, over the prescriptions a legal plan may choose)
+    is solved, then cover inequalities broken by its solution are added as rows and the
+    LP re-solved from the previous basis (dual simplex), in rounds, until no broken cover
+    is found or the time runs out. A cover is a connected set ``S`` of stands whose
+    opening area exceeds the maximum opening and that holds a stand not open from the
+    start (unit restriction: two adjacent stands); every legal plan keeps, in every period
+    ``p``, ``sum_{i in S} o[i, p] <= |S| - 1``, where ``o[i, p]`` is the sum of the shares
+    of the stand's prescriptions open in ``p`` (1 for a stand open from the start)
+    (McDill, Rebain & Braze 2002, Forest Science 48(4):631-642, from memory). Every row
+    is valid, so each LP optimum on the way bounds the spatial optimum from above.
+
+    Only the full LP is used (no column generation, so no Lagrangian correction is
+    needed): above ``COVER_MAX_COLUMNS`` allowed prescriptions the result is
+    ``"skipped"``.
+
+    Parameters
+    ----------
+    prep
+        The prepared problem (:func:`~spatialplan.schedule.model.prepare`).
+    time_limit_s
+        Budget for all HiGHS solves and separation rounds together.
+    max_rounds
+        Most HiGHS solves.
+
+    Returns
+    -------
+    CoverLpResult
+    """
+    t0 = time.perf_counter()
+    t_end = t0 + float(time_limit_s)
+    n, P = prep.n, prep.P
+    cols = np.nonzero(prep.allowed)[0]
+    nan = float("nan")
+    if len(cols) > COVER_MAX_COLUMNS:
+        return CoverLpResult(nan, "skipped", nan, 0, 0, time.perf_counter() - t0)
+    rows, stand_of = prep.rows, prep.stand_of
+    h = _build_highs(rows, stand_of, prep.value, cols, n)
+    st = stand_of[cols]
+    bits = mask_bits(prep.open_mask[cols], P)  # (A, P) harvest-open periods per column
+    first = np.searchsorted(st, np.arange(n + 1))  # columns of stand i: first[i]:first[i+1]
+    fixed = prep.fixed_open
+    spatial = prep.spatial
+    value = lp_value = nan
+    status = "optimal"
+    rounds = covers = 0
+    while rounds < max_rounds:
+        h.setOptionValue("time_limit", max(t_end - time.perf_counter(), 0.01))
+        h.run()
+        rounds += 1
+        st_run = h.modelStatusToString(h.getModelStatus()).lower()
+        if st_run != "optimal":
+            # A solve cut short proves nothing: keep the previous optimum (still valid).
+            status = "time_limit" if rounds > 1 else st_run
+            break
+        value = float(h.getInfo().objective_function_value)
+        if rounds == 1:
+            lp_value = value
+        if not spatial or time.perf_counter() >= t_end:
+            status = "optimal" if not spatial else "time_limit"
+            break
+        x = np.clip(np.asarray(h.getSolution().col_value)[: len(cols)], 0.0, 1.0)
+        oh = np.zeros((n, P))
+        np.add.at(oh, st, x[:, None] * bits)
+        openness = np.where(fixed, 1.0, np.minimum(oh, 1.0))
+        r_start: list[int] = [0]
+        r_index: list[np.ndarray] = []
+        r_upper: list[float] = []
+        for p in range(P):
+            for members in separate_covers(prep, openness, p):
+                free = [i for i in members if not fixed[i, p]]
+                idx = np.concatenate([np.arange(first[i], first[i + 1]) for i in free])
+                idx = idx[bits[idx, p]]
+                r_index.append(idx)
+                r_start.append(r_start[-1] + len(idx))
+                r_upper.append(float(len(free) - 1))
+            if time.perf_counter() >= t_end:
+                break
+        if not r_upper:
+            status = "optimal"
+            break
+        m = len(r_upper)
+        index = np.concatenate(r_index).astype(np.int32)
+        h.addRows(
+            m,
+            np.full(m, -highspy.kHighsInf),
+            np.asarray(r_upper),
+            len(index),
+            np.asarray(r_start[:-1], dtype=np.int32),
+            index,
+            np.ones(len(index)),
+        )
+        covers += m
+        if time.perf_counter() >= t_end:
+            status = "time_limit"
+            break
+    else:
+        status = "time_limit"
+    del h
+    if rounds >= 1 and np.isnan(value):
+        return CoverLpResult(nan, status, nan, rounds, covers, time.perf_counter() - t0)
+    return CoverLpResult(value, status, lp_value, rounds, covers, time.perf_counter() - t0)

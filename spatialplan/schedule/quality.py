@@ -1,11 +1,13 @@
 """How good a plan is: the proven upper bounds on the optimal NPV and the best of them.
 
-Two methods bound the optimum from above: the aspatial LP (Model I without the spatial
-rules, solved with HiGHS: a relaxation, so its optimum is at least the spatial optimum) and
-CP-SAT's own bound on the full model. The best proven bound is the smaller of the two,
-never below the plan's NPV (a legal plan reaches it), and the NPV itself once the plan is
-proven optimal. The functions take anything with ``npv``, ``lp_bound``, ``cpsat_bound``
-and ``gap``: a :class:`~spatialplan.schedule.PlanResult` or a scenario's result.
+Three methods bound the optimum from above: the aspatial LP (Model I without the spatial
+rules, solved with HiGHS: a relaxation, so its optimum is at least the spatial optimum), the
+same LP with the opening rule added as cover inequalities (still a relaxation, tighter where
+openings bind) and CP-SAT's own bound on the full model. The best proven bound is the
+smallest of them, never below the plan's NPV (a legal plan reaches it), and the NPV itself
+once the plan is proven optimal. The functions take anything with ``npv``, ``lp_bound``,
+``cpsat_bound`` and ``gap`` (``cover_bound`` when there is one): a
+:class:`~spatialplan.schedule.PlanResult` or a scenario's result.
 """
 
 from __future__ import annotations
@@ -18,6 +20,7 @@ __all__ = ["BOUND_METHODS", "HasBounds", "best_bound", "best_bound_method", "pro
 #: The proven bounds a result may carry (attribute -> the method, in words).
 BOUND_METHODS: dict[str, str] = {
     "lp_bound": "aspatial LP (HiGHS)",
+    "cover_bound": "LP with opening covers (HiGHS)",
     "cpsat_bound": "CP-SAT",
 }
 
@@ -30,6 +33,9 @@ class HasBounds(Protocol):
 
     @property
     def lp_bound(self) -> float | None: ...  # pragma: no cover - a protocol
+
+    @property
+    def cover_bound(self) -> float | None: ...  # pragma: no cover - a protocol
 
     @property
     def cpsat_bound(self) -> float | None: ...  # pragma: no cover - a protocol
@@ -49,7 +55,7 @@ def proven_bounds(result: HasBounds) -> dict[str, float]:
     """
     out = {}
     for attr, method in BOUND_METHODS.items():
-        b = getattr(result, attr)
+        b = getattr(result, attr, None)  # results made before a method existed lack it
         if b is not None and math.isfinite(float(b)):
             out[method] = float(b)
     return out
@@ -71,8 +77,8 @@ def _best(result: HasBounds) -> tuple[float, str]:
 def best_bound(result: HasBounds) -> float:
     """The tightest proven upper bound on the optimal NPV.
 
-    The smaller of the aspatial LP bound and CP-SAT's bound on the full model (both bound
-    the optimum from above), never below the plan's own NPV; the NPV itself when the gap
+    The smallest of the aspatial LP bound, the cover LP bound and CP-SAT's bound on the
+    full model (all bound the optimum from above), never below the plan's own NPV; the NPV itself when the gap
     is 0 (the plan is proven optimal). NaN without a plan (NaN NPV) or without any finite
     bound.
 
@@ -81,6 +87,8 @@ def best_bound(result: HasBounds) -> float:
     >>> from types import SimpleNamespace as R
     >>> best_bound(R(npv=90.0, lp_bound=110.0, cpsat_bound=100.0, gap=0.1))
     100.0
+    >>> best_bound(R(npv=90.0, lp_bound=110.0, cover_bound=97.0, cpsat_bound=100.0, gap=0.07))
+    97.0
     >>> best_bound(R(npv=90.0, lp_bound=110.0, cpsat_bound=90.0004, gap=0.0))
     90.0
     """
