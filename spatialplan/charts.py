@@ -665,7 +665,7 @@ def comparison_chart(
     n = len(names)
     x = np.arange(n)
     npv = pd.to_numeric(df["npv"], errors="coerce").to_numpy(float)
-    lp = pd.to_numeric(df["lp_bound"], errors="coerce").to_numpy(float)
+    lp = pd.to_numeric(df["bound_aspatial_lp"], errors="coerce").to_numpy(float)
     gap = pd.to_numeric(df["gap"], errors="coerce").to_numpy(float)
     ran = np.isfinite(npv)
     verified = (df["verification"].astype(str) == "passed").to_numpy() & ran

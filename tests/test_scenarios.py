@@ -281,12 +281,14 @@ def test_monotone_in_opening_size_and_flow_tolerance(tmp_path: Path, client, mon
     assert (t["cost_spatial_rules_lower"] >= -eps).all()
     # The optimum lies between the NPV and every proven upper bound (LP bound, CP-SAT's
     # bound), so the best bound is the smaller bound, never below the NPV.
-    bounds = t[["lp_bound", "cpsat_bound"]].min(axis=1)
+    bounds = t[["bound_aspatial_lp", "bound_cpsat", "bound_cover_lp"]].min(axis=1)
     assert (t["best_bound"] >= t["npv"] - eps).all()
     assert (t["best_bound"] <= bounds + eps).all()
-    assert t["cost_spatial_rules_upper"].to_numpy() == pytest.approx(t["lp_bound"] - t["npv"])
+    assert t["cost_spatial_rules_upper"].to_numpy() == pytest.approx(
+        t["bound_aspatial_lp"] - t["npv"]
+    )
     assert t["cost_spatial_rules_lower"].to_numpy() == pytest.approx(
-        t["lp_bound"] - t["best_bound"]
+        t["bound_aspatial_lp"] - t["best_bound"]
     )
     # Proven optimal (gap 0): no solver shortfall, the two estimates agree.
     proven = t["gap"] == 0

@@ -321,8 +321,9 @@ _FIXED_COLUMNS = frozenset(
         "error",
         "diagnosis",
         "npv",
-        "lp_bound",
-        "cpsat_bound",
+        "bound_aspatial_lp",
+        "bound_cpsat",
+        "bound_cover_lp",
         "best_bound",
         "gap",
         "solve_time_s",
@@ -363,7 +364,7 @@ def comparison_table(
     * one column per varied setting, named by :func:`column_name` (``rules.max_opening_ha``
       -> ``rules_max_opening_ha``), holding the value the scenario ran with (``off`` for
       a rule switched off);
-    * ``status``, ``error``, ``diagnosis``, ``npv``, ``lp_bound``, ``cpsat_bound``,
+    * ``status``, ``error``, ``diagnosis``, ``npv``, ``bound_aspatial_lp``, ``bound_cpsat``, ``bound_cover_lp``,
       ``best_bound`` (:func:`best_bound`), ``gap``, ``solve_time_s``, ``wall_s``;
     * ``verification`` (``passed`` / ``failed``; empty without a plan) and
       ``verify_verdict``;
@@ -404,8 +405,9 @@ def comparison_table(
             "error": r.error or "",
             "diagnosis": " | ".join(r.diagnosis),
             "npv": r.npv,
-            "lp_bound": r.lp_bound,
-            "cpsat_bound": math.nan if r.cpsat_bound is None else r.cpsat_bound,
+            "bound_aspatial_lp": r.lp_bound,
+            "bound_cpsat": math.nan if r.cpsat_bound is None else r.cpsat_bound,
+            "bound_cover_lp": math.nan if r.cover_bound is None else r.cover_bound,
             "best_bound": best_bound(r),
             "gap": r.gap,
             "solve_time_s": r.solve_time_s,
