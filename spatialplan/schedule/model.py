@@ -342,47 +342,26 @@ def build_rows(problem: PlanProblem, rx: Prescriptions | None = None) -> RowSet:
                     vref,
                 )
             )
+    # Per-period targets: (limit, sign, quantity column offset, unit, reference size); a
+    # floor is written as -quantity <= -limit so every row reads "lhs <= rhs".
+    targets = (
+        (fr.volume_max_m3, 1.0, jv, "volume", "<=", "m3", vref),
+        (fr.volume_min_m3, -1.0, jv, "volume", ">=", "m3", vref),
+        (fr.area_max_ha, 1.0, ja, "area", "<=", "ha", aref),
+        (fr.area_min_ha, -1.0, ja, "area", ">=", "ha", aref),
+    )
     for p in range(1, P + 1):
-        if fr.volume_max_m3 is not None:
-            rows.append(
-                Row(
-                    f"period {p} volume <= {fr.volume_max_m3:g} m3",
-                    "targets",
-                    {jv + p - 1: 1.0},
-                    float(fr.volume_max_m3),
-                    vref,
+        for limit, sign, j0, what, op, unit, ref in targets:
+            if limit is not None:
+                rows.append(
+                    Row(
+                        f"period {p} {what} {op} {limit:g} {unit}",
+                        "targets",
+                        {j0 + p - 1: sign},
+                        sign * float(limit),
+                        ref,
+                    )
                 )
-            )
-        if fr.volume_min_m3 is not None:
-            rows.append(
-                Row(
-                    f"period {p} volume >= {fr.volume_min_m3:g} m3",
-                    "targets",
-                    {jv + p - 1: -1.0},
-                    -float(fr.volume_min_m3),
-                    vref,
-                )
-            )
-        if fr.area_max_ha is not None:
-            rows.append(
-                Row(
-                    f"period {p} area <= {fr.area_max_ha:g} ha",
-                    "targets",
-                    {ja + p - 1: 1.0},
-                    float(fr.area_max_ha),
-                    aref,
-                )
-            )
-        if fr.area_min_ha is not None:
-            rows.append(
-                Row(
-                    f"period {p} area >= {fr.area_min_ha:g} ha",
-                    "targets",
-                    {ja + p - 1: -1.0},
-                    -float(fr.area_min_ha),
-                    aref,
-                )
-            )
     allk = np.arange(K)
     a_k = a[stand_of]
     null = np.asarray(rx.stand_start[:-1], dtype=np.int64)
