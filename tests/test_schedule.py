@@ -14,7 +14,6 @@ import signal
 import subprocess
 import sys
 
-import networkx as nx
 import numpy as np
 import pytest
 import shapely
@@ -25,7 +24,7 @@ from spatialplan.problem import FlowRules, PlanProblem
 from spatialplan.schedule import diagnose, lp_bound, solve
 from spatialplan.settings import SolverSettings
 from spatialplan.synthetic import voronoi_forest
-from tests.graphs import grid_edges, touch_edges
+from tests.graphs import grid_edges, opening_breaches, touch_edges
 
 EXACT = SolverSettings(time_limit_s=30.0, workers=2, seed=1, stop_gap=0.0)
 
@@ -110,28 +109,8 @@ def rule_breaks(pr: PlanProblem, period: np.ndarray) -> list[str]:
             out.append(f"volume min {p}")
         if f.volume_max_m3 is not None and V[p] > f.volume_max_m3 + eps:
             out.append(f"volume max {p}")
-    g = nx.Graph()
-    g.add_nodes_from(range(n))
-    g.add_edges_from(map(tuple, np.asarray(pr.edges)))
-    for p in range(1, P + 1):
-        # Green-up delay of G periods: harvested in q -> open in q .. q + G - 1 (common
-        # practice, no source)
-        new = {
-            i
-            for i in range(n)
-            if period[i] and period[i] <= p <= period[i] + pr.green_up_periods[i] - 1
-        }
-        opn = new | {i for i in range(n) if pr.initially_open[i, p - 1]}
-        sub = g.subgraph(opn)
-        if pr.max_opening_ha is not None:
-            for comp in nx.connected_components(sub):
-                if comp & new and sum(pr.opening_area_ha[i] for i in comp) > pr.max_opening_ha:
-                    out.append(f"opening {p} {sorted(comp)}")
-        if pr.unit_restriction:
-            for a, b in sub.edges:
-                if a in new or b in new:
-                    out.append(f"unit {p} {a}-{b}")
-    return out
+    cuts = [[int(period[i])] if period[i] else [] for i in range(n)]
+    return out + opening_breaches(pr, cuts)
 
 
 def brute_force(pr: PlanProblem) -> tuple[float, np.ndarray]:

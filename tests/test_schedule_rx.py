@@ -24,7 +24,7 @@ from spatialplan.problem import FlowRules, PlanProblem, Prescriptions
 from spatialplan.schedule import diagnose, lp_bound, solve
 from spatialplan.settings import SolverSettings
 from spatialplan.synthetic import synthetic_prescriptions, voronoi_forest
-from tests.graphs import grid_edges, touch_edges
+from tests.graphs import grid_edges, opening_breaches, touch_edges
 
 EXACT = SolverSettings(time_limit_s=60.0, workers=2, seed=1, stop_gap=0.0)
 RATE, PRICE = 0.04, 50.0
@@ -135,24 +135,7 @@ def rule_breaks(pr: PlanProblem, plan: np.ndarray) -> list[str]:
                 )
                 if old < f.old_forest_min_share * total - 1e-9 * total:
                     out.append(f"old forest group {g} period {p + 1}")
-    g = nx.Graph()
-    g.add_nodes_from(range(n))
-    g.add_edges_from(map(tuple, np.asarray(pr.edges)))
-    G = pr.green_up_periods
-    for p in range(1, P + 1):
-        # cut in q -> open in q .. q + G - 1, after every harvest
-        new = {i for i in range(n) if any(q <= p <= q + G[i] - 1 for q in cuts[i])}
-        opn = new | {i for i in range(n) if pr.initially_open[i, p - 1]}
-        sub = g.subgraph(opn)
-        if pr.max_opening_ha is not None:
-            for comp in nx.connected_components(sub):
-                if comp & new and sum(pr.opening_area_ha[i] for i in comp) > pr.max_opening_ha:
-                    out.append(f"opening {p} {sorted(comp)}")
-        if pr.unit_restriction:
-            for a, b in sub.edges:
-                if a in new or b in new:
-                    out.append(f"unit {p} {a}-{b}")
-    return out
+    return out + opening_breaches(pr, cuts)
 
 
 def spatial_ok(pr: PlanProblem, p: int, open_set: int, new_set: int) -> bool:
