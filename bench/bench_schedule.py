@@ -174,6 +174,8 @@ def run_one(n: int, seed: int, time_limit: float, workers: int, strategy: str, t
         "peak_rss_mb": round(peak_rss_mb()),
         "ratio_at": {t: ratio_at(t) for t in (5, 15, 30, 60, 120, 300, 600) if t <= time_limit},
         "local_search": res.stats.get("local_search"),
+        # windows by kind: how many, NPV gained, seconds, final window size in variables
+        "lns_kinds": res.stats.get("lns_kinds"),
         **{k: v for k, v in res.stats.items() if not isinstance(v, list | dict)},
     }
 

@@ -108,15 +108,23 @@ class CoverPool:
 
 class _Callback(cp_model.CpSolverSolutionCallback):
     def __init__(
-        self, on_solution: Callable[[float, float], None] | None, registry: dict | None = None
+        self,
+        on_solution: Callable[[float, float], None] | None,
+        registry: dict | None = None,
+        xidx: np.ndarray | None = None,
     ) -> None:
         super().__init__()
         self.on_solution = on_solution
         self.registry = registry
+        self.xidx = xidx
+        self.found: list[np.ndarray] = []  # x values of every solution, in the order found
 
     def on_solution_callback(self) -> None:
         if self.registry is not None and self.registry.get("interrupted"):
             self.stop_search()
+        if self.xidx is not None:
+            sol = np.asarray(self.response_proto.solution, dtype=np.int64)
+            self.found.append(sol[self.xidx] > 0)
         if self.on_solution is not None:
             self.on_solution(self.objective_value, self.best_objective_bound)
 
@@ -131,6 +139,8 @@ class SolveOut:
     bound_int: float | None
     wall_s: float
     stats: dict = field(default_factory=dict)
+    # Every improving solution CP-SAT reported, oldest first (only with ``keep_all``).
+    plans: list[np.ndarray] = field(default_factory=list)
 
 
 class SubModel:
@@ -149,6 +159,10 @@ class SubModel:
         Objective scaling shared by all models of one solve.
     unit_edges
         Add the unit-restriction clauses eagerly (all edges touching ``free``).
+    allow
+        (K,) bool: the prescriptions a free stand may take here (``None``: all allowed
+        ones). A free stand whose no-harvest prescription is not allowed must take one of
+        its allowed harvesting prescriptions; ``base`` must hold an allowed one for it.
     """
 
     def __init__(
@@ -158,6 +172,7 @@ class SubModel:
         base: np.ndarray,
         scaling: Scaling,
         unit_edges: bool = True,
+        allow: np.ndarray | None = None,
     ) -> None:
         self.prep = prep
         n = prep.n
@@ -172,7 +187,14 @@ class SubModel:
         _, self.base_hop = prep.open_matrices(base)
         # x variables: allowed harvesting prescriptions of the free stands (sorted by k,
         # hence by stand).
-        ks = np.nonzero(prep.choice & self.is_free[prep.stand_of])[0]
+        sel = prep.choice & self.is_free[prep.stand_of]
+        if allow is not None:
+            sel &= allow
+        ks = np.nonzero(sel)[0]
+        # Free stands that must harvest (their no-harvest prescription is not allowed).
+        must = np.zeros(n, dtype=bool)
+        if allow is not None:
+            must[self.free] = ~allow[prep.null[self.free]]
         si = prep.stand_of[ks]
         self.cell_k = ks
         self.cell_i = si
@@ -185,7 +207,10 @@ class SubModel:
         self.n_amo = 0
         for i in self.free.tolist():
             a, b = int(starts[i]), int(ends[i])
-            if b - a > 1:
+            if must[i]:
+                m.add_exactly_one(self.xvars[a:b])
+                self.n_amo += 1
+            elif b - a > 1:
                 m.add_at_most_one(self.xvars[a:b])
                 self.n_amo += 1
         self.ovars: dict[tuple[int, int], cp_model.IntVar] = {}
@@ -318,6 +343,12 @@ class SubModel:
         for a, b in e[sel]:
             self.add_cover(frozenset((int(a), int(b))))
 
+    def plan_of(self, on: np.ndarray) -> np.ndarray:
+        """The full plan (prescription per stand) of a 0/1 vector over the x variables."""
+        plan = self.base.copy()
+        plan[self.cell_i[on]] = self.cell_k[on]
+        return plan
+
     # ---- hints and solving --------------------------------------------------------------
     def hint(self, plan: np.ndarray) -> None:
         """Use ``plan`` (prescriptions of the free stands) as the solution hint."""
@@ -357,8 +388,13 @@ class SubModel:
         gap: float = 0.0,
         registry: dict | None = None,
         on_solution: Callable[[float, float], None] | None = None,
+        keep_all: bool = False,
     ) -> SolveOut:
-        """Run CP-SAT; ``registry["solver"]`` holds the live solver (for Ctrl-C)."""
+        """Run CP-SAT; ``registry["solver"]`` holds the live solver (for Ctrl-C).
+
+        With ``keep_all`` every improving solution is returned in ``plans``: one that
+        breaks an opening cover not yet in the model may be preceded by a legal one.
+        """
         solver = cp_model.CpSolver()
         prm = solver.parameters
         prm.max_time_in_seconds = max(float(time_limit_s), 0.01)
@@ -369,7 +405,7 @@ class SubModel:
         # Ctrl-C is handled in Python (schedule._sigint); CP-SAT's own C++ handler would
         # abort the process when the solve runs outside the main thread.
         prm.catch_sigint_signal = False
-        cb = _Callback(on_solution, registry)
+        cb = _Callback(on_solution, registry, self.xidx if keep_all else None)
         if registry is not None:
             registry["solver"] = solver
         t0 = time.perf_counter()
@@ -420,9 +456,10 @@ class SubModel:
         }.get(st, "unknown")
         if name in ("optimal", "feasible"):
             sol = np.asarray(solver.response_proto.solution, dtype=np.int64)
-            on = sol[self.xidx] > 0
-            plan = self.base.copy()
-            plan[self.cell_i[on]] = self.cell_k[on]
-            return SolveOut(name, plan, solver.objective_value, solver.best_objective_bound, wall)
+            plan = self.plan_of(sol[self.xidx] > 0)
+            plans = [self.plan_of(on) for on in cb.found]
+            return SolveOut(
+                name, plan, solver.objective_value, solver.best_objective_bound, wall, plans=plans
+            )
         bound = solver.best_objective_bound if name == "unknown" else None
         return SolveOut(name, None, None, bound, wall)

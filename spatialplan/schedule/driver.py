@@ -20,8 +20,10 @@ How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling mod
 4. Small and medium models: CP-SAT (:mod:`spatialplan.schedule.cpsat`) on the full model
    hinted with the best plan, minimal cover clauses added lazily in rounds (each returned
    plan is checked, its over-size openings become clauses, near-legal plans are repaired in
-   a small window); it gives the bound and proves optimality on small instances. Spatial
-   CP-SAT LNS (:mod:`spatialplan.schedule.windows`) remains available for benchmarks.
+   a small window); it gives the bound and proves optimality on small instances. Large
+   models: the annealing until it stalls (at most ``LOCAL_SHARE_WINDOWS`` of the time),
+   then CP-SAT windows (:func:`spatialplan.schedule.windows.lns`) to the deadline: a window
+   of stands is freed, the rest fixed at the best plan, and re-optimised exactly.
 5. The final plan is re-checked in float64 against every rule.
 
 The empty plan: when the rules allow it (with default even flow ``0 <= 0`` holds) harvesting
@@ -66,6 +68,9 @@ __all__ = [
 FULL_MODEL_MAX_VARS = 6_000
 # Share of the remaining time the local search may use before CP-SAT on small models.
 LOCAL_SHARE_FULL = 0.4
+# Largest share of the remaining time the annealing may use before the CP-SAT windows on
+# large models (it usually stalls earlier and hands over then).
+LOCAL_SHARE_WINDOWS = 0.3
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
 
 
@@ -199,9 +204,11 @@ def solve(
     on_progress
         Called with a :class:`SolveProgress` whenever the best plan improves.
     _strategy
-        ``"auto"``, ``"full"`` (local search, then CP-SAT on the full model),
-        ``"local"`` (local search to the deadline), ``"lns"`` (spatial CP-SAT LNS) or
-        ``"heuristic"`` (LP + greedy only); for benchmarks.
+        ``"auto"`` (``"full"`` up to ``FULL_MODEL_MAX_VARS`` prescription variables,
+        ``"windows"`` above), ``"full"`` (local search, then CP-SAT on the full model),
+        ``"windows"`` (local search until it stalls, then CP-SAT windows),
+        ``"local"`` (local search to the deadline), ``"lns"`` (CP-SAT windows only) or
+        ``"heuristic"`` (LP + greedy only); the named ones are for benchmarks.
 
     Returns
     -------
@@ -287,11 +294,13 @@ def solve(
         n_vars = prep.n_vars
         strategy = _strategy
         if strategy == "auto":
-            strategy = "full" if n_vars <= FULL_MODEL_MAX_VARS else "local"
+            strategy = "full" if n_vars <= FULL_MODEL_MAX_VARS else "windows"
         stats["strategy"] = strategy
         infeasible = False
         if strategy != "heuristic" and not ctx.stopped() and n_vars > 0:
-            if ctx.best is None or (not prep.harvests_any(ctx.best) and strategy != "local"):
+            if ctx.best is None or (
+                not prep.harvests_any(ctx.best) and strategy not in ("local", "windows")
+            ):
                 # No legal start for the local search: let CP-SAT find one first.
                 infeasible = _full(ctx, settings, stats, until_first=True)
             if not infeasible and ctx.best is not None and strategy in ("full", "local"):
@@ -308,8 +317,19 @@ def solve(
                 )
             if strategy == "full" and not infeasible and not ctx.stopped():
                 infeasible = _full(ctx, settings, stats, until_first=False)
+            if strategy == "windows" and not infeasible and ctx.best is not None:
+                # Large models: the annealing until it stalls (at most a share of the
+                # time), then CP-SAT windows to the deadline.
+                _local(
+                    ctx,
+                    stats,
+                    time.perf_counter() + LOCAL_SHARE_WINDOWS * max(ctx.left(), 0.0),
+                    patience=2,
+                    repeat=False,
+                )
+                lns(ctx, _lp_stand_value(prep, lp))
             if strategy == "lns" and not infeasible and ctx.best is not None:
-                lns(ctx)
+                lns(ctx, _lp_stand_value(prep, lp))
     # 4. result
     elapsed = time.perf_counter() - t0
     stats["solve_time_s"] = round(elapsed, 3)
@@ -348,7 +368,7 @@ def solve(
         status = "interrupted"
     elif ctx.proven or (plan_gap <= settings.stop_gap and not (empty_plan and lp_value > 0)):
         status = "optimal"
-    elif time.perf_counter() >= deadline - 0.05 or strategy in ("lns", "local"):
+    elif time.perf_counter() >= deadline - 0.05 or strategy in ("lns", "local", "windows"):
         status = "time_limit"
     else:
         status = "feasible"
@@ -482,6 +502,14 @@ def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: boo
     info["moves_per_s"] = round(info["moves"] / dt) if dt > 0 else None
     info["gain"] = ctx.best_npv - start_npv
     stats["local_search"] = info
+
+
+def _lp_stand_value(prep, lp: LpResult) -> np.ndarray | None:
+    """(K,) -> (n,): each stand's value in the LP solution, against no harvest."""
+    if lp.status != "optimal" or lp.x_rx is None:
+        return None
+    x = np.asarray(lp.x_rx, dtype=float)
+    return np.bincount(prep.stand_of, weights=x * prep.rel_value, minlength=prep.n)
 
 
 def _first_slice(prep) -> float:

@@ -156,8 +156,12 @@ def lazy_rounds(
     repair: bool = False,
     full: bool = False,
     hint: np.ndarray | None = None,
+    keep_all: int = 0,
 ) -> str:
     """Solve ``sub`` in rounds, adding covers until its plan is legal or time runs out.
+
+    With ``keep_all > 0`` up to that many earlier solutions of each call are checked when
+    the last one breaks the opening rule (the best legal one is kept).
 
     Returns ``"optimal"`` (legal and proven best for this model), ``"legal"``,
     ``"infeasible"`` (the model has no plan at all) or ``"open"``.
@@ -173,7 +177,9 @@ def lazy_rounds(
         h = hint if hint is not None else ctx.best
         if h is not None:
             sub.hint(h)
-        out = sub.solve(min(slice_s, left), ctx.workers, ctx.seed, gap, ctx.registry)
+        out = sub.solve(
+            min(slice_s, left), ctx.workers, ctx.seed, gap, ctx.registry, keep_all=keep_all > 0
+        )
         ctx.bump("cpsat_calls")
         ctx.stats["cpsat_time_s"] = ctx.stats.get("cpsat_time_s", 0.0) + out.wall_s
         if out.status == "infeasible":
@@ -189,6 +195,19 @@ def lazy_rounds(
             slice_s *= 2
             continue
         br = spatial_breaches(ctx.prep, out.plan)
+        if br and keep_all:
+            # The final plan breaks covers not yet in the model; an earlier solution of the
+            # same call may be legal and still better than the incumbent. Its breaches give
+            # covers too, so one call teaches the model several of them.
+            for plan in reversed(out.plans[:-1][-keep_all:]):
+                if plan_npv(ctx.prep.problem, plan, ctx.prep.rx) <= ctx.best_npv:
+                    break
+                b2 = spatial_breaches(ctx.prep, plan)
+                if not b2:
+                    if ctx.offer(plan, source):
+                        result = "legal"
+                    break
+                _new_covers(ctx, plan, b2)
         if not br:
             ctx.offer(out.plan, source)
             if out.status == "optimal":
@@ -228,40 +247,195 @@ def _repair(ctx: SearchCtx, plan: np.ndarray, breaches: list) -> None:
     ctx.bump("repairs")
 
 
-def lns(ctx: SearchCtx, window: int = 250, window_time_s: float = 4.0) -> None:
-    """Spatial large neighbourhood search from ``ctx.best`` until the deadline."""
+# Neighbourhood kinds of the window search (see :func:`lns`).
+WINDOW_KINDS = ("ball", "lp_miss", "opening", "two_balls", "periods")
+
+
+@dataclass
+class _Arm:
+    """What one neighbourhood kind has paid so far."""
+
+    tries: int = 0
+    gain: float = 0.0
+    seconds: float = 0.0
+    target_vars: float = 0.0
+
+
+def _grow(prep: Prep, seeds: list[int], target_vars: float, weight: np.ndarray) -> np.ndarray:
+    """Breadth-first region from ``seeds`` until its free variables reach ``target_vars``.
+
+    ``weight`` counts the variables a stand brings (stands with none are passed through).
+    """
+    seen = set(seeds)
+    dq = deque(seeds)
+    out: list[int] = []
+    total = 0.0
+    while dq and total < target_vars:
+        i = dq.popleft()
+        if weight[i] > 0:
+            out.append(i)
+            total += float(weight[i])
+        for j in prep.neighbours(i):
+            j = int(j)
+            if j not in seen:
+                seen.add(j)
+                dq.append(j)
+    return np.array(sorted(out), dtype=np.int64)
+
+
+def _pick(rng: np.random.Generator, arms: dict[str, _Arm]) -> str:
+    """Each kind once, then by NPV gained per second (with a floor that keeps exploring)."""
+    for k, a in arms.items():
+        if a.tries == 0:
+            return k
+    rates = np.array([a.gain / max(a.seconds, 1e-3) for a in arms.values()])
+    top = float(rates.max())
+    w = rates + 0.15 * (top if top > 0 else 1.0)
+    return list(arms)[int(rng.choice(len(arms), p=w / w.sum()))]
+
+
+def _window(
+    ctx: SearchCtx,
+    kind: str,
+    target_vars: float,
+    rng: np.random.Generator,
+    stand_vars: np.ndarray,
+    lp_stand_value: np.ndarray | None,
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """Free stands (and the prescriptions they may take) of one window of ``kind``."""
+    prep = ctx.prep
+    assert ctx.best is not None
+    best = ctx.best
+    has = np.nonzero(stand_vars > 0)[0]
+    if kind == "lp_miss" and lp_stand_value is not None:
+        # Stands whose LP value the plan misses most are where a re-packing pays.
+        miss = np.maximum(lp_stand_value - prep.rel_value[best], 0.0)[has]
+        if miss.sum() > 0:
+            return _grow(
+                prep, [int(rng.choice(has, p=miss / miss.sum()))], target_vars, stand_vars
+            ), None
+    if kind == "opening" and prep.spatial:
+        _, hop = prep.open_matrices(best)
+        cut = prep.harvest_mask[best] != 0
+        periods = [p for p in range(prep.P) if (hop[:, p] & cut).any()]
+        if periods:
+            p = int(rng.choice(periods))
+            members = np.nonzero(hop[:, p])[0]
+            # The stands of up to three openings near a random open stand, then rings.
+            seed = int(rng.choice(members))
+            inset = set(members.tolist())
+            region = _grow(prep, [seed], target_vars / 3.0, np.where(hop[:, p], 1.0, 0.0))
+            seeds = [int(i) for i in region if int(i) in inset] or [seed]
+            return _grow(prep, seeds, target_vars, stand_vars), None
+    if kind == "two_balls" and has.size > 4:
+        a = _grow(prep, [int(rng.choice(has))], target_vars / 2.0, stand_vars)
+        far = np.setdiff1d(has, a)
+        for _ in range(5):
+            # A second ball that does not touch the first one, so volume can move between
+            # two parts of the forest under the flow rows.
+            if far.size == 0:
+                break
+            b = _grow(prep, [int(rng.choice(far))], target_vars / 2.0, stand_vars)
+            if not np.intersect1d(a, b).size:
+                return np.union1d(a, b), None
+    if kind == "periods" and prep.P > 3:
+        # Only a few consecutive periods free: every free stand keeps its harvests outside
+        # them, so the window can be several times larger for the same model size.
+        w = int(rng.integers(2, 4))
+        a0 = int(rng.integers(0, prep.P - w + 1))
+        inside = np.uint64(((1 << w) - 1) << a0)
+        outside = ~inside
+        hm = prep.harvest_mask
+        allow = (hm & outside) == (hm[best[prep.stand_of]] & outside)
+        allow[best] = True
+        weight = np.bincount(prep.stand_of[prep.choice & allow], minlength=prep.n)
+        seed = int(rng.choice(has))
+        return _grow(prep, [seed], target_vars, weight.astype(float)), allow
+    return _grow(prep, [int(rng.choice(has))], target_vars, stand_vars), None
+
+
+def lns(
+    ctx: SearchCtx,
+    lp_stand_value: np.ndarray | None = None,
+    target_vars: float = 2500.0,
+    window_time_s: float = 3.0,
+    kinds: tuple[str, ...] = WINDOW_KINDS,
+    stall_s: float = 15.0,
+) -> None:
+    """Window search from ``ctx.best`` until the deadline (a matheuristic LNS).
+
+    Each round frees a window of stands (about ``target_vars`` prescription variables),
+    keeps every other stand at its prescription in the best plan (constants in the
+    openings and the rule rows, so the incumbent stays a solution and is the hint) and
+    re-optimises the window with CP-SAT and lazy opening covers. Window kinds
+    (:data:`WINDOW_KINDS`): a ball around a random stand; a ball around a stand whose LP
+    value the plan misses; the stands of current openings and rings around them; two
+    distant balls in one model; a larger ball where only 2-3 consecutive periods are
+    free. Kinds are drawn by the NPV they gained per second; each kind's window grows when
+    CP-SAT proves it optimal quickly and shrinks when it neither proves nor improves. After
+    ``stall_s`` seconds without a gain every window size is redrawn (half or double).
+    """
     prep = ctx.prep
     rng = np.random.default_rng(ctx.seed)
-    has = np.nonzero(prep.has_choice)[0]
-    if has.size == 0 or ctx.best is None:
+    if ctx.best is None or not prep.has_choice.any():
         return
-    order = list(rng.permutation(has))
-    size = min(window, has.size)
-    sweeps = 0
-    while not ctx.stopped():
-        if not order:
-            order = list(rng.permutation(has))
-            sweeps += 1
-        s = int(order.pop())
-        free = _ball(prep, s, size)
-        sub = SubModel(prep, free, ctx.best, ctx.scaling)
-        before = ctx.best_npv
+    stand_vars = np.bincount(prep.stand_of[prep.choice], minlength=prep.n).astype(float)
+    total_vars = float(stand_vars.sum())
+    floor = max(30.0, 5.0 * float(stand_vars[stand_vars > 0].mean()))
+    if lp_stand_value is None:
+        kinds = tuple(k for k in kinds if k != "lp_miss")
+    if not prep.spatial:
+        kinds = tuple(k for k in kinds if k != "opening")
+    arms = {k: _Arm(target_vars=min(target_vars, total_vars)) for k in kinds}
+    last_gain = time.perf_counter()
+    while not ctx.stopped() and ctx.left() > 0.3:
+        # (building a window takes up to a few tenths of a second: none is started in
+        # the last 0.3 s, so the time limit holds)
+        kind = _pick(rng, arms)
+        arm = arms[kind]
+        free, allow = _window(ctx, kind, arm.target_vars, rng, stand_vars, lp_stand_value)
+        if free.size == 0:
+            arm.tries += 1
+            continue
         t0 = time.perf_counter()
+        before = ctx.best_npv
+        sub = SubModel(prep, free, ctx.best, ctx.scaling, allow=allow)
         res = lazy_rounds(
-            ctx, sub, min(window_time_s, ctx.left()), "lns", first_slice_s=window_time_s
+            ctx,
+            sub,
+            min(window_time_s, ctx.left()),
+            "lns_" + kind,
+            first_slice_s=0.5,
+            keep_all=8,
         )
         dt = time.perf_counter() - t0
+        gain = ctx.best_npv - before
+        arm.tries += 1
+        arm.seconds += dt
+        arm.gain += gain
         ctx.bump("lns_windows")
-        if ctx.best_npv > before:
+        ctx.bump("lns_windows_" + kind)
+        if gain > 0:
             ctx.bump("lns_improving_windows")
-        # Adapt the window to CP-SAT's speed: proven windows may grow, slow ones shrink.
+            last_gain = time.perf_counter()
         if res == "optimal" and dt < 0.5 * window_time_s:
-            size = min(int(size * 1.25) + 1, has.size)
-        elif res != "optimal":
-            size = max(int(size * 0.8), 30)
-        # Drop covered seeds: stands in this window need not seed again this sweep.
-        if len(order) > 50:
-            fs = set(free.tolist()[:: max(1, len(free) // 10)])
-            order = [i for i in order if i not in fs]
-    ctx.stats["lns_sweeps"] = sweeps
-    ctx.stats["lns_window_final"] = size
+            arm.target_vars = min(arm.target_vars * 1.3, total_vars)
+        elif res != "optimal" and gain <= 0:
+            arm.target_vars = max(arm.target_vars * 0.8, floor)
+        if time.perf_counter() - last_gain > stall_s:
+            # Stalled: other window sizes (the tool must not idle to the deadline).
+            for a in arms.values():
+                a.target_vars = float(
+                    np.clip(a.target_vars * rng.choice([0.5, 2.0]), floor, total_vars)
+                )
+            ctx.bump("lns_stall_resizes")
+            last_gain = time.perf_counter()
+    ctx.stats["lns_kinds"] = {
+        k: {
+            "windows": a.tries,
+            "gain": round(a.gain, 2),
+            "seconds": round(a.seconds, 2),
+            "final_vars": round(a.target_vars),
+        }
+        for k, a in arms.items()
+    }
