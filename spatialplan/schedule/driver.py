@@ -21,8 +21,8 @@ How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling mod
    hinted with the best plan, minimal cover clauses added lazily in rounds (each returned
    plan is checked, its over-size openings become clauses, near-legal plans are repaired in
    a small window); it gives the bound and proves optimality on small instances. Large
-   models: the annealing until it stalls (at most ``LOCAL_SHARE_WINDOWS`` of the time),
-   then CP-SAT windows (:func:`spatialplan.schedule.windows.lns`) to the deadline: a window
+   models: the annealing for ``LOCAL_SHARE_WINDOWS`` of the remaining time, then
+   CP-SAT windows (:func:`spatialplan.schedule.windows.lns`) to the deadline: a window
    of stands is freed, the rest fixed at the best plan, and re-optimised exactly.
 5. The final plan is re-checked in float64 against every rule.
 
@@ -68,9 +68,10 @@ __all__ = [
 FULL_MODEL_MAX_VARS = 6_000
 # Share of the remaining time the local search may use before CP-SAT on small models.
 LOCAL_SHARE_FULL = 0.4
-# Largest share of the remaining time the annealing may use before the CP-SAT windows on
-# large models (it usually stalls earlier and hands over then).
-LOCAL_SHARE_WINDOWS = 0.3
+# Share of the remaining time the annealing uses before the CP-SAT windows on large models
+# (measured in docs/benchmarks.md, "CP-SAT windows": the annealing gains most early on
+# single-harvest landscapes, the windows where chained flow rows stall it).
+LOCAL_SHARE_WINDOWS = 0.5
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
 
 
@@ -318,14 +319,14 @@ def solve(
             if strategy == "full" and not infeasible and not ctx.stopped():
                 infeasible = _full(ctx, settings, stats, until_first=False)
             if strategy == "windows" and not infeasible and ctx.best is not None:
-                # Large models: the annealing until it stalls (at most a share of the
-                # time), then CP-SAT windows to the deadline.
+                # Large models: the annealing (restarted with longer rounds) for a share
+                # of the time, then CP-SAT windows to the deadline.
                 _local(
                     ctx,
                     stats,
                     time.perf_counter() + LOCAL_SHARE_WINDOWS * max(ctx.left(), 0.0),
                     patience=2,
-                    repeat=False,
+                    repeat=True,
                 )
                 lns(ctx, _lp_stand_value(prep, lp))
             if strategy == "lns" and not infeasible and ctx.best is not None:
