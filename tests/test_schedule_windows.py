@@ -13,13 +13,14 @@ import dataclasses
 import itertools
 import time
 
+import networkx as nx
 import numpy as np
 import pytest
 
 from spatialplan.problem import FlowRules, PlanProblem
 from spatialplan.schedule import solve
 from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
-from spatialplan.schedule.model import plan_npv, prepare
+from spatialplan.schedule.model import plan_npv, prepare, window_covers
 from spatialplan.schedule.windows import SearchCtx, lazy_rounds, lns, seed_pair_covers
 from tests.graphs import grid_edges
 from tests.test_schedule_rx import EXACT, harvest_periods, rule_breaks, rx_problem
@@ -147,7 +148,7 @@ def test_window_search_keeps_flow_rows_and_never_loses_value() -> None:
     assert ctx.best_npv >= start - 1e-6
     assert ctx.stats["lns_windows"] >= 2
     kinds = ctx.stats["lns_kinds"]
-    assert {"ball", "opening", "two_balls", "periods"} <= set(kinds)
+    assert {"ball", "opening", "two_balls", "scatter", "periods"} <= set(kinds)
 
 
 def test_windows_strategy_returns_a_legal_plan_under_the_bounds() -> None:
@@ -157,3 +158,42 @@ def test_windows_strategy_returns_a_legal_plan_under_the_bounds() -> None:
     assert rule_breaks(pr, res.prescription) == []
     assert res.npv <= res.lp_bound + 1e-6 * abs(res.lp_bound)
     assert res.stats["strategy"] == "windows"
+    # The annealing's first run, then blocks of annealing or windows (the method's order).
+    blocks = res.stats["search_blocks"]
+    assert blocks[0][0] == "local"
+    assert {m for m, _, _ in blocks} <= {"local", "windows"}
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_window_covers_are_every_minimal_oversize_connected_set(seed: int) -> None:
+    # Reference: every subset of the 3 x 4 grid's stands, connectivity by networkx, kept
+    # when it is over-size, holds a free stand, uses only free or sometime-open stands,
+    # and no proper connected subset is over-size (definition of a minimal cover).
+    rng = np.random.default_rng(seed)
+    age = rng.uniform(10.0, 100.0, 12)
+    pr = rx_problem(grid_edges(3, 4), age, seed, periods=4, max_opening=30.0)
+    prep = prepare(pr)
+    free = np.sort(rng.choice(12, 5, replace=False))
+    open_any = rng.random(12) < 0.5
+    got, complete = window_covers(prep, free, open_any)
+    assert complete
+    g = nx.Graph([tuple(e) for e in np.asarray(pr.edges).tolist()])
+    take = open_any.copy()
+    take[free] = True
+    area = pr.opening_area_ha
+    mx = float(pr.max_opening_ha or 0.0)
+
+    def over(s: tuple[int, ...]) -> bool:
+        return bool(area[list(s)].sum() > mx) and nx.is_connected(g.subgraph(s))
+
+    want = set()
+    for r in range(1, 13):
+        for s in itertools.combinations(range(12), r):
+            if not all(take[i] for i in s) or not set(s) & set(free.tolist()) or not over(s):
+                continue
+            if any(over(t) for q in range(1, r) for t in itertools.combinations(s, q)):
+                continue
+            want.add(frozenset(s))
+    assert want  # the case has covers to find
+    assert set(got) == want
+    assert len(got) == len(set(got))  # each listed once

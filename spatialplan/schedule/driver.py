@@ -21,8 +21,8 @@ How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling mod
    hinted with the best plan, minimal cover clauses added lazily in rounds (each returned
    plan is checked, its over-size openings become clauses, near-legal plans are repaired in
    a small window); it gives the bound and proves optimality on small instances. Large
-   models: the annealing for ``LOCAL_SHARE_WINDOWS`` of the remaining time, then
-   CP-SAT windows (:func:`spatialplan.schedule.windows.lns`) to the deadline: a window
+   models: the annealing until it stalls, then blocks of annealing and of CP-SAT windows
+   (the next block to the one that gained more per second) (:func:`spatialplan.schedule.windows.lns`) to the deadline: a window
    of stands is freed, the rest fixed at the best plan, and re-optimised exactly.
 5. The final plan is re-checked in float64 against every rule.
 
@@ -50,7 +50,13 @@ from spatialplan.schedule.bound import LpResult, cover_lp_bound, lp_bound, solve
 from spatialplan.schedule.construct import greedy_plan
 from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
 from spatialplan.schedule.model import check_plan, plan_harvests, plan_npv, prepare
-from spatialplan.schedule.windows import SearchCtx, lazy_rounds, lns, seed_pair_covers
+from spatialplan.schedule.windows import (
+    SearchCtx,
+    WindowSearch,
+    lazy_rounds,
+    lns,
+    seed_pair_covers,
+)
 from spatialplan.settings import SolverSettings
 
 __all__ = [
@@ -68,10 +74,12 @@ __all__ = [
 FULL_MODEL_MAX_VARS = 6_000
 # Share of the remaining time the local search may use before CP-SAT on small models.
 LOCAL_SHARE_FULL = 0.4
-# Share of the remaining time the annealing uses before the CP-SAT windows on large models
-# (measured in docs/benchmarks.md, "CP-SAT windows": the annealing gains most early on
-# single-harvest landscapes, the windows where chained flow rows stall it).
-LOCAL_SHARE_WINDOWS = 0.5
+# Large models, after the annealing's first stall: blocks of this share of the time limit
+# (at least BLOCK_MIN_S) go to the annealing or the CP-SAT windows, whichever gained more
+# per second in its last block (docs/benchmarks.md, "CP-SAT windows": the annealing gains
+# more on single-harvest landscapes, the windows where chained flow rows stall it).
+BLOCK_SHARE = 0.15
+BLOCK_MIN_S = 5.0
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
 
 
@@ -319,16 +327,7 @@ def solve(
             if strategy == "full" and not infeasible and not ctx.stopped():
                 infeasible = _full(ctx, settings, stats, until_first=False)
             if strategy == "windows" and not infeasible and ctx.best is not None:
-                # Large models: the annealing (restarted with longer rounds) for a share
-                # of the time, then CP-SAT windows to the deadline.
-                _local(
-                    ctx,
-                    stats,
-                    time.perf_counter() + LOCAL_SHARE_WINDOWS * max(ctx.left(), 0.0),
-                    patience=2,
-                    repeat=True,
-                )
-                lns(ctx, _lp_stand_value(prep, lp))
+                _alternate(ctx, stats, _lp_stand_value(prep, lp), float(settings.time_limit_s))
             if strategy == "lns" and not infeasible and ctx.best is not None:
                 lns(ctx, _lp_stand_value(prep, lp))
     # 4. result
@@ -462,22 +461,38 @@ def _offer_local(ctx: SearchCtx, plan: np.ndarray) -> None:
     ctx.offer(plan, "local")
 
 
-def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: bool) -> None:
+def _local(
+    ctx: SearchCtx,
+    stats: dict,
+    until: float,
+    patience: int,
+    repeat: bool,
+    state: dict | None = None,
+) -> None:
     """Simulated annealing from the best plan (:mod:`spatialplan.schedule.anneal`).
 
     With ``repeat`` the search starts again from the best plan with longer rounds and the
     next seed whenever it stalls, until ``until``. Rounds are ``max(50,000, 400 n, 15 x
-    prescription variables)`` moves to begin with.
+    prescription variables)`` moves to begin with. ``state`` carries the round length,
+    the seed counter and the totals from one call to the next (blocks of one solve).
     """
     prep = ctx.prep
     assert ctx.best is not None
+    state = {} if state is None else state
     # Longer rounds with many prescriptions per stand (re-harvest models): 3M moves a
     # round gave 93.5 % of the LP bound in 60 s on the 2,000-stand estate landscape,
     # 800k-move rounds 92.7 %. The single-harvest model keeps 400 moves per stand.
-    round_moves = max(50_000, 400 * prep.n, 15 * prep.n_vars)
-    k = 0
+    round_moves = state.get("round_moves", max(50_000, 400 * prep.n, 15 * prep.n_vars))
+    k = state.get("k", 0)
     tl = time.perf_counter()
-    info: dict = {"runs": 0, "moves": 0, "rounds": 0, "improving_rounds": 0}
+    info: dict = stats.get("local_search") or {
+        "runs": 0,
+        "moves": 0,
+        "rounds": 0,
+        "improving_rounds": 0,
+        "seconds": 0.0,
+        "gain": 0.0,
+    }
     start_npv = ctx.best_npv
     while ctx.best is not None and not ctx.stopped() and time.perf_counter() < until:
         res = anneal(
@@ -494,15 +509,59 @@ def _local(ctx: SearchCtx, stats: dict, until: float, patience: int, repeat: boo
         info["moves"] += res.moves
         info["rounds"] += res.rounds
         info["improving_rounds"] += res.improving_rounds
+        k += 1
         if not repeat:
             break
-        k += 1
         round_moves *= 2
-    dt = time.perf_counter() - tl
-    info["seconds"] = round(dt, 3)
+    state["round_moves"], state["k"] = round_moves, k
+    info["seconds"] = round(info["seconds"] + time.perf_counter() - tl, 3)
+    dt = info["seconds"]
     info["moves_per_s"] = round(info["moves"] / dt) if dt > 0 else None
-    info["gain"] = ctx.best_npv - start_npv
+    info["gain"] += ctx.best_npv - start_npv
     stats["local_search"] = info
+
+
+def _alternate(
+    ctx: SearchCtx, stats: dict, lp_stand_value: np.ndarray | None, time_limit_s: float
+) -> None:
+    """The annealing until it stalls, then blocks of annealing or CP-SAT windows.
+
+    Each method gets one block in turn; afterwards the next block goes to the one that
+    gained more NPV per second in its last block, and every third block re-measures the
+    other one (what pays changes as the plan improves).
+    """
+    state: dict = {}
+    t = time.perf_counter()
+    before = ctx.best_npv
+    _local(ctx, stats, ctx.deadline, patience=2, repeat=False, state=state)
+    blocks = [("local", round(time.perf_counter() - t, 2), round(ctx.best_npv - before, 2))]
+    windows = WindowSearch(ctx, lp_stand_value)
+    block = max(BLOCK_MIN_S, BLOCK_SHARE * time_limit_s)
+    rate: dict[str, float | None] = {"windows": None, "local": None}
+    i = 0
+    while ctx.best is not None and not ctx.stopped() and ctx.left() > 0.3:
+        if rate["windows"] is None:
+            m = "windows"
+        elif rate["local"] is None:
+            m = "local"
+        else:
+            order = sorted(rate, key=lambda k: rate[k] or 0.0, reverse=True)
+            m = order[1] if i % 3 == 2 else order[0]
+        t = time.perf_counter()
+        before = ctx.best_npv
+        if m == "windows":
+            windows.run(min(t + block, ctx.deadline))
+        else:
+            # A cut-short annealing round is still hot and finds nothing: the block
+            # holds at least one whole round at the measured move rate.
+            mps = stats["local_search"].get("moves_per_s") or 1e5
+            span = max(block, 1.2 * state["round_moves"] / mps)
+            _local(ctx, stats, min(t + span, ctx.deadline), patience=2, repeat=True, state=state)
+        dt = time.perf_counter() - t
+        rate[m] = (ctx.best_npv - before) / max(dt, 1e-3)
+        blocks.append((m, round(dt, 2), round(ctx.best_npv - before, 2)))
+        i += 1
+    stats["search_blocks"] = blocks
 
 
 def _lp_stand_value(prep, lp: LpResult) -> np.ndarray | None:
