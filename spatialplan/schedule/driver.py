@@ -80,6 +80,9 @@ LOCAL_SHARE_FULL = 0.4
 # more on single-harvest landscapes, the windows where chained flow rows stall it).
 BLOCK_SHARE = 0.15
 BLOCK_MIN_S = 5.0
+# The annealing's first run (its quick climb) ends when it stalls or after this share of
+# the remaining time (on the demo its rounds keep improving a little for the whole limit).
+FIRST_LOCAL_SHARE = 0.3
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
 
 
@@ -524,7 +527,8 @@ def _local(
 def _alternate(
     ctx: SearchCtx, stats: dict, lp_stand_value: np.ndarray | None, time_limit_s: float
 ) -> None:
-    """The annealing until it stalls, then blocks of annealing or CP-SAT windows.
+    """The annealing until it stalls (at most ``FIRST_LOCAL_SHARE`` of the time left),
+    then blocks of annealing or CP-SAT windows.
 
     Each method gets one block in turn; afterwards the next block goes to the one that
     gained more NPV per second in its last block, and every third block re-measures the
@@ -533,7 +537,14 @@ def _alternate(
     state: dict = {}
     t = time.perf_counter()
     before = ctx.best_npv
-    _local(ctx, stats, ctx.deadline, patience=2, repeat=False, state=state)
+    _local(
+        ctx,
+        stats,
+        t + FIRST_LOCAL_SHARE * max(ctx.left(), 0.0),
+        patience=2,
+        repeat=False,
+        state=state,
+    )
     blocks = [("local", round(time.perf_counter() - t, 2), round(ctx.best_npv - before, 2))]
     windows = WindowSearch(ctx, lp_stand_value)
     block = max(BLOCK_MIN_S, BLOCK_SHARE * time_limit_s)
