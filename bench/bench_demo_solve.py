@@ -67,6 +67,7 @@ def main(argv: list[str] | None = None) -> None:
                         "solve_s": round(res.solve_time_s, 2),
                         "local_search": res.stats.get("local_search"),
                         "lns_kinds": res.stats.get("lns_kinds"),
+                        "search_blocks": res.stats.get("search_blocks"),
                         "violations": len(check_plan(prep, res.prescription)),
                     },
                     default=str,

@@ -531,8 +531,8 @@ def _alternate(
     then blocks of annealing or CP-SAT windows.
 
     Each method gets one block in turn; afterwards the next block goes to the one that
-    gained more NPV per second in its last block, and every third block re-measures the
-    other one (what pays changes as the plan improves).
+    gained more NPV per second in its last block, and the other one is re-measured after
+    three blocks without a turn (what pays changes as the plan improves).
     """
     state: dict = {}
     t = time.perf_counter()
@@ -549,7 +549,7 @@ def _alternate(
     windows = WindowSearch(ctx, lp_stand_value)
     block = max(BLOCK_MIN_S, BLOCK_SHARE * time_limit_s)
     rate: dict[str, float | None] = {"windows": None, "local": None}
-    i = 0
+    idle = {"windows": 0, "local": 0}  # blocks since each method last ran
     while ctx.best is not None and not ctx.stopped() and ctx.left() > 0.3:
         if rate["windows"] is None:
             m = "windows"
@@ -557,7 +557,8 @@ def _alternate(
             m = "local"
         else:
             order = sorted(rate, key=lambda k: rate[k] or 0.0, reverse=True)
-            m = order[1] if i % 3 == 2 else order[0]
+            m = order[1] if idle[order[1]] >= 3 else order[0]
+        idle = {k: 0 if k == m else v + 1 for k, v in idle.items()}
         t = time.perf_counter()
         before = ctx.best_npv
         if m == "windows":
@@ -571,7 +572,6 @@ def _alternate(
         dt = time.perf_counter() - t
         rate[m] = (ctx.best_npv - before) / max(dt, 1e-3)
         blocks.append((m, round(dt, 2), round(ctx.best_npv - before, 2)))
-        i += 1
     stats["search_blocks"] = blocks
 
 
