@@ -498,6 +498,7 @@ def _local(
     }
     start_npv = ctx.best_npv
     while ctx.best is not None and not ctx.stopped() and time.perf_counter() < until:
+        start_round = ctx.best_npv
         res = anneal(
             prep,
             ctx.best,
@@ -509,6 +510,12 @@ def _local(
             on_best=lambda per, v: _offer_local(ctx, per),
         )
         info["runs"] += 1
+        # NPV per second of the run's last round: what one more round is likely worth.
+        h = res.history
+        if h and res.seconds > 0 and res.moves > 0:
+            prev_v, prev_m = (h[-2][2], h[-2][1]) if len(h) >= 2 else (start_round, 0)
+            round_s = (h[-1][1] - prev_m) / (res.moves / res.seconds)
+            state["last_round_rate"] = (h[-1][2] - prev_v) / max(round_s, 1e-3)
         info["moves"] += res.moves
         info["rounds"] += res.rounds
         info["improving_rounds"] += res.improving_rounds
@@ -530,8 +537,9 @@ def _alternate(
     """The annealing until it stalls (at most ``FIRST_LOCAL_SHARE`` of the time left),
     then blocks of annealing or CP-SAT windows.
 
-    Each method gets one block in turn; afterwards the next block goes to the one that
-    gained more NPV per second in its last block, and the other one is re-measured after
+    The windows get the first block; afterwards the next block goes to the one that
+    gained more NPV per second in its last block (the annealing's first run counts by its
+    last round), and the other one is re-measured after
     three blocks without a turn (what pays changes as the plan improves).
     """
     state: dict = {}
@@ -548,7 +556,9 @@ def _alternate(
     blocks = [("local", round(time.perf_counter() - t, 2), round(ctx.best_npv - before, 2))]
     windows = WindowSearch(ctx, lp_stand_value)
     block = max(BLOCK_MIN_S, BLOCK_SHARE * time_limit_s)
-    rate: dict[str, float | None] = {"windows": None, "local": None}
+    # The annealing is first judged by what its last round gained per second (its early
+    # rounds climb fast and say little about the next one).
+    rate: dict[str, float | None] = {"windows": None, "local": state.get("last_round_rate")}
     idle = {"windows": 0, "local": 0}  # blocks since each method last ran
     while ctx.best is not None and not ctx.stopped() and ctx.left() > 0.3:
         if rate["windows"] is None:
