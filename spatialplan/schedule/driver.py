@@ -21,9 +21,10 @@ How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling mod
    hinted with the best plan, minimal cover clauses added lazily in rounds (each returned
    plan is checked, its over-size openings become clauses, near-legal plans are repaired in
    a small window); it gives the bound and proves optimality on small instances. Large
-   models: the annealing until it stalls, then blocks of annealing and of CP-SAT windows
-   (the next block to the one that gained more per second) (:func:`spatialplan.schedule.windows.lns`) to the deadline: a window
-   of stands is freed, the rest fixed at the best plan, and re-optimised exactly.
+   models: the annealing until it stalls, then blocks of annealing or of CP-SAT windows
+   (:class:`spatialplan.schedule.windows.WindowSearch`) to the deadline, each block to the
+   one that gained more per second; a window frees some stands, keeps the rest at the best
+   plan and re-optimises the freed ones exactly.
 5. The final plan is re-checked in float64 against every rule.
 
 The empty plan: when the rules allow it (with default even flow ``0 <= 0`` holds) harvesting

@@ -10,11 +10,12 @@ CP-SAT proved optimal for a model holding only some covers is optimal for the fu
 legal plan: the stands of the offending openings and their neighbours are freed, the rest
 fixed at the proposal, and the window is solved by lazy rounds.
 
-*Spatial LNS.* Large neighbourhood search (Shaw 1998, from memory) over windows of the
-adjacency graph: a breadth-first ball of a few hundred stands around a seed stand is freed,
-every other stand keeps its prescription in the best plan (and enters the openings and the flow
-rows as constants), the window is re-optimised with CP-SAT, and improvements are kept.
-Windows adapt their size to how fast CP-SAT closes them.
+*Windows.* Large neighbourhood search (Shaw 1998, from memory) with CP-SAT inside
+(:class:`WindowSearch`): a window of stands of one of several kinds is freed, every other
+stand keeps its prescription in the best plan (and enters the openings and the rule rows as
+constants), the window is re-optimised with its opening covers written up front, and
+improvements are kept. Kinds are drawn by what they gained per second; window sizes adapt
+to how fast CP-SAT closes them.
 """
 
 from __future__ import annotations
@@ -125,26 +126,6 @@ def _new_covers(ctx: SearchCtx, plan: np.ndarray, breaches: list) -> int:
             k += ctx.pool.add(s)
     ctx.bump("covers_found", k)
     return k
-
-
-def _ball(prep: Prep, seed: int, size: int, extra: np.ndarray | None = None) -> np.ndarray:
-    """Breadth-first ball of ``size`` stands with a harvesting prescription around ``seed``."""
-    has = prep.has_choice
-    seen = {seed}
-    dq = deque([seed])
-    out: list[int] = []
-    while dq and len(out) < size:
-        i = dq.popleft()
-        if has[i]:
-            out.append(i)
-        for j in prep.neighbours(i):
-            j = int(j)
-            if j not in seen:
-                seen.add(j)
-                dq.append(j)
-    if extra is not None:
-        out = sorted(set(out) | {int(i) for i in extra if has[i]})
-    return np.array(sorted(out), dtype=np.int64)
 
 
 def lazy_rounds(
@@ -371,7 +352,8 @@ class WindowSearch:
     Each round frees a window of stands (about ``target_vars`` prescription variables),
     keeps every other stand at its prescription in the best plan (constants in the
     openings and the rule rows, so the incumbent stays a solution and is the hint) and
-    re-optimises the window with CP-SAT and lazy opening covers. Window kinds
+    re-optimises the window with CP-SAT (every minimal opening cover holding a free stand
+    written up front, lazy cover rounds as the safety net). Window kinds
     (:data:`WINDOW_KINDS`): a ball around a random stand; a ball around a stand whose LP
     value the plan misses; the stands of current openings and rings around them; two
     or six balls apart in one model; a larger ball where only 2-3 consecutive periods
