@@ -26,7 +26,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from spatialplan.problem import PlanProblem, Prescriptions
-from spatialplan.schedule.model import Prep, RowSet, build_rows, mask_bits
+from spatialplan.schedule.model import Prep, RowSet, build_rows, is_connected, mask_bits
 
 __all__ = ["CoverLpResult", "LpResult", "cover_lp_bound", "lp_bound", "solve_lp"]
 
@@ -393,22 +393,6 @@ class CoverLpResult:
     seconds: float
 
 
-def _is_connected(indptr: np.ndarray, indices: np.ndarray, members: list[int]) -> bool:
-    """True when ``members`` induce a connected subgraph of the CSR adjacency."""
-    if len(members) <= 1:
-        return True
-    ms = set(members)
-    seen = {members[0]}
-    stack = [members[0]]
-    while stack:
-        i = stack.pop()
-        for j in indices[indptr[i] : indptr[i + 1]].tolist():
-            if j in ms and j not in seen:
-                seen.add(j)
-                stack.append(j)
-    return len(seen) == len(ms)
-
-
 def separate_covers(
     prep: Prep, openness: np.ndarray, p: int, limit: int = COVER_MAX_PER_ROUND
 ) -> list[list[int]]:
@@ -469,7 +453,7 @@ def separate_covers(
             if (
                 oversize(rest, area - float(oa[i]))
                 and not fixed[rest].all()
-                and _is_connected(indptr, indices, rest)
+                and is_connected(prep, rest)
             ):
                 members = rest
                 area -= float(oa[i])

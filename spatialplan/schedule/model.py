@@ -42,6 +42,7 @@ __all__ = [
     "check_plan",
     "extract_covers",
     "first_period",
+    "is_connected",
     "mask_bits",
     "open_masks",
     "plan_from_periods",
@@ -685,7 +686,8 @@ def check_plan(prep: Prep, plan: np.ndarray) -> list[str]:
     return msgs
 
 
-def _connected(prep: Prep, members: list[int]) -> bool:
+def is_connected(prep: Prep, members: list[int]) -> bool:
+    """True when ``members`` induce a connected subgraph of the stand adjacency."""
     if len(members) <= 1:
         return True
     ms = set(members)
@@ -755,7 +757,7 @@ def extract_covers(
                 continue
             if not any(hop[j, p] for j in rest):
                 continue
-            if _connected(prep, rest):
+            if is_connected(prep, rest):
                 members = rest
         out.append(frozenset(members))
     return list(dict.fromkeys(out))
@@ -821,7 +823,7 @@ def window_covers(
                 # grows back to the set one neighbour at a time).
                 ms = list(members)
                 if all(
-                    area - oa[u] <= mx or not _connected(prep, [j for j in ms if j != u])
+                    area - oa[u] <= mx or not is_connected(prep, [j for j in ms if j != u])
                     for u in ms
                 ):
                     found.append(members)
