@@ -39,7 +39,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from ortools.sat.python import cp_model
 
-from spatialplan.schedule.model import Prep
+from spatialplan.schedule.model import Prep, mask_bits
 
 __all__ = ["CoverPool", "Scaling", "SubModel", "make_scaling"]
 
@@ -280,68 +280,86 @@ class SubModel:
 
     def add_cover(self, s: frozenset[int]) -> int:
         """Add the clauses of cover ``s`` for every period; returns how many were added."""
+        return self.add_cover_sets([s])
+
+    def _can_open(self) -> np.ndarray:
+        """(n, P) bool: a free stand has an allowed prescription keeping it open then."""
+        if not hasattr(self, "_canopen"):
+            prep = self.prep
+            bits = np.zeros(prep.n, dtype=np.uint64)
+            if len(self.cell_i):
+                np.bitwise_or.at(bits, self.cell_i, self._omask)
+            self._canopen = mask_bits(bits, prep.P)
+        return self._canopen
+
+    def add_cover_sets(self, sets: list[frozenset[int]]) -> int:
+        """Add the clauses of many covers at once; returns how many clauses were added.
+
+        For cover ``S`` and period ``p``: a fixed stand that is closed in ``p`` makes the
+        clause void, as does a free stand that cannot be open then; fixed open stands are
+        constants; the clause is "not every free stand of ``S`` open". When every stand of
+        ``S`` is open from the start, no free stand may be harvest-open then (unit
+        clauses). Which case applies is worked out for all covers and periods with numpy;
+        only the clauses themselves are built one by one.
+        """
+        if not sets:
+            return 0
         prep = self.prep
-        fixed = prep.fixed_open
+        n, P = prep.n, prep.P
+        width = max(len(s) for s in sets)
+        M = np.full((len(sets), width), n, dtype=np.int64)
+        for r, s in enumerate(sets):
+            M[r, : len(s)] = sorted(s)
+        fixed = np.zeros((n + 1, P), dtype=bool)
+        fixed[:n] = prep.fixed_open
+        free = np.zeros(n + 1, dtype=bool)
+        free[:n] = self.is_free
+        can = np.zeros((n + 1, P), dtype=bool)
+        can[:n] = self._can_open()
+        hop = np.zeros((n + 1, P), dtype=bool)
+        hop[:n] = self.base_hop & ~self.is_free[:, None]
+        pad = np.zeros((n + 1, P), dtype=bool)
+        pad[n] = True
+        fr = free[:, None]
+        void = (fr & ~fixed & ~can) | (~fr & ~fixed & ~hop & ~pad)
+        lit = fr & ~fixed & can
+        close = fr & fixed & can
+        F = free[M]  # (C, L)
+        V = void[M]  # (C, L, P)
+        anyfree: np.ndarray = np.asarray(F.any(axis=1))
+        keep = ~V.any(axis=1) & anyfree[:, None]
+        has_lit = lit[M].any(axis=1)
+        new = hop[M].any(axis=1)
+        units = keep & ~has_lit & ~new & close[M].any(axis=1)
+        keep &= has_lit
         added = 0
-        for p in range(prep.P):
-            lits = []
-            must_close = []
-            skip = False
-            any_free = False
-            fixed_new = False
-            for i in s:
-                if self.is_free[i]:
-                    any_free = True
-                    if fixed[i, p]:
-                        o = self._o(i, p)
-                        if o is not None:
-                            must_close.append(o)
-                        continue
-                    o = self._o(i, p)
-                    if o is None:
-                        skip = True
-                        break
-                    lits.append(o)
-                else:
-                    if fixed[i, p]:
-                        fixed_new |= bool(self.base_hop[i, p])
-                        continue
-                    if not self.base_hop[i, p]:
-                        skip = True
-                        break
-                    fixed_new = True
-            if skip or not any_free:
-                continue
-            if lits:
-                self.m.add_bool_or([~v for v in lits])
-                added += 1
-            elif not fixed_new:
-                # Every stand of s is open from the start: no new harvest may join it.
-                for v in must_close:
-                    self.m.add_bool_or([~v])
-                    added += 1
-            # else: the base plan already breaks this cover outside the free stands.
+        for r, p in zip(*np.nonzero(keep), strict=True):
+            lits = [self._o(int(i), int(p)) for i in M[r] if i < n and lit[i, p]]
+            self.m.add_bool_or([~v for v in lits if v is not None])
+            added += 1
+        for r, p in zip(*np.nonzero(units), strict=True):
+            for i in M[r]:
+                if i < n and close[i, p]:
+                    o = self._o(int(i), int(p))
+                    if o is not None:
+                        self.m.add_bool_or([~o])
+                        added += 1
         self.n_cover_clauses += added
         return added
 
     def add_covers(self, pool: CoverPool, ids: list[int] | None = None) -> int:
         """Add the pool's covers (those touching free stands) not yet in this model."""
         ids = pool.touching(self.free) if ids is None else ids
-        total = 0
-        for k in ids:
-            if k in self.added:
-                continue
-            self.added.add(k)
-            total += self.add_cover(pool.covers[k])
-        return total
+        todo = [k for k in ids if k not in self.added]
+        self.added.update(todo)
+        return self.add_cover_sets([pool.covers[k] for k in todo])
 
     def _unit_clauses(self) -> None:
         e = np.asarray(self.prep.problem.edges, dtype=np.int64).reshape(-1, 2)
         if e.size == 0:
             return
         sel = self.is_free[e[:, 0]] | self.is_free[e[:, 1]]
-        for a, b in e[sel]:
-            self.add_cover(frozenset((int(a), int(b))))
+        self.add_cover_sets([frozenset((int(a), int(b))) for a, b in e[sel]])
 
     def plan_of(self, on: np.ndarray) -> np.ndarray:
         """The full plan (prescription per stand) of a 0/1 vector over the x variables."""

@@ -331,9 +331,15 @@ def solve(
             if strategy == "full" and not infeasible and not ctx.stopped():
                 infeasible = _full(ctx, settings, stats, until_first=False)
             if strategy == "windows" and not infeasible and ctx.best is not None:
-                _alternate(ctx, stats, _lp_stand_value(prep, lp), float(settings.time_limit_s))
+                _alternate(
+                    ctx,
+                    stats,
+                    _lp_stand_value(prep, lp),
+                    float(settings.time_limit_s),
+                    _lp_volume(lp),
+                )
             if strategy == "lns" and not infeasible and ctx.best is not None:
-                lns(ctx, _lp_stand_value(prep, lp))
+                lns(ctx, _lp_stand_value(prep, lp), lp_volume=_lp_volume(lp))
     # 4. result
     elapsed = time.perf_counter() - t0
     stats["solve_time_s"] = round(elapsed, 3)
@@ -533,7 +539,11 @@ def _local(
 
 
 def _alternate(
-    ctx: SearchCtx, stats: dict, lp_stand_value: np.ndarray | None, time_limit_s: float
+    ctx: SearchCtx,
+    stats: dict,
+    lp_stand_value: np.ndarray | None,
+    time_limit_s: float,
+    lp_volume: np.ndarray | None = None,
 ) -> None:
     """The annealing until it stalls (at most ``FIRST_LOCAL_SHARE`` of the time left),
     then blocks of annealing or CP-SAT windows.
@@ -555,7 +565,7 @@ def _alternate(
         state=state,
     )
     blocks = [("local", round(time.perf_counter() - t, 2), round(ctx.best_npv - before, 2))]
-    windows = WindowSearch(ctx, lp_stand_value)
+    windows = WindowSearch(ctx, lp_stand_value, lp_volume=lp_volume)
     block = max(BLOCK_MIN_S, BLOCK_SHARE * time_limit_s)
     # The annealing is first judged by what its last round gained per second (its early
     # rounds climb fast and say little about the next one).
@@ -592,6 +602,13 @@ def _lp_stand_value(prep, lp: LpResult) -> np.ndarray | None:
         return None
     x = np.asarray(lp.x_rx, dtype=float)
     return np.bincount(prep.stand_of, weights=x * prep.rel_value, minlength=prep.n)
+
+
+def _lp_volume(lp: LpResult) -> np.ndarray | None:
+    """(P,) harvest volume of the LP solution by period (``None`` without one)."""
+    if lp.status != "optimal":
+        return None
+    return np.asarray(lp.period_volume_m3, dtype=float)
 
 
 def _first_slice(prep) -> float:

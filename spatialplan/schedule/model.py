@@ -805,15 +805,45 @@ def window_covers(
     >>> window_covers(prep, np.array([0]), np.array([False, True, False]))
     ([], True)
     """
-    mx = prep.max_opening
-    if mx is None:
-        return [], True
-    oa = prep.opening_area
     take = np.asarray(open_any, dtype=bool).copy()
     take[np.asarray(free, dtype=np.int64)] = True
-    seen: set[frozenset[int]] = set()
+    found, done = covers_from_roots(prep, free, take, max_sets)
+    return found, bool(done.size == np.asarray(free).size)
+
+
+def covers_from_roots(
+    prep: Prep,
+    roots: np.ndarray,
+    take: np.ndarray,
+    max_sets: int = 100_000,
+    done: np.ndarray | None = None,
+) -> tuple[list[frozenset[int]], np.ndarray]:
+    """Minimal over-size connected sets of ``take`` stands holding a stand of ``roots``.
+
+    Roots are handled one after the other; the sets grown from a root avoid the roots
+    already finished (here or, through ``done`` (n,) bool, in earlier calls): a set holding
+    a finished root was listed with that root. Stops after ``max_sets`` grown sets.
+
+    Returns the sets found and the roots finished (every minimal set holding one of them
+    and no earlier finished root is in the list).
+    """
+    mx = prep.max_opening
+    roots = np.asarray(roots, dtype=np.int64)
+    if mx is None:
+        return [], roots
+    oa = prep.opening_area
+    ok = np.asarray(take, dtype=bool).copy()
+    if done is not None:
+        ok &= ~done
+    nbr = prep.neighbours
+    seen = 0
     found: list[frozenset[int]] = []
-    for r in np.asarray(free, dtype=np.int64).tolist():
+    finished: list[int] = []
+    for r in roots.tolist():
+        if not ok[r]:
+            finished.append(r)
+            continue
+        visited: set[frozenset[int]] = set()
         stack = [(frozenset((r,)), float(oa[r]))]
         while stack:
             members, area = stack.pop()
@@ -828,12 +858,15 @@ def window_covers(
                 ):
                     found.append(members)
                 continue
-            front = {int(j) for i in members for j in prep.neighbours(i) if take[j]} - members
+            front = {int(j) for i in members for j in nbr(i) if ok[j]} - members
             for v in sorted(front):
                 grown = members | {v}
-                if grown not in seen:
-                    seen.add(grown)
+                if grown not in visited:
+                    visited.add(grown)
                     stack.append((grown, area + float(oa[v])))
-            if len(seen) > max_sets:
-                return found, False
-    return found, True
+            if seen + len(visited) > max_sets:
+                return found, np.array(finished, dtype=np.int64)
+        seen += len(visited)
+        finished.append(r)
+        ok[r] = False
+    return found, np.array(finished, dtype=np.int64)

@@ -31,7 +31,9 @@ from spatialplan.schedule.cpsat import CoverPool, Scaling, SubModel
 from spatialplan.schedule.model import (
     Prep,
     check_plan,
+    covers_from_roots,
     extract_covers,
+    plan_harvests,
     plan_npv,
     spatial_breaches,
     window_covers,
@@ -232,8 +234,10 @@ def _repair(ctx: SearchCtx, plan: np.ndarray, breaches: list) -> None:
 # Neighbourhood kinds of the window search (see :func:`lns`).
 # In the order of their first try: on the demo forest (tight chained flow rows) the
 # few-period windows gained 0.8-1.1 % of the bound in 20 s and balls 0.04-0.2 %; on the
-# single-harvest bench landscape opening windows gained most (docs/benchmarks.md).
-WINDOW_KINDS = ("periods", "opening", "ball", "lp_miss", "two_balls", "scatter")
+# single-harvest bench landscape opening windows gained most (docs/benchmarks.md). A
+# ``forest`` window is a few-period window over the whole forest (or as much of it as its
+# size allows): volume can then move along the whole chain of flow rows at once.
+WINDOW_KINDS = ("forest", "periods", "opening", "ball", "lp_miss", "two_balls", "scatter")
 # A few-period window starts this many times larger (each free stand has fewer choices).
 PERIODS_SIZE = 3.0
 
@@ -289,6 +293,7 @@ def _window(
     rng: np.random.Generator,
     stand_vars: np.ndarray,
     lp_stand_value: np.ndarray | None,
+    deficit: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Free stands (and the prescriptions they may take) of one window of ``kind``."""
     prep = ctx.prep
@@ -330,17 +335,24 @@ def _window(
                 if out.size and np.sum(stand_vars[out]) >= 0.9 * target_vars:
                     break
         return out, None
-    if kind == "periods" and prep.P > 3:
+    if kind in ("periods", "forest") and prep.P > 3:
         # Only a few consecutive periods free: every free stand keeps its harvests outside
         # them, so the window can be several times larger for the same model size.
         w = int(rng.integers(2, 4))
         a0 = int(rng.integers(0, prep.P - w + 1))
+        if kind == "forest" and deficit is not None:
+            # Where the plan's volume falls short of the LP's: the periods it must fill.
+            short = np.convolve(np.maximum(deficit, 0.0), np.ones(w), "valid")
+            short = short + 0.05 * max(float(short.max()), 1.0)
+            a0 = int(rng.choice(short.size, p=short / short.sum()))
         inside = np.uint64(((1 << w) - 1) << a0)
         outside = ~inside
         hm = prep.harvest_mask
         allow = (hm & outside) == (hm[best[prep.stand_of]] & outside)
         allow[best] = True
         weight = np.bincount(prep.stand_of[prep.choice & allow], minlength=prep.n)
+        if kind == "forest" and weight.sum() <= target_vars:
+            return np.nonzero(weight > 0)[0], allow
         seed = int(rng.choice(has))
         return _grow(prep, [seed], target_vars, weight.astype(float)), allow
     return _grow(prep, [int(rng.choice(has))], target_vars, stand_vars), None
@@ -370,6 +382,7 @@ class WindowSearch:
         window_time_s: float = 3.0,
         kinds: tuple[str, ...] = WINDOW_KINDS,
         stall_s: float = 15.0,
+        lp_volume: np.ndarray | None = None,
     ) -> None:
         prep = ctx.prep
         self.ctx = ctx
@@ -385,16 +398,21 @@ class WindowSearch:
             kinds = tuple(k for k in kinds if k != "lp_miss")
         if not prep.spatial:
             kinds = tuple(k for k in kinds if k != "opening")
+        if prep.P <= 3:
+            kinds = tuple(k for k in kinds if k != "forest")
+        size = {"periods": PERIODS_SIZE * target_vars, "forest": self.total_vars}
         self.arms = {
-            k: _Arm(
-                target_vars=min(
-                    target_vars * (PERIODS_SIZE if k == "periods" else 1.0), self.total_vars
-                )
-            )
-            for k in kinds
+            k: _Arm(target_vars=min(size.get(k, target_vars), self.total_vars)) for k in kinds
         }
         self.last_gain = time.perf_counter()
         self.max_cover_sets = 100_000
+        self.lp_volume = lp_volume
+        # Minimal covers listed so far (over all stands), by stand, and the stands whose
+        # sets are all listed.
+        self.cover_sets: list[frozenset[int]] = []
+        self.cover_by_stand: dict[int, list[int]] = {}
+        self.cover_done = np.zeros(prep.n, dtype=bool)
+        self.cache_misses = 0
 
     def _eager_covers(self, sub: SubModel) -> None:
         """Every minimal cover holding a free stand, as clauses of this window only.
@@ -404,17 +422,55 @@ class WindowSearch:
         return a legal plan and gained 65-215 per window; with the covers written up
         front (2,000-10,000 clauses, 0.05-0.5 s to list) the first call was legal and
         gained 3,000-24,000. They are not put in the shared pool (too many to scan).
+
+        The sets of every stand are listed once per search (over all stands, whatever
+        the plan) and kept; a window takes those whose stands can all be open. Where a
+        stand's list runs past ``max_cover_sets`` grown sets the window lists its own
+        sets over the stands open in the plan (the earlier way).
         """
         prep = self.ctx.prep
         if prep.max_opening is None:
             return
         open_any = np.asarray(sub.base_hop.any(axis=1) | prep.fixed_open.any(axis=1))
+        take = open_any.copy()
+        take[sub.free] = True
+        need = sub.free[~self.cover_done[sub.free]]
+        if need.size and self.cache_misses < 3:
+            sets, fin = covers_from_roots(
+                prep, need, np.ones(prep.n, dtype=bool), self.max_cover_sets, self.cover_done
+            )
+            for s in sets:
+                k = len(self.cover_sets)
+                self.cover_sets.append(s)
+                for i in s:
+                    self.cover_by_stand.setdefault(i, []).append(k)
+            self.cover_done[fin] = True
+            if fin.size < need.size:
+                self.cache_misses += 1
+        if self.cover_done[sub.free].all():
+            ids = {k for i in sub.free.tolist() for k in self.cover_by_stand.get(i, ())}
+            chosen = [self.cover_sets[k] for k in sorted(ids)]
+            chosen = [s for s in chosen if all(take[j] for j in s)]
+            sub.add_cover_sets(chosen)
+            self.ctx.bump("window_cover_sets", len(chosen))
+            return
         sets, complete = window_covers(prep, sub.free, open_any, self.max_cover_sets)
-        for c in sets:
-            sub.add_cover(c)
+        sub.add_cover_sets(sets)
         self.ctx.bump("window_cover_sets", len(sets))
         if not complete:
             self.ctx.bump("window_cover_lists_cut")
+
+    def _deficit(self) -> np.ndarray | None:
+        """(P,) LP volume minus the best plan's volume by period (``None`` without LP)."""
+        if self.lp_volume is None or self.ctx.best is None:
+            return None
+        prep = self.ctx.prep
+        rx = prep.rx
+        stand, no, period = plan_harvests(rx, self.ctx.best)
+        h = rx.harvest_start[self.ctx.best[stand]] + no - 1
+        vol = rx.harvest_volume_m3_ha[h] * prep.problem.area_ha[stand]
+        plan_vol = np.bincount(period - 1, weights=vol, minlength=prep.P)
+        return np.asarray(self.lp_volume, dtype=float) - plan_vol
 
     def run(self, until: float) -> None:
         """Solve windows until ``until`` (or the deadline, the stopping gap, Ctrl-C)."""
@@ -428,7 +484,13 @@ class WindowSearch:
             kind = _pick(self.rng, self.arms)
             arm = self.arms[kind]
             free, allow = _window(
-                ctx, kind, arm.target_vars, self.rng, self.stand_vars, self.lp_stand_value
+                ctx,
+                kind,
+                arm.target_vars,
+                self.rng,
+                self.stand_vars,
+                self.lp_stand_value,
+                self._deficit() if kind == "forest" else None,
             )
             arm.tries += 1
             if free.size == 0:
@@ -437,7 +499,9 @@ class WindowSearch:
             before = ctx.best_npv
             sub = SubModel(prep, free, ctx.best, ctx.scaling, allow=allow)
             self._eager_covers(sub)
-            budget = min(self.window_time_s, ctx.left(), until - t0)
+            # Larger windows get longer (up to four times the base time).
+            scale = float(np.clip(len(sub.xvars) / 1000.0, 1.0, 4.0))
+            budget = min(self.window_time_s * scale, ctx.left(), until - t0)
             res = lazy_rounds(ctx, sub, budget, "lns_" + kind, first_slice_s=0.5, keep_all=8)
             dt = time.perf_counter() - t0
             gain = ctx.best_npv - before
@@ -479,6 +543,9 @@ def lns(
     lp_stand_value: np.ndarray | None = None,
     target_vars: float = 1000.0,
     window_time_s: float = 3.0,
+    lp_volume: np.ndarray | None = None,
 ) -> None:
     """:class:`WindowSearch` from ``ctx.best`` until the deadline."""
-    WindowSearch(ctx, lp_stand_value, target_vars, window_time_s).run(ctx.deadline)
+    WindowSearch(ctx, lp_stand_value, target_vars, window_time_s, lp_volume=lp_volume).run(
+        ctx.deadline
+    )
