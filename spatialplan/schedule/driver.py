@@ -85,12 +85,13 @@ BLOCK_MIN_S = 5.0
 # the remaining time (on the demo its rounds keep improving a little for the whole limit).
 FIRST_LOCAL_SHARE = 0.3
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
-# Non-declining flow: the construction also aims 2 % and 4 % below the LP's period volumes
+# Non-declining flow: the construction also aims 2-15 % below the LP's period volumes
 # (``greedy_plan(slack=...)``), which leaves its flow repair room to keep the chain of rows;
 # at the LP's own volumes the repair often fails and the plan is trimmed to nothing
 # (docs/benchmarks.md, "Construction targets below the LP volumes"). These variants run
-# while the construction has used less than CONSTRUCT_SHARE of the time limit.
-CHAIN_SLACKS = (-0.02, 0.0, -0.04)
+# while the construction has used less than CONSTRUCT_SHARE of the time limit, and on
+# while no plan that harvests was found.
+CHAIN_SLACKS = (-0.02, 0.0, -0.04, -0.08, -0.15)
 CONSTRUCT_SHARE = 0.3
 
 
@@ -291,7 +292,12 @@ def solve(
         for order, slack in runs:
             now = time.perf_counter()
             if best_h is not None and (
-                now >= deadline or (len(runs) > len(HEURISTIC_ORDERS) and now - th > budget)
+                now >= deadline
+                or (
+                    len(runs) > len(HEURISTIC_ORDERS)
+                    and now - th > budget
+                    and prep.harvests_any(best_h[0])
+                )
             ):
                 break
             if lp.status == "optimal" and lp.x_rx is not None:
