@@ -85,13 +85,14 @@ BLOCK_MIN_S = 5.0
 # the remaining time (on the demo its rounds keep improving a little for the whole limit).
 FIRST_LOCAL_SHARE = 0.3
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
-# Non-declining flow: the construction also aims 2-15 % below the LP's period volumes
+# Non-declining flow: the construction also aims 2 % and 4 % below the LP's period volumes
 # (``greedy_plan(slack=...)``), which leaves its flow repair room to keep the chain of rows;
 # at the LP's own volumes the repair often fails and the plan is trimmed to nothing
 # (docs/benchmarks.md, "Construction targets below the LP volumes"). These variants run
-# while the construction has used less than CONSTRUCT_SHARE of the time limit, and on
-# while no plan that harvests was found.
-CHAIN_SLACKS = (-0.02, 0.0, -0.04, -0.08, -0.15)
+# while the construction has used less than CONSTRUCT_SHARE of the time limit; the
+# FALLBACK_SLACKS ones only while no plan that harvests was found.
+CHAIN_SLACKS = (-0.02, 0.0, -0.04)
+FALLBACK_SLACKS = (-0.08, -0.15)
 CONSTRUCT_SHARE = 0.3
 
 
@@ -295,7 +296,7 @@ def solve(
                 now >= deadline
                 or (
                     len(runs) > len(HEURISTIC_ORDERS)
-                    and now - th > budget
+                    and (now - th > budget or slack in FALLBACK_SLACKS)
                     and prep.harvests_any(best_h[0])
                 )
             ):
@@ -629,7 +630,7 @@ def _lp_stand_value(prep, lp: LpResult) -> np.ndarray | None:
 def _construction_runs(problem: PlanProblem) -> list[tuple[str, float]]:
     """(order, slack) of the construction runs, in the order tried."""
     if problem.flow.non_declining and problem.periods > 1:
-        return [(o, s) for s in CHAIN_SLACKS for o in HEURISTIC_ORDERS]
+        return [(o, s) for s in CHAIN_SLACKS + FALLBACK_SLACKS for o in HEURISTIC_ORDERS]
     return [(o, 0.0) for o in HEURISTIC_ORDERS]
 
 
