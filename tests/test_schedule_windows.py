@@ -20,8 +20,14 @@ import pytest
 from spatialplan.problem import FlowRules, PlanProblem
 from spatialplan.schedule import solve
 from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
-from spatialplan.schedule.model import plan_npv, prepare, window_covers
-from spatialplan.schedule.windows import SearchCtx, lazy_rounds, lns, seed_pair_covers
+from spatialplan.schedule.model import covers_from_roots, plan_npv, prepare, window_covers
+from spatialplan.schedule.windows import (
+    SearchCtx,
+    WindowSearch,
+    lazy_rounds,
+    lns,
+    seed_pair_covers,
+)
 from tests.graphs import grid_edges
 from tests.test_schedule_rx import EXACT, harvest_periods, rule_breaks, rx_problem
 
@@ -148,7 +154,52 @@ def test_window_search_keeps_flow_rows_and_never_loses_value() -> None:
     assert ctx.best_npv >= start - 1e-6
     assert ctx.stats["lns_windows"] >= 2
     kinds = ctx.stats["lns_kinds"]
-    assert {"ball", "opening", "two_balls", "scatter", "periods"} <= set(kinds)
+    assert {"ball", "opening", "two_balls", "scatter", "periods", "forest"} <= set(kinds)
+
+
+@pytest.mark.parametrize(("seed", "free"), [(1, [0, 1, 3, 4]), (2, [2, 4, 5, 8]), (7, [3, 4, 5])])
+def test_window_with_kept_cover_list_is_legal_at_once_and_matches_brute_force(
+    seed: int, free: list[int]
+) -> None:
+    # The window search's own cover list (listed once over all stands, filtered to the
+    # stands that can be open, turned into clauses with numpy) must make CP-SAT's first
+    # answer legal (no lazy round) and equal to the best legal combination by brute force.
+    pr = _problem(seed)
+    base = _legal_base(pr)
+    outside = [i for i in range(pr.n_stands) if i not in free]
+    _, base = _window_brute_force(pr, base, outside[:3])
+    want, _ = _window_brute_force(pr, base, free)
+    ctx = _ctx(pr, base)
+    ctx.pool = CoverPool()  # no pair covers either: the list alone must do
+    ws = WindowSearch(ctx)
+    sub = SubModel(ctx.prep, np.array(free), base, ctx.scaling)
+    ws._eager_covers(sub)
+    assert ws.cover_done[free].all()
+    res = lazy_rounds(ctx, sub, 30.0, "test", first_slice_s=10.0)
+    assert res == "optimal"
+    assert ctx.stats.get("rounds", 0) == 0
+    assert ctx.best is not None and rule_breaks(pr, ctx.best) == []
+    tol = ctx.scaling.total_error_bound + 1e-9 * abs(want)
+    assert abs(ctx.best_npv - want) <= 2 * tol + 1e-6
+
+
+def test_cover_lists_split_over_calls_equal_one_listing() -> None:
+    # Listing the stands in two calls (the second skipping the stands the first finished)
+    # must give the same sets, each once, as one listing of all stands (checked against
+    # the networkx reference in the test above).
+    rng = np.random.default_rng(4)
+    age = rng.uniform(10.0, 100.0, 12)
+    pr = rx_problem(grid_edges(3, 4), age, 4, periods=4, max_opening=30.0)
+    prep = prepare(pr)
+    take = np.ones(12, dtype=bool)
+    whole, done_all = covers_from_roots(prep, np.arange(12), take)
+    assert done_all.size == 12 and whole
+    done = np.zeros(12, dtype=bool)
+    first, fin = covers_from_roots(prep, np.array([0, 5, 7, 11]), take, done=done)
+    done[fin] = True
+    second, _ = covers_from_roots(prep, np.arange(12), take, done=done)
+    assert len(first) + len(second) == len(set(first) | set(second))
+    assert set(first) | set(second) == set(whole)
 
 
 def test_windows_strategy_returns_a_legal_plan_under_the_bounds() -> None:
