@@ -93,16 +93,24 @@ def _legal_base(pr: PlanProblem) -> np.ndarray:
     return base
 
 
-@pytest.mark.parametrize(("seed", "free"), [(1, [0, 1, 3, 4]), (2, [2, 4, 5, 8]), (3, [1, 4, 7])])
-def test_window_matches_brute_force_with_stands_fixed_outside(seed: int, free: list[int]) -> None:
+def _window_case(seed: int, free: list[int]) -> tuple[PlanProblem, np.ndarray, float]:
+    """Problem, base plan and the brute-force best of a window freeing ``free``.
+
+    Outside the window: the best whole-forest plan's neighbours are not what the window
+    sees, so the others are fixed at a plan that cuts the old corner stands (constants
+    that open ground next to the window).
+    """
     pr = _problem(seed)
-    # Outside the window: the best whole-forest plan's neighbours are not what the window
-    # sees, so fix the others at a plan that cuts the old corner stands (constants that
-    # open ground next to the window).
     base = _legal_base(pr)
     outside = [i for i in range(pr.n_stands) if i not in free]
     _, base = _window_brute_force(pr, base, outside[:3])
     want, _ = _window_brute_force(pr, base, free)
+    return pr, base, want
+
+
+@pytest.mark.parametrize(("seed", "free"), [(1, [0, 1, 3, 4]), (2, [2, 4, 5, 8]), (3, [1, 4, 7])])
+def test_window_matches_brute_force_with_stands_fixed_outside(seed: int, free: list[int]) -> None:
+    pr, base, want = _window_case(seed, free)
     ctx = _ctx(pr, base)
     assert want > ctx.best_npv  # the window has something to find
     sub = SubModel(ctx.prep, np.array(free), base, ctx.scaling)
@@ -164,11 +172,7 @@ def test_window_with_kept_cover_list_is_legal_at_once_and_matches_brute_force(
     # The window search's own cover list (listed once over all stands, filtered to the
     # stands that can be open, turned into clauses with numpy) must make CP-SAT's first
     # answer legal (no lazy round) and equal to the best legal combination by brute force.
-    pr = _problem(seed)
-    base = _legal_base(pr)
-    outside = [i for i in range(pr.n_stands) if i not in free]
-    _, base = _window_brute_force(pr, base, outside[:3])
-    want, _ = _window_brute_force(pr, base, free)
+    pr, base, want = _window_case(seed, free)
     ctx = _ctx(pr, base)
     ctx.pool = CoverPool()  # no pair covers either: the list alone must do
     ws = WindowSearch(ctx)
