@@ -84,8 +84,6 @@ BLOCK_MIN_S = 5.0
 # The annealing's first run (its quick climb) ends when it stalls or after this share of
 # the remaining time (on the demo its rounds keep improving a little for the whole limit).
 FIRST_LOCAL_SHARE = 0.3
-# ... after a probe round of 1 / PROBE_DIVISOR of its round length that must gain.
-PROBE_DIVISOR = 8
 HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
 # Non-declining flow: the construction also aims 2 % and 4 % below the LP's period volumes
 # (``greedy_plan(slack=...)``), which leaves its flow repair room to keep the chain of rows;
@@ -581,16 +579,14 @@ def _alternate(
     state: dict = {}
     t = time.perf_counter()
     before = ctx.best_npv
-    until = t + FIRST_LOCAL_SHARE * max(ctx.left(), 0.0)
-    # A short probe round first: where it finds nothing (the demo's chained flow rows: its
-    # 960,000-move rounds gained 0-100 in 8-28 s) the windows get the time at once.
-    prep = ctx.prep
-    full_round = max(50_000, 400 * prep.n, 15 * prep.n_vars)
-    state["round_moves"] = max(50_000, full_round // PROBE_DIVISOR)
-    _local(ctx, stats, until, patience=1, repeat=False, state=state)
-    if ctx.best_npv - before > 1e-6 * max(abs(before), 1.0):
-        state["round_moves"] = full_round
-        _local(ctx, stats, until, patience=2, repeat=False, state=state)
+    _local(
+        ctx,
+        stats,
+        t + FIRST_LOCAL_SHARE * max(ctx.left(), 0.0),
+        patience=2,
+        repeat=False,
+        state=state,
+    )
     blocks = [("local", round(time.perf_counter() - t, 2), round(ctx.best_npv - before, 2))]
     windows = WindowSearch(ctx, lp_stand_value, lp_volume=lp_volume)
     block = max(BLOCK_MIN_S, BLOCK_SHARE * time_limit_s)
