@@ -315,6 +315,8 @@ def solve(
             hinfo[key] = info
             if info.get("legal") and (best_h is None or info["npv"] > best_h[1]):
                 best_h = (plan, info["npv"], key)
+                # Shown at once: several runs can take a third of the time limit.
+                ctx.offer(plan, "heuristic")
         stats["heuristic_time_s"] = round(time.perf_counter() - th, 3)
         stats["heuristic"] = hinfo
         if best_h is not None:
