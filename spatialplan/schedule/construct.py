@@ -273,7 +273,7 @@ def _descend(
     return moves
 
 
-def _period_volumes(prep: Prep) -> np.ndarray:
+def period_volumes(prep: Prep) -> np.ndarray:
     """(K, P) harvest volume of every prescription by period (m3)."""
     rx = prep.rx
     hk = np.repeat(np.arange(prep.n_rx), np.diff(rx.harvest_start))
@@ -445,7 +445,7 @@ def _repair(
     moves = 0
     fr = prep.problem.flow
     if (fr.flow_tolerance is not None or fr.non_declining) and prep.P > 1:
-        vol = _period_volumes(prep)
+        vol = period_volumes(prep)
         other = np.array([r.family != "flow" for r in prep.rows], dtype=bool)
         d_other = D[:, other]
         wv = 1.0 / _row_units(vol[prep.allowed]).mean()

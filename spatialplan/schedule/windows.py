@@ -27,13 +27,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from spatialplan.schedule.construct import period_volumes
 from spatialplan.schedule.cpsat import CoverPool, Scaling, SubModel
 from spatialplan.schedule.model import (
     Prep,
     check_plan,
     covers_from_roots,
     extract_covers,
-    plan_harvests,
     plan_npv,
     spatial_breaches,
     window_covers,
@@ -411,6 +411,7 @@ class WindowSearch:
         self.last_gain = time.perf_counter()
         self.max_cover_sets = 100_000
         self.lp_volume = lp_volume
+        self._rx_volume: np.ndarray | None = None  # (K, P) volumes, made on first use
         # Minimal covers listed so far (over all stands), by stand, and the stands whose
         # sets are all listed.
         self.cover_sets: list[frozenset[int]] = []
@@ -468,12 +469,9 @@ class WindowSearch:
         """(P,) LP volume minus the best plan's volume by period (``None`` without LP)."""
         if self.lp_volume is None or self.ctx.best is None:
             return None
-        prep = self.ctx.prep
-        rx = prep.rx
-        stand, no, period = plan_harvests(rx, self.ctx.best)
-        h = rx.harvest_start[self.ctx.best[stand]] + no - 1
-        vol = rx.harvest_volume_m3_ha[h] * prep.problem.area_ha[stand]
-        plan_vol = np.bincount(period - 1, weights=vol, minlength=prep.P)
+        if self._rx_volume is None:
+            self._rx_volume = period_volumes(self.ctx.prep)
+        plan_vol = self._rx_volume[self.ctx.best].sum(axis=0)
         return np.asarray(self.lp_volume, dtype=float) - plan_vol
 
     def run(self, until: float) -> None:
