@@ -31,13 +31,22 @@ instance takes a few seconds.
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass
 
 import numpy as np
 
 from spatialplan.schedule.model import Prep, check_plan
 
-__all__ = ["SpatialState", "greedy_plan"]
+__all__ = ["SpatialState", "greedy_plan", "sweep_flow"]
 _DEBUG = False
+# The flow sweep tries this many first moves in pairs with a finer second move, and
+# raises a period more than LIFT_GAP (relative) below the bound its next period sets.
+PAIR_FIRSTS = 16
+LIFT_GAP = 0.001
+# Lifting moves per period on average in one sweep.
+LIFT_MOVES = 4
+# Moves per sweep that mend a pair at the price of breaking a later one.
+FORCED_MOVES = 10
 
 
 def _bits(mask: int) -> list[int]:
@@ -326,6 +335,8 @@ def _flow_sweep(
     other_cap: np.ndarray,
     other_w: np.ndarray,
     deadline: float,
+    pairs: int = PAIR_FIRSTS,
+    lift_gap: float = LIFT_GAP,
 ) -> int:
     """Make the period volumes keep the flow rules, last period first; returns the moves.
 
@@ -335,7 +346,10 @@ def _flow_sweep(
     a shortfall late in the horizon lowers the earlier periods by just that much instead
     of dragging a chain of rows towards zero. A move may not raise the excess of the
     other rows (``other``: ``(K, R')`` against the no-harvest prescription, ``other_cap``
-    and ``other_w`` their limits and weights).
+    and ``other_w`` their limits and weights). ``pairs`` first moves are tried in pairs
+    with a finer second one; a period more than ``lift_gap`` (relative) below its bound is
+    raised when that pays; volume the earlier periods must give up is priced at the
+    mean value per m3 of the prescriptions.
     """
     P = prep.P
     ks_all = np.nonzero(prep.allowed)[0]
@@ -346,65 +360,326 @@ def _flow_sweep(
     tv = vol[ks_all].sum()
     unit_value = float(np.maximum(rel[ks_all], 0.0).sum() / tv) if tv > 0 else 0.0
     moves = 0
-    for q in range(P - 2, -1, -1):
+    lifts = 0
+    forced = 0
+    q = P - 2
+    while q >= 0:
+        restart = -1
         for _ in range(4 * prep.n):
             if time.perf_counter() >= deadline:
                 return moves
-            if _flow_ok(prep, V[q:])[0] if q < P - 1 else True:
-                break
+            if _flow_ok(prep, V[q:])[0]:
+                if lifts >= LIFT_MOVES * P or not _lift(
+                    st,
+                    prep,
+                    vol,
+                    V,
+                    oq,
+                    other,
+                    other_cap,
+                    other_w,
+                    unit_value,
+                    q,
+                    ks_all,
+                    sk_all,
+                    lift_gap,
+                ):
+                    break
+                lifts += 1
+                moves += 1
+                continue
             cur_all = st.plan[sk_all]
             # Only moves that change period q's volume can help.
             sel = np.nonzero(vol[ks_all, q] != vol[cur_all, q])[0]
             ks, sk, cur = ks_all[sel], sk_all[sel], cur_all[sel]
             dV = vol[ks] - vol[cur]
-            nV = V[None, q:] + dV[:, q:]
+            dO = other[ks] - other[cur]
+            rloss = np.maximum(rel[cur] - rel[ks], 0.0)
             ok_now = _flow_ok(prep, V[q:])
-            ok = _flow_ok(prep, nV)
-            # Later pairs that hold must keep holding.
-            later = np.all(ok[:, 1:] | ~ok_now[None, 1:], axis=1)
             lo, hi = _bounds_of(prep, float(V[q + 1]))
             gap0 = max(V[q] - hi, lo - V[q])
-            gap1 = np.maximum(nV[:, 0] - hi, lo - nV[:, 0])
-            keep = later & (ok[:, 0] | (gap1 < gap0 - 1e-9 * abs(gap0)))
-            if other.shape[1]:
-                now = float(np.maximum(oq - other_cap, 0.0) @ other_w)
-                nxt = np.maximum(oq[None, :] + (other[ks] - other[cur]) - other_cap, 0.0) @ other_w
-                keep &= nxt <= now + 1e-9 * max(now, 1.0)
+
+            pair = _PairState(prep, V, q, lo, hi, gap0, ok_now, oq, other_cap, other_w, unit_value)
+            judge = pair.judge
+
+            mend, keep, loss, gain = judge(dV, dO, rloss)
             idx = np.nonzero(keep)[0]
-            if idx.size == 0:
+            if idx.size == 0 and not np.any(gain > 0):
                 break
-            # Volume pushed into earlier periods above the level they will have to keep
-            # (the bound compounded back from period q) is likely lost later: price it.
-            ceil = np.empty(q)
-            h = hi
-            for p in range(q - 1, -1, -1):
-                h = _bounds_of(prep, h)[1]
-                ceil[p] = h
-            push = (
-                np.maximum(V[None, :q] + dV[idx, :q] - ceil, 0.0).sum(axis=1)
-                - np.maximum(V[:q] - ceil, 0.0).sum()
-            )
-            loss = np.maximum(rel[cur[idx]] - rel[ks[idx]], 0.0) + unit_value * np.maximum(push, 0)
-            gain = np.minimum(gap0 - gap1[idx], gap0)
             # Moves that mend the pair come first, the cheapest; then the cheapest per unit.
-            score = np.where(ok[idx, 0], -1.0 / (1.0 + loss), loss / np.maximum(gain, 1e-12))
+            score = np.where(
+                mend[idx], -1.0 / (1.0 + loss[idx]), loss[idx] / np.maximum(gain[idx], 1e-12)
+            )
+            order = idx[np.argsort(score, kind="stable")]
+            tries: list[tuple[float, tuple[int, ...]]] = [
+                (float(loss[t]), (int(t),)) for t in order[:64].tolist() if mend[t]
+            ]
+            # Pairs: one of the moves that go the right way for period q with a second,
+            # finer move of another stand (a single stand's volume overshoots the bound by
+            # far more than the pair needs, and under non-declining flow every earlier
+            # period pays for it).
+            # The first move comes from those that move period q the right way: the
+            # cheapest that keep every other row, and those that change the later periods
+            # least (the partner has to mend what they break).
+            toward = idx[np.sign(gain[idx]) > 0]
+            toward = toward[np.argsort(rloss[toward], kind="stable")][: pairs // 2]
+            bold = np.nonzero((gain > 0) & ~keep)[0]
+            if bold.size:
+                spill = np.abs(dV[bold, q + 1 :]).sum(axis=1)
+                bold = bold[np.argsort(spill + rloss[bold] / max(unit_value, 1e-12), kind="stable")]
+                toward = np.concatenate([toward, bold[: pairs - toward.size]])
+            for ta in toward.tolist():
+                other_stand = sk != sk[ta]
+                pm, _, pl, _ = judge(dV[ta] + dV, dO[ta] + dO, rloss[ta] + rloss)
+                good = np.nonzero(pm & other_stand)[0]
+                for tb in good[np.argsort(pl[good], kind="stable")][:4].tolist():
+                    tries.append((float(pl[tb]), (int(ta), int(tb))))
+            # The mending moves and pairs, cheapest first; then single moves that bring
+            # period q nearer its range (when the mending ones all break an opening).
+            tries.sort(key=lambda x: x[0])
+            seq = [ts for _, ts in tries[:64]]
+            seq += [(int(t),) for t in order[:64].tolist() if not mend[t]]
             done = False
-            for t in idx[np.argsort(score, kind="stable")][:64].tolist():
-                i, k = int(sk[t]), int(ks[t])
-                k0 = int(st.plan[i])
-                st.unset(i)
-                if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
-                    st.set(i, k0)
+            for ts in seq:
+                old = [(int(sk[t]), int(st.plan[int(sk[t])])) for t in ts]
+                applied: list[int] = []
+                for t in ts:
+                    i, k = int(sk[t]), int(ks[t])
+                    st.unset(i)
+                    if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
+                        st.set(i, int(cur[t]))
+                        break
+                    st.set(i, k)
+                    applied.append(t)
+                if len(applied) < len(ts):
+                    for t in applied:
+                        i = int(sk[t])
+                        st.unset(i)
+                        st.set(i, int(cur[t]))
                     continue
-                st.set(i, k)
-                V += vol[k] - vol[k0]
-                oq += other[k] - other[k0]
-                moves += 1
+                for (_, k0), t in zip(old, ts, strict=True):
+                    k = int(ks[t])
+                    V += vol[k] - vol[k0]
+                    oq += other[k] - other[k0]
+                    moves += 1
                 done = True
                 break
             if not done:
+                # Stuck: every move that mends the pair breaks a later one (the later
+                # periods sit on their bounds). Mend it with the move that changes the
+                # later periods least and sweep again from the latest broken pair.
+                if forced < FORCED_MOVES and _force(
+                    st, pair, vol, other, ks, sk, cur, dV, dO, rloss
+                ):
+                    forced += 1
+                    moves += 1
+                    broken = np.nonzero(~_flow_ok(prep, V))[0]
+                    restart = int(broken.max()) if broken.size else -1
                 break
+        if restart > q:
+            q = restart
+        else:
+            q -= 1
     return moves
+
+
+def _force(
+    st: SpatialState,
+    pair: _PairState,
+    vol: np.ndarray,
+    other: np.ndarray,
+    ks: np.ndarray,
+    sk: np.ndarray,
+    cur: np.ndarray,
+    dV: np.ndarray,
+    dO: np.ndarray,
+    rloss: np.ndarray,
+) -> bool:
+    """Mend the pair of period ``pair.q`` with the move that changes later periods least.
+
+    The candidate moves are ``ks`` (stands ``sk``, now on ``cur``; volume change ``dV``,
+    other rows' change ``dO``, value lost ``rloss``). The move keeps the openings and
+    does not raise the other rows' excess, but may break later pairs (the sweep goes back
+    to them). True if a move was made; ``pair.V`` and ``pair.oq`` are updated in place.
+    """
+    prep, V, oq, q, unit_value = pair.prep, pair.V, pair.oq, pair.q, pair.unit_value
+    nV = V[q] + dV[:, q]
+    fits = (nV <= pair.hi) & (nV >= pair.lo)
+    if pair.other_cap.size:
+        o_now = float(np.maximum(oq - pair.other_cap, 0.0) @ pair.other_w)
+        nxt = np.maximum(oq + dO - pair.other_cap, 0.0) @ pair.other_w
+        fits &= nxt <= o_now + 1e-9 * max(o_now, 1.0)
+    idx = np.nonzero(fits)[0]
+    if idx.size == 0:
+        return False
+    spill = np.abs(dV[idx, q + 1 :]).sum(axis=1)
+    cost = spill + rloss[idx] / max(unit_value, 1e-12)
+    for t in idx[np.argsort(cost, kind="stable")][:32].tolist():
+        i, k, k0 = int(sk[t]), int(ks[t]), int(cur[t])
+        st.unset(i)
+        if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
+            st.set(i, k0)
+            continue
+        st.set(i, k)
+        V += vol[k] - vol[k0]
+        oq += other[k] - other[k0]
+        return True
+    return False
+
+
+def _lift(
+    st: SpatialState,
+    prep: Prep,
+    vol: np.ndarray,
+    V: np.ndarray,
+    oq: np.ndarray,
+    other: np.ndarray,
+    other_cap: np.ndarray,
+    other_w: np.ndarray,
+    unit_value: float,
+    q: int,
+    ks_all: np.ndarray,
+    sk_all: np.ndarray,
+    lift_gap: float,
+) -> bool:
+    """Raise period ``q``'s volume towards its bound when that pays; True if a move was made.
+
+    Period ``q``'s volume is the ceiling of every earlier period under non-declining
+    flow: a move that raises it (keeping it in range, every later pair and the other rows)
+    is worth its own value change plus the volume the earlier periods may then keep.
+    ``V`` and ``oq`` are updated in place.
+    """
+    lo, hi = _bounds_of(prep, float(V[q + 1]))
+    if V[q] >= hi - lift_gap * max(hi, 1.0):
+        return False
+    cur_all = st.plan[sk_all]
+    sel = np.nonzero(vol[ks_all, q] > vol[cur_all, q])[0]
+    if sel.size == 0:
+        return False
+    ks, sk, cur = ks_all[sel], sk_all[sel], cur_all[sel]
+    dV = vol[ks] - vol[cur]
+    dO = other[ks] - other[cur]
+    ok_now = _flow_ok(prep, V[q:])
+    pair = _PairState(
+        prep, V, q, lo, hi, 0.0, ok_now, oq, other_cap, other_w, unit_value, ref=float(V[q])
+    )
+    mend, _, loss, _ = pair.judge(dV, dO, prep.rel_value[cur] - prep.rel_value[ks])
+    idx = np.nonzero(mend & (loss < 0.0))[0]
+    for t in idx[np.argsort(loss[idx], kind="stable")][:32].tolist():
+        i, k, k0 = int(sk[t]), int(ks[t]), int(cur[t])
+        st.unset(i)
+        if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
+            st.set(i, k0)
+            continue
+        st.set(i, k)
+        V += vol[k] - vol[k0]
+        oq += other[k] - other[k0]
+        return True
+    return False
+
+
+def sweep_flow(prep: Prep, plan: np.ndarray, deadline: float) -> np.ndarray:
+    """A plan near ``plan`` whose period volumes keep the flow rules (last period first).
+
+    For a plan of a looser problem, such as one searched without the non-declining rows:
+    :func:`_flow_sweep` brings every period's volume, from the last back, into the range
+    the flow rules allow given the next period's, with single-stand moves that keep the
+    openings and do not raise the excess of the other rule rows. The result is not
+    checked: the caller checks it (a sweep can run out of moves or time).
+
+    Parameters
+    ----------
+    prep
+        The problem with its flow rules.
+    plan
+        (n,) prescription per stand; openings legal, other rows met.
+    deadline
+        ``time.perf_counter()`` value at which to stop.
+
+    Returns
+    -------
+    numpy.ndarray
+        (n,) the swept plan (a new array).
+    """
+    st = SpatialState(prep, np.asarray(plan, dtype=np.int64).copy())
+    rows = _RowState(prep, st.plan)
+    const = prep.rows.lhs(prep.null)
+    cap = rows.rhs - rows.margin - const
+    D = rows.D
+    if D.shape[1] == 0 or prep.P < 2:
+        return np.asarray(st.plan, dtype=np.int64).copy()
+    w = 1.0 / _row_units(D[prep.allowed])
+    other = np.array([r.family != "flow" for r in prep.rows], dtype=bool)
+    _flow_sweep(st, prep, period_volumes(prep), D[:, other], cap[other], w[other], deadline)
+    return np.asarray(st.plan, dtype=np.int64).copy()
+
+
+@dataclass(frozen=True)
+class _PairState:
+    """Period ``q`` of a flow sweep: what a move (or pair of moves) does to the flow rules."""
+
+    prep: Prep
+    V: np.ndarray
+    q: int
+    lo: float
+    hi: float
+    gap0: float
+    ok_now: np.ndarray
+    oq: np.ndarray
+    other_cap: np.ndarray
+    other_w: np.ndarray
+    unit_value: float
+    ref: float | None = None  # ceiling the excess is measured against (default: hi)
+
+    def judge(self, d: np.ndarray, d_other: np.ndarray, value_loss: np.ndarray) -> tuple:
+        """(mends, keep, loss, gain) of moves changing the period volumes by ``d``.
+
+        ``keep``: later pairs that hold keep holding, period ``q`` comes nearer its range
+        and the other rows' excess does not rise; ``mends``: kept and period ``q`` in range.
+        """
+        prep, V, q, hi, gap0 = self.prep, self.V, self.q, self.hi, self.gap0
+        nV = V[q:] + d[..., q:]
+        ok = _flow_ok(prep, nV)
+        later = np.all(ok[..., 1:] | ~self.ok_now[1:], axis=-1)
+        gap1 = np.maximum(nV[..., 0] - hi, self.lo - nV[..., 0])
+        keep = later & (ok[..., 0] | (gap1 < gap0 - 1e-9 * abs(gap0)))
+        if self.other_cap.size:
+            o_now = float(np.maximum(self.oq - self.other_cap, 0.0) @ self.other_w)
+            nxt = np.maximum(self.oq + d_other - self.other_cap, 0.0) @ self.other_w
+            keep &= nxt <= o_now + 1e-9 * max(o_now, 1.0)
+        # Volume the earlier periods hold above the level they will have to keep (the
+        # bound compounded back from period q's new volume) is likely lost later: price
+        # it against landing period q exactly at its bound. This prices both volume
+        # pushed into earlier periods and lowering period q further than it must (under
+        # non-declining flow every earlier period follows it down).
+        h_new = np.minimum(nV[..., 0], hi)
+        h_old = hi if self.ref is None else self.ref
+        excess = np.zeros(h_new.shape)
+        excess_min = 0.0
+        for p in range(q - 1, -1, -1):
+            h_new = _bounds_of_many(prep, h_new)
+            h_old = _bounds_of(prep, h_old)[1]
+            excess += np.maximum(V[p] + d[..., p] - h_new, 0.0)
+            excess_min += max(V[p] - h_old, 0.0)
+        rise = excess - excess_min
+        if self.ref is None:
+            rise = np.maximum(rise, 0.0)
+        loss = value_loss + self.unit_value * rise
+        return ok[..., 0] & keep, keep, loss, np.minimum(gap0 - gap1, gap0)
+
+
+def _bounds_of_many(prep: Prep, after: np.ndarray) -> np.ndarray:
+    """Upper end of :func:`_bounds_of` for many next-period volumes at once."""
+    fr = prep.problem.flow
+    hi = np.full(after.shape, np.inf)
+    t = fr.flow_tolerance
+    if t is not None and t < 1.0:
+        hi = after / (1.0 - t)
+    if fr.non_declining:
+        hi = np.minimum(hi, after)
+    if fr.volume_max_m3 is not None:
+        hi = np.minimum(hi, float(fr.volume_max_m3))
+    return hi
 
 
 def _bounds_of(prep: Prep, after: float) -> tuple[float, float]:

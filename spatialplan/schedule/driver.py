@@ -35,6 +35,7 @@ status is never ``"optimal"`` while the LP bound is positive.
 
 from __future__ import annotations
 
+import dataclasses
 import signal
 import threading
 import time
@@ -48,9 +49,9 @@ from spatialplan.errors import InfeasibleError, NoSolutionError
 from spatialplan.problem import PlanProblem, Prescriptions
 from spatialplan.schedule.anneal import anneal
 from spatialplan.schedule.bound import LpResult, cover_lp_bound, lp_bound, solve_lp
-from spatialplan.schedule.construct import greedy_plan
+from spatialplan.schedule.construct import greedy_plan, sweep_flow
 from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
-from spatialplan.schedule.model import check_plan, plan_harvests, plan_npv, prepare
+from spatialplan.schedule.model import Prep, check_plan, plan_harvests, plan_npv, prepare
 from spatialplan.schedule.windows import (
     SearchCtx,
     WindowSearch,
@@ -94,6 +95,12 @@ HEURISTIC_ORDERS = ("balanced", "regret", "lp_round", "sequential")
 CHAIN_SLACKS = (-0.02, -0.01, 0.0, -0.03, -0.04)
 FALLBACK_SLACKS = (-0.08, -0.15)
 CONSTRUCT_SHARE = 0.3
+# Non-declining flow: a share of the time left after the construction goes to a search on
+# the problem without the non-declining rows (every other rule kept); its plans are swept
+# back into the chain of rows (construct.sweep_flow), at most every SWEEP_EVERY_S seconds.
+RELAXED_SHARE = 0.4
+SWEEP_EVERY_S = 2.0
+SWEEP_SHARE = 0.1  # of the time limit, at most, for one sweep
 
 
 @dataclass(frozen=True)
@@ -284,39 +291,45 @@ def solve(
     with _sigint(registry):
         # 2. heuristic
         th = time.perf_counter()
-        # Several assignment orders (each a fraction of a second per 1,000 stands); the
-        # best legal plan is kept. Which order wins depends on the landscape.
-        hinfo: dict = {}
-        best_h = None
-        runs = _construction_runs(problem)
         budget = CONSTRUCT_SHARE * float(settings.time_limit_s)
-        for order, slack in runs:
-            now = time.perf_counter()
-            if best_h is not None and (
-                now >= deadline
-                or (
-                    len(runs) > len(HEURISTIC_ORDERS)
-                    and (now - th > budget or slack in FALLBACK_SLACKS)
-                    and prep.harvests_any(best_h[0])
-                )
-            ):
-                break
-            if lp.status == "optimal" and lp.x_rx is not None:
-                plan, info = greedy_plan(
-                    prep, lp.x_rx, lp.price, deadline, order=order, slack=slack
-                )
-            else:
-                # No LP solution: spread every stand evenly over its harvest periods.
-                even = np.where(prep.harvest_mask != 0, 1.0 / max(prep.P, 1), 0.0)
-                plan, info = greedy_plan(prep, even, None, deadline, order=order)
-            info["npv"] = plan_npv(problem, plan, prep.rx) if info.get("legal") else None
-            info["seconds"] = round(time.perf_counter() - now, 3)
-            key = order if slack == 0.0 else f"{order} {slack:+.0%}"
-            hinfo[key] = info
-            if info.get("legal") and (best_h is None or info["npv"] > best_h[1]):
-                best_h = (plan, info["npv"], key)
-                # Shown at once: several runs can take a third of the time limit.
-                ctx.offer(plan, "heuristic")
+        relaxed = None
+        rinfo: dict = {}
+        chain = problem.flow.non_declining and prep.P > 1 and _strategy != "heuristic"
+        if chain:
+            # Non-declining flow: the construction without those rows, each plan swept
+            # back into the chain of rows (see _relaxed_chain).
+            relaxed = _without_chain(prep)
+            sweeps: dict = {"n": 0, "s": 0.0}
+
+            def swept(plan: np.ndarray) -> None:
+                ts = time.perf_counter()
+                ctx.offer(sweep_flow(prep, plan, _sweep_deadline(ctx, settings)), "relaxed")
+                sweeps["n"] += 1
+                sweeps["s"] += time.perf_counter() - ts
+
+            rbest, rinfo = _construct(
+                relaxed, lp, _construction_runs(relaxed.problem), deadline, budget, swept
+            )
+            stats["relaxed_heuristic"] = rinfo
+            stats["relaxed_heuristic_sweeps"] = {
+                "runs": sweeps["n"],
+                "seconds": round(sweeps["s"], 3),
+            }
+        else:
+            rbest = None
+        best_h: tuple[np.ndarray, float, str] | None = None
+        hinfo: dict = {}
+        if ctx.best is None or not prep.harvests_any(ctx.best):
+            # Several assignment orders (each a fraction of a second per 1,000 stands);
+            # the best legal plan is kept. Which order wins depends on the landscape.
+            best_h, hinfo = _construct(
+                prep,
+                lp,
+                _construction_runs(problem),
+                deadline,
+                budget,
+                lambda plan: ctx.offer(plan, "heuristic"),
+            )
         stats["heuristic_time_s"] = round(time.perf_counter() - th, 3)
         stats["heuristic"] = hinfo
         if best_h is not None:
@@ -341,6 +354,13 @@ def solve(
             ):
                 # No legal start for the local search: let CP-SAT find one first.
                 infeasible = _full(ctx, settings, stats, until_first=True)
+            if (
+                not infeasible
+                and ctx.best is not None
+                and relaxed is not None
+                and strategy in ("full", "local", "windows")
+            ):
+                _relaxed_chain(ctx, stats, lp, float(settings.time_limit_s), relaxed, rbest)
             if not infeasible and ctx.best is not None and strategy in ("full", "local"):
                 # Small models: the local search gets a share of the time, CP-SAT polishes
                 # the result (and proves optimality on small instances); large models: the
@@ -619,6 +639,134 @@ def _alternate(
         rate[m] = (ctx.best_npv - before) / max(dt, 1e-3)
         blocks.append((m, round(dt, 2), round(ctx.best_npv - before, 2)))
     stats["search_blocks"] = blocks
+
+
+def _construct(
+    prep: Prep,
+    lp: LpResult,
+    runs: list[tuple[str, float]],
+    deadline: float,
+    budget: float,
+    on_plan: Callable[[np.ndarray], object],
+) -> tuple[tuple[np.ndarray, float, str] | None, dict]:
+    """The construction runs ``(order, slack)`` in turn: the best legal plan and each run's info.
+
+    Every better legal plan goes to ``on_plan`` at once (several runs can take a third of
+    the time limit). With more runs than orders (the slack ladder of non-declining flow)
+    the runs stop once ``budget`` seconds are used and a plan that harvests was found;
+    the fallback slacks run only while none was.
+    """
+    problem = prep.problem
+    th = time.perf_counter()
+    hinfo: dict = {}
+    best_h: tuple[np.ndarray, float, str] | None = None
+    for order, slack in runs:
+        now = time.perf_counter()
+        if best_h is not None and (
+            now >= deadline
+            or (
+                len(runs) > len(HEURISTIC_ORDERS)
+                and (now - th > budget or slack in FALLBACK_SLACKS)
+                and prep.harvests_any(best_h[0])
+            )
+        ):
+            break
+        if lp.status == "optimal" and lp.x_rx is not None:
+            plan, info = greedy_plan(prep, lp.x_rx, lp.price, deadline, order=order, slack=slack)
+        else:
+            # No LP solution: spread every stand evenly over its harvest periods.
+            even = np.where(prep.harvest_mask != 0, 1.0 / max(prep.P, 1), 0.0)
+            plan, info = greedy_plan(prep, even, None, deadline, order=order)
+        info["npv"] = plan_npv(problem, plan, prep.rx) if info.get("legal") else None
+        info["seconds"] = round(time.perf_counter() - now, 3)
+        key = order if slack == 0.0 else f"{order} {slack:+.0%}"
+        hinfo[key] = info
+        if info.get("legal") and (best_h is None or info["npv"] > best_h[1]):
+            best_h = (plan, info["npv"], key)
+            on_plan(plan)
+    return best_h, hinfo
+
+
+def _sweep_deadline(ctx: SearchCtx, settings: SolverSettings) -> float:
+    """When a sweep started now must end (a sweep cut short returns a plan that is checked)."""
+    return min(ctx.deadline, time.perf_counter() + SWEEP_SHARE * float(settings.time_limit_s))
+
+
+def _without_chain(prep: Prep) -> Prep:
+    """The problem without its non-declining rows (every other rule kept), prepared."""
+    problem = prep.problem
+    return prepare(
+        dataclasses.replace(problem, flow=dataclasses.replace(problem.flow, non_declining=False))
+    )
+
+
+def _relaxed_chain(
+    ctx: SearchCtx,
+    stats: dict,
+    lp: LpResult,
+    time_limit_s: float,
+    prep_r: Prep,
+    start: tuple[np.ndarray, float, str] | None,
+) -> None:
+    """Search without the non-declining rows, sweeping its plans back into the chain.
+
+    Under non-declining flow a period's volume can only rise when every later one does,
+    so single moves and windows stall on a plan that climbs to the cap. Without those
+    rows (the flow tolerance, the volume limits, openings and every other rule kept) the
+    same search keeps the volumes level near the LP's; :func:`sweep_flow` then lowers the
+    periods, last first, until each is at most the next. ``RELAXED_SHARE`` of the time
+    left goes to this phase; the swept plans are offered to ``ctx`` as they come (each
+    sweep is checked there), the last one at the end of the phase. ``prep_r`` is the
+    problem without the non-declining rows; the search starts from the better of
+    ``start`` (its construction's best plan) and ``ctx.best``.
+    """
+    prep = ctx.prep
+    t = time.perf_counter()
+    until = t + RELAXED_SHARE * max(ctx.left(), 0.0)
+    info: dict = {"sweeps": 0, "sweep_s": 0.0, "offered": 0}
+    rctx = SearchCtx(
+        prep=prep_r,
+        scaling=ctx.scaling,
+        pool=ctx.pool,
+        workers=ctx.workers,
+        seed=ctx.seed,
+        deadline=until,
+        t0=ctx.t0,
+        lp_value=ctx.lp_value,
+        registry=ctx.registry,
+        stats={"warnings": []},
+        gap_stop=ctx.gap_stop,
+    )
+    last = {"at": -np.inf, "npv": -np.inf}
+
+    def sweep(c: SearchCtx, force: bool = False) -> None:
+        now = time.perf_counter()
+        if c.best is None or c.best_npv <= last["npv"]:
+            return
+        if not force and now - last["at"] < max(
+            SWEEP_EVERY_S, 5.0 * info["sweep_s"] / max(info["sweeps"], 1)
+        ):
+            return
+        plan = sweep_flow(prep, c.best, min(ctx.deadline, now + SWEEP_SHARE * time_limit_s))
+        last["at"], last["npv"] = time.perf_counter(), c.best_npv
+        info["sweeps"] += 1
+        info["sweep_s"] = round(info["sweep_s"] + last["at"] - now, 3)
+        if ctx.offer(plan, "relaxed"):
+            info["offered"] += 1
+
+    if start is not None:
+        rctx.offer(start[0], "start")
+    if ctx.best is not None:
+        rctx.offer(ctx.best, "start")
+    if rctx.best is None:
+        return
+    rctx.on_improve = sweep
+    _alternate(rctx, rctx.stats, _lp_stand_value(prep_r, lp), time_limit_s, _lp_volume(lp))
+    sweep(rctx, force=True)
+    info["relaxed_npv"] = rctx.best_npv
+    info["seconds"] = round(time.perf_counter() - t, 3)
+    info["search_blocks"] = rctx.stats.get("search_blocks")
+    stats["relaxed_chain"] = info
 
 
 def _lp_stand_value(prep, lp: LpResult) -> np.ndarray | None:
