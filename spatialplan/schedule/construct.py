@@ -45,6 +45,8 @@ PAIR_FIRSTS = 16
 LIFT_GAP = 0.001
 # Lifting moves per period on average in one sweep.
 LIFT_MOVES = 4
+# Rounds of joint descent and sweep after a sweep that left a pair broken.
+SWEEP_ROUNDS = 3
 # Moves per sweep that mend a pair at the price of breaking a later one.
 FORCED_MOVES = 10
 
@@ -541,13 +543,16 @@ def _lift(
     ks_all: np.ndarray,
     sk_all: np.ndarray,
     lift_gap: float,
+    keep_earlier: bool = False,
 ) -> bool:
     """Raise period ``q``'s volume towards its bound when that pays; True if a move was made.
 
     Period ``q``'s volume is the ceiling of every earlier period under non-declining
     flow: a move that raises it (keeping it in range, every later pair and the other rows)
     is worth its own value change plus the volume the earlier periods may then keep.
-    ``V`` and ``oq`` are updated in place.
+    ``V`` and ``oq`` are updated in place. With ``keep_earlier`` the pairs before
+    period ``q`` must hold after the move as well (a pass from the first period on, once
+    every pair holds).
     """
     lo, hi = _bounds_of(prep, float(V[q + 1]))
     if V[q] >= hi - lift_gap * max(hi, 1.0):
@@ -564,6 +569,9 @@ def _lift(
         prep, V, q, lo, hi, 0.0, ok_now, oq, other_cap, other_w, unit_value, ref=float(V[q])
     )
     mend, _, loss, _ = pair.judge(dV, dO, prep.rel_value[cur] - prep.rel_value[ks])
+    if keep_earlier and q > 0:
+        # After the sweep: the earlier pairs hold and must keep holding.
+        mend &= np.all(_flow_ok(prep, V[None, : q + 1] + dV[:, : q + 1]), axis=1)
     idx = np.nonzero(mend & (loss < 0.0))[0]
     for t in idx[np.argsort(loss[idx], kind="stable")][:32].tolist():
         i, k, k0 = int(sk[t]), int(ks[t]), int(cur[t])
@@ -576,6 +584,42 @@ def _lift(
         oq += other[k] - other[k0]
         return True
     return False
+
+
+def _lift_forward(
+    st: SpatialState,
+    prep: Prep,
+    vol: np.ndarray,
+    other: np.ndarray,
+    other_cap: np.ndarray,
+    other_w: np.ndarray,
+    deadline: float,
+) -> int:
+    """Raise the periods first to last towards the next period's volume; returns the moves.
+
+    Once the sweep has made every pair hold, the earliest periods, whose volume weighs
+    most in the NPV, are often well below the next one (each pair was mended from the
+    last period back). Moves that pay and keep every pair and the other rows are made.
+    """
+    if not _flow_ok(prep, vol[st.plan].sum(axis=0)).all():
+        return 0
+    ks_all = np.nonzero(prep.allowed)[0]
+    sk_all = prep.stand_of[ks_all]
+    rel = prep.rel_value
+    tv = vol[ks_all].sum()
+    unit_value = float(np.maximum(rel[ks_all], 0.0).sum() / tv) if tv > 0 else 0.0
+    V = vol[st.plan].sum(axis=0)
+    oq = other[st.plan].sum(axis=0)
+    moves = 0
+    for q in range(prep.P - 1):
+        for _ in range(LIFT_MOVES):
+            if time.perf_counter() >= deadline:
+                return moves
+            args = (other_cap, other_w, unit_value, q, ks_all, sk_all, LIFT_GAP)
+            if not _lift(st, prep, vol, V, oq, other, *args, keep_earlier=True):
+                break
+            moves += 1
+    return moves
 
 
 def sweep_flow(prep: Prep, plan: np.ndarray, deadline: float) -> np.ndarray:
@@ -610,7 +654,17 @@ def sweep_flow(prep: Prep, plan: np.ndarray, deadline: float) -> np.ndarray:
         return np.asarray(st.plan, dtype=np.int64).copy()
     w = 1.0 / _row_units(D[prep.allowed])
     other = np.array([r.family != "flow" for r in prep.rows], dtype=bool)
-    _flow_sweep(st, prep, period_volumes(prep), D[:, other], cap[other], w[other], deadline)
+    vol = period_volumes(prep)
+    _flow_sweep(st, prep, vol, D[:, other], cap[other], w[other], deadline)
+    for _ in range(SWEEP_ROUNDS):
+        if not np.any(D[st.plan].sum(axis=0) > cap + rows.margin):
+            break
+        # A pair the sweep could not mend without breaking a later one (the later
+        # periods sit on their bounds): lower the excess of every row together, then
+        # sweep again.
+        _descend(st, prep, D, cap, w, deadline)
+        _flow_sweep(st, prep, vol, D[:, other], cap[other], w[other], deadline)
+    _lift_forward(st, prep, vol, D[:, other], cap[other], w[other], deadline)
     return np.asarray(st.plan, dtype=np.int64).copy()
 
 

@@ -54,6 +54,7 @@ from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
 from spatialplan.schedule.model import Prep, check_plan, plan_harvests, plan_npv, prepare
 from spatialplan.schedule.windows import (
     SearchCtx,
+    WindowCache,
     WindowSearch,
     lazy_rounds,
     lns,
@@ -349,6 +350,7 @@ def solve(
             strategy = "full" if n_vars <= FULL_MODEL_MAX_VARS else "windows"
         stats["strategy"] = strategy
         infeasible = False
+        cache = WindowCache()  # cover lists shared by the window searches of this solve
         if strategy != "heuristic" and not ctx.stopped() and n_vars > 0:
             if ctx.best is None or (
                 not prep.harvests_any(ctx.best) and strategy not in ("local", "windows")
@@ -362,7 +364,14 @@ def solve(
                 and strategy in ("local", "windows")
             ):
                 _relaxed_chain(
-                    ctx, stats, lp, float(settings.time_limit_s), relaxed, rbest, sweeps["npv"]
+                    ctx,
+                    stats,
+                    lp,
+                    float(settings.time_limit_s),
+                    relaxed,
+                    rbest,
+                    sweeps["npv"],
+                    cache,
                 )
             if not infeasible and ctx.best is not None and strategy in ("full", "local"):
                 # Small models: the local search gets a share of the time, CP-SAT polishes
@@ -385,6 +394,7 @@ def solve(
                     _lp_stand_value(prep, lp),
                     float(settings.time_limit_s),
                     _lp_volume(lp),
+                    cache,
                 )
             if strategy == "lns" and not infeasible and ctx.best is not None:
                 lns(ctx, _lp_stand_value(prep, lp), lp_volume=_lp_volume(lp))
@@ -592,6 +602,7 @@ def _alternate(
     lp_stand_value: np.ndarray | None,
     time_limit_s: float,
     lp_volume: np.ndarray | None = None,
+    cache: WindowCache | None = None,
 ) -> None:
     """The annealing until it stalls (at most ``FIRST_LOCAL_SHARE`` of the time left),
     then blocks of annealing or CP-SAT windows.
@@ -613,7 +624,7 @@ def _alternate(
         state=state,
     )
     blocks = [("local", round(time.perf_counter() - t, 2), round(ctx.best_npv - before, 2))]
-    windows = WindowSearch(ctx, lp_stand_value, lp_volume=lp_volume)
+    windows = WindowSearch(ctx, lp_stand_value, lp_volume=lp_volume, cache=cache)
     block = max(BLOCK_MIN_S, BLOCK_SHARE * time_limit_s)
     # The annealing is first judged by what its last round gained per second (its early
     # rounds climb fast and say little about the next one).
@@ -711,6 +722,7 @@ def _relaxed_chain(
     prep_r: Prep,
     start: tuple[np.ndarray, float, str] | None,
     swept_npv: float = -np.inf,
+    cache: WindowCache | None = None,
 ) -> None:
     """Search without the non-declining rows, sweeping its plans back into the chain.
 
@@ -766,7 +778,7 @@ def _relaxed_chain(
     if rctx.best is None:
         return
     rctx.on_improve = sweep
-    _alternate(rctx, rctx.stats, _lp_stand_value(prep_r, lp), time_limit_s, _lp_volume(lp))
+    _alternate(rctx, rctx.stats, _lp_stand_value(prep_r, lp), time_limit_s, _lp_volume(lp), cache)
     sweep(rctx, force=True)
     info["relaxed_npv"] = rctx.best_npv
     info["seconds"] = round(time.perf_counter() - t, 3)

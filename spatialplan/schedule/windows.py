@@ -39,7 +39,7 @@ from spatialplan.schedule.model import (
     window_covers,
 )
 
-__all__ = ["SearchCtx", "WindowSearch", "lazy_rounds", "lns", "seed_pair_covers"]
+__all__ = ["SearchCtx", "WindowCache", "WindowSearch", "lazy_rounds", "lns", "seed_pair_covers"]
 
 
 @dataclass
@@ -362,6 +362,32 @@ def _window(
     return _grow(prep, [int(rng.choice(has))], target_vars, stand_vars), None
 
 
+@dataclass
+class WindowCache:
+    """What the window searches of one solve share (the openings are the same for all).
+
+    Attributes
+    ----------
+    cover_sets
+        Minimal over-size sets listed so far (over all stands).
+    cover_by_stand
+        Indices into ``cover_sets`` by stand.
+    cover_done
+        (n,) bool: stands whose sets are all listed (``None`` until a search starts).
+    cache_misses
+        Listings that ran past the set limit (the searches then list per window).
+    build_s
+        Seconds the last window build took (model and cover clauses): no window is
+        started with less time left.
+    """
+
+    cover_sets: list[frozenset[int]] = field(default_factory=list)
+    cover_by_stand: dict[int, list[int]] = field(default_factory=dict)
+    cover_done: np.ndarray | None = None
+    cache_misses: int = 0
+    build_s: float = 0.0
+
+
 class WindowSearch:
     """Window search from ``ctx.best`` (a matheuristic LNS), resumable in blocks.
 
@@ -387,6 +413,7 @@ class WindowSearch:
         kinds: tuple[str, ...] = WINDOW_KINDS,
         stall_s: float = 15.0,
         lp_volume: np.ndarray | None = None,
+        cache: WindowCache | None = None,
     ) -> None:
         prep = ctx.prep
         self.ctx = ctx
@@ -412,13 +439,9 @@ class WindowSearch:
         self.max_cover_sets = 100_000
         self.lp_volume = lp_volume
         self._rx_volume: np.ndarray | None = None  # (K, P) volumes, made on first use
-        # Minimal covers listed so far (over all stands), by stand, and the stands whose
-        # sets are all listed.
-        self.cover_sets: list[frozenset[int]] = []
-        self.cover_by_stand: dict[int, list[int]] = {}
-        self.cover_done = np.zeros(prep.n, dtype=bool)
-        self.cache_misses = 0
-        self.build_s = 0.0  # slowest window build (model and cover clauses) so far
+        self.cache = WindowCache() if cache is None else cache
+        if self.cache.cover_done is None:
+            self.cache.cover_done = np.zeros(prep.n, dtype=bool)
 
     def _eager_covers(self, sub: SubModel) -> None:
         """Every minimal cover holding a free stand, as clauses of this window only.
@@ -440,22 +463,24 @@ class WindowSearch:
         open_any = np.asarray(sub.base_hop.any(axis=1) | prep.fixed_open.any(axis=1))
         take = open_any.copy()
         take[sub.free] = True
-        need = sub.free[~self.cover_done[sub.free]]
-        if need.size and self.cache_misses < 1:
+        done = self.cache.cover_done
+        assert done is not None
+        need = sub.free[~done[sub.free]]
+        if need.size and self.cache.cache_misses < 1:
             sets, fin = covers_from_roots(
-                prep, need, np.ones(prep.n, dtype=bool), self.max_cover_sets, self.cover_done
+                prep, need, np.ones(prep.n, dtype=bool), self.max_cover_sets, done
             )
             for s in sets:
-                k = len(self.cover_sets)
-                self.cover_sets.append(s)
+                k = len(self.cache.cover_sets)
+                self.cache.cover_sets.append(s)
                 for i in s:
-                    self.cover_by_stand.setdefault(i, []).append(k)
-            self.cover_done[fin] = True
+                    self.cache.cover_by_stand.setdefault(i, []).append(k)
+            done[fin] = True
             if fin.size < need.size:
-                self.cache_misses += 1
-        if self.cover_done[sub.free].all():
-            ids = {k for i in sub.free.tolist() for k in self.cover_by_stand.get(i, ())}
-            chosen = [self.cover_sets[k] for k in sorted(ids)]
+                self.cache.cache_misses += 1
+        if done[sub.free].all():
+            ids = {k for i in sub.free.tolist() for k in self.cache.cover_by_stand.get(i, ())}
+            chosen = [self.cache.cover_sets[k] for k in sorted(ids)]
             chosen = [s for s in chosen if all(take[j] for j in s)]
             sub.add_cover_sets(chosen)
             self.ctx.bump("window_cover_sets", len(chosen))
@@ -482,10 +507,11 @@ class WindowSearch:
             return
         self.last_gain = time.perf_counter()
         # Building a window takes from a few tenths of a second to two seconds (whole-forest
-        # windows on the demo): none is started in the last 0.3 s plus the slowest build
-        # so far, so the time limit holds.
+        # windows on the demo): none is started in the last 0.3 s plus the last build's
+        # time, so the time limit holds.
         while (
-            not ctx.stopped() and min(ctx.left(), until - time.perf_counter()) > 0.3 + self.build_s
+            not ctx.stopped()
+            and min(ctx.left(), until - time.perf_counter()) > 0.3 + self.cache.build_s
         ):
             kind = _pick(self.rng, self.arms)
             arm = self.arms[kind]
@@ -505,9 +531,10 @@ class WindowSearch:
             before = ctx.best_npv
             sub = SubModel(prep, free, ctx.best, ctx.scaling, allow=allow)
             self._eager_covers(sub)
-            # No window is started with less time left than the slowest build took (the
-            # time limit holds within a few tenths of a second).
-            self.build_s = max(self.build_s, time.perf_counter() - t0)
+            # No window is started with less time left than the last build took (the
+            # time limit holds within a few tenths of a second; the first build of a
+            # solve also lists the covers, once).
+            self.cache.build_s = time.perf_counter() - t0
             # Larger windows get longer (up to four times the base time).
             scale = float(np.clip(len(sub.xvars) / 1000.0, 1.0, 4.0))
             budget = min(self.window_time_s * scale, ctx.left(), until - time.perf_counter())
