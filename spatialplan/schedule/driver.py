@@ -102,6 +102,12 @@ CONSTRUCT_SHARE = 0.3
 RELAXED_SHARE = 0.4
 SWEEP_EVERY_S = 2.0
 SWEEP_SHARE = 0.1  # of the time limit, at most, for one sweep
+# Slacks (below the LP's period volumes) of the looser construction's best order, each
+# plan swept, while the construction budget lasts; under non-declining flow the two
+# constructions (looser one swept, slack ladder) share CHAIN_CONSTRUCT_SHARE of the time
+# limit (on the demo the searches after them gained 0-0.04 points of the bound).
+RELAXED_SLACKS = (-0.02, -0.04, -0.01, -0.03)
+CHAIN_CONSTRUCT_SHARE = 0.5
 
 
 @dataclass(frozen=True)
@@ -298,8 +304,8 @@ def solve(
         chain = problem.flow.non_declining and prep.P > 1
         sweeps: dict = {"n": 0, "s": 0.0, "npv": -np.inf}
         if chain:
-            # Non-declining flow: the construction without those rows, each plan swept
-            # back into the chain of rows (see _relaxed_chain).
+            # Non-declining flow: the construction without those rows, its best plan
+            # swept back into the chain of rows (see _relaxed_chain).
             relaxed = _without_chain(prep)
 
             def swept(plan: np.ndarray) -> None:
@@ -309,9 +315,28 @@ def solve(
                 sweeps["s"] += time.perf_counter() - ts
                 sweeps["npv"] = max(sweeps["npv"], plan_npv(problem, plan, prep.rx))
 
+            budget = CHAIN_CONSTRUCT_SHARE * float(settings.time_limit_s)
             rbest, rinfo = _construct(
-                relaxed, lp, _construction_runs(relaxed.problem), deadline, budget, swept
+                relaxed, lp, _construction_runs(relaxed.problem), deadline, budget, lambda p: None
             )
+            if rbest is not None:
+                swept(rbest[0])
+            if rbest is not None and lp.status == "optimal" and lp.x_rx is not None:
+                # The best order again below the LP's volumes: a plan that leaves the
+                # later periods room under a volume cap loses less in the sweep (on the
+                # demo 0.9815 of the bound from -2 % against 0.979 from 0 %).
+                order = rbest[2]
+                for slack in RELAXED_SLACKS:
+                    now = time.perf_counter()
+                    if now - th > budget or now >= deadline:
+                        break
+                    plan, info = greedy_plan(
+                        relaxed, lp.x_rx, lp.price, deadline, order=order, slack=slack
+                    )
+                    info["seconds"] = round(time.perf_counter() - now, 3)
+                    rinfo[f"{order} {slack:+.0%}"] = info
+                    if info.get("legal"):
+                        swept(plan)
             stats["relaxed_heuristic"] = rinfo
             stats["relaxed_heuristic_sweeps"] = {
                 "runs": sweeps["n"],
