@@ -359,8 +359,7 @@ def _flow_sweep(
     rel = prep.rel_value
     V = vol[st.plan].sum(axis=0)
     oq = other[st.plan].sum(axis=0)
-    tv = vol[ks_all].sum()
-    unit_value = float(np.maximum(rel[ks_all], 0.0).sum() / tv) if tv > 0 else 0.0
+    unit_value = _unit_value(prep, vol, ks_all)
     moves = 0
     lifts = 0
     forced = 0
@@ -504,7 +503,7 @@ def _force(
     does not raise the other rows' excess, but may break later pairs (the sweep goes back
     to them). True if a move was made; ``pair.V`` and ``pair.oq`` are updated in place.
     """
-    prep, V, oq, q, unit_value = pair.prep, pair.V, pair.oq, pair.q, pair.unit_value
+    V, oq, q, unit_value = pair.V, pair.oq, pair.q, pair.unit_value
     nV = V[q] + dV[:, q]
     fits = (nV <= pair.hi) & (nV >= pair.lo)
     if pair.other_cap.size:
@@ -516,10 +515,31 @@ def _force(
         return False
     spill = np.abs(dV[idx, q + 1 :]).sum(axis=1)
     cost = spill + rloss[idx] / max(unit_value, 1e-12)
-    for t in idx[np.argsort(cost, kind="stable")][:32].tolist():
+    order = idx[np.argsort(cost, kind="stable")][:32]
+    return _apply_first(st, order, sk, ks, cur, vol, other, V, oq)
+
+
+def _apply_first(
+    st: SpatialState,
+    order: np.ndarray,
+    sk: np.ndarray,
+    ks: np.ndarray,
+    cur: np.ndarray,
+    vol: np.ndarray,
+    other: np.ndarray,
+    V: np.ndarray,
+    oq: np.ndarray,
+) -> bool:
+    """Make the first move of ``order`` that keeps the openings; True if one was made.
+
+    Move ``t`` gives stand ``sk[t]`` (now on ``cur[t]``) prescription ``ks[t]``; the period
+    volumes ``V`` and the other rows' quantities ``oq`` are updated in place.
+    """
+    hm = st.prep.harvest_mask
+    for t in order.tolist():
         i, k, k0 = int(sk[t]), int(ks[t]), int(cur[t])
         st.unset(i)
-        if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
+        if hm[k] != 0 and not st.can_add(i, k):
             st.set(i, k0)
             continue
         st.set(i, k)
@@ -527,6 +547,12 @@ def _force(
         oq += other[k] - other[k0]
         return True
     return False
+
+
+def _unit_value(prep: Prep, vol: np.ndarray, ks: np.ndarray) -> float:
+    """Mean value per m3 over prescriptions ``ks`` (the sweep's price of volume)."""
+    tv = float(vol[ks].sum())
+    return float(np.maximum(prep.rel_value[ks], 0.0).sum() / tv) if tv > 0 else 0.0
 
 
 def _lift(
@@ -543,16 +569,13 @@ def _lift(
     ks_all: np.ndarray,
     sk_all: np.ndarray,
     lift_gap: float,
-    keep_earlier: bool = False,
 ) -> bool:
     """Raise period ``q``'s volume towards its bound when that pays; True if a move was made.
 
     Period ``q``'s volume is the ceiling of every earlier period under non-declining
     flow: a move that raises it (keeping it in range, every later pair and the other rows)
     is worth its own value change plus the volume the earlier periods may then keep.
-    ``V`` and ``oq`` are updated in place. With ``keep_earlier`` the pairs before
-    period ``q`` must hold after the move as well (a pass from the first period on, once
-    every pair holds).
+    ``V`` and ``oq`` are updated in place.
     """
     lo, hi = _bounds_of(prep, float(V[q + 1]))
     if V[q] >= hi - lift_gap * max(hi, 1.0):
@@ -569,57 +592,9 @@ def _lift(
         prep, V, q, lo, hi, 0.0, ok_now, oq, other_cap, other_w, unit_value, ref=float(V[q])
     )
     mend, _, loss, _ = pair.judge(dV, dO, prep.rel_value[cur] - prep.rel_value[ks])
-    if keep_earlier and q > 0:
-        # After the sweep: the earlier pairs hold and must keep holding.
-        mend &= np.all(_flow_ok(prep, V[None, : q + 1] + dV[:, : q + 1]), axis=1)
     idx = np.nonzero(mend & (loss < 0.0))[0]
-    for t in idx[np.argsort(loss[idx], kind="stable")][:32].tolist():
-        i, k, k0 = int(sk[t]), int(ks[t]), int(cur[t])
-        st.unset(i)
-        if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
-            st.set(i, k0)
-            continue
-        st.set(i, k)
-        V += vol[k] - vol[k0]
-        oq += other[k] - other[k0]
-        return True
-    return False
-
-
-def _lift_forward(
-    st: SpatialState,
-    prep: Prep,
-    vol: np.ndarray,
-    other: np.ndarray,
-    other_cap: np.ndarray,
-    other_w: np.ndarray,
-    deadline: float,
-) -> int:
-    """Raise the periods first to last towards the next period's volume; returns the moves.
-
-    Once the sweep has made every pair hold, the earliest periods, whose volume weighs
-    most in the NPV, are often well below the next one (each pair was mended from the
-    last period back). Moves that pay and keep every pair and the other rows are made.
-    """
-    if not _flow_ok(prep, vol[st.plan].sum(axis=0)).all():
-        return 0
-    ks_all = np.nonzero(prep.allowed)[0]
-    sk_all = prep.stand_of[ks_all]
-    rel = prep.rel_value
-    tv = vol[ks_all].sum()
-    unit_value = float(np.maximum(rel[ks_all], 0.0).sum() / tv) if tv > 0 else 0.0
-    V = vol[st.plan].sum(axis=0)
-    oq = other[st.plan].sum(axis=0)
-    moves = 0
-    for q in range(prep.P - 1):
-        for _ in range(LIFT_MOVES):
-            if time.perf_counter() >= deadline:
-                return moves
-            args = (other_cap, other_w, unit_value, q, ks_all, sk_all, LIFT_GAP)
-            if not _lift(st, prep, vol, V, oq, other, *args, keep_earlier=True):
-                break
-            moves += 1
-    return moves
+    order = idx[np.argsort(loss[idx], kind="stable")][:32]
+    return _apply_first(st, order, sk, ks, cur, vol, other, V, oq)
 
 
 def sweep_flow(prep: Prep, plan: np.ndarray, deadline: float) -> np.ndarray:
@@ -627,9 +602,12 @@ def sweep_flow(prep: Prep, plan: np.ndarray, deadline: float) -> np.ndarray:
 
     For a plan of a looser problem, such as one searched without the non-declining rows:
     :func:`_flow_sweep` brings every period's volume, from the last back, into the range
-    the flow rules allow given the next period's, with single-stand moves that keep the
-    openings and do not raise the excess of the other rule rows. The result is not
-    checked: the caller checks it (a sweep can run out of moves or time).
+    the flow rules allow given the next period's, with moves of one or two stands that
+    keep the openings and do not raise the excess of the other rule rows (raising a
+    period towards its bound where that pays, and mending a pair at the price of a later
+    one when nothing else does). While a pair is still broken, up to ``SWEEP_ROUNDS``
+    rounds lower the excess of every row together (:func:`_descend`) and sweep again. The
+    result is not checked: the caller checks it (a sweep can run out of moves or time).
 
     Parameters
     ----------
@@ -664,7 +642,6 @@ def sweep_flow(prep: Prep, plan: np.ndarray, deadline: float) -> np.ndarray:
         # sweep again.
         _descend(st, prep, D, cap, w, deadline)
         _flow_sweep(st, prep, vol, D[:, other], cap[other], w[other], deadline)
-    _lift_forward(st, prep, vol, D[:, other], cap[other], w[other], deadline)
     return np.asarray(st.plan, dtype=np.int64).copy()
 
 
