@@ -568,8 +568,8 @@ def test_flow_sweep_of_a_plan_without_the_chain_breaks_no_other_rule(
     # pair or is rejected by the caller. Measured on these eight cases: legal on (2, None),
     # (2, 40), (3, 40), (4, 40) at 0.916-0.956 of the LP bound, one to three declining
     # pairs left on the others.
-    from spatialplan.schedule.construct import sweep_flow
     from spatialplan.schedule.model import prepare
+    from spatialplan.schedule.repair import sweep_flow
 
     pr = _capped_non_declining(seed, max_opening)
     loose = dataclasses.replace(pr, flow=dataclasses.replace(pr.flow, non_declining=False))

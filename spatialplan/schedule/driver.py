@@ -49,9 +49,10 @@ from spatialplan.errors import InfeasibleError, NoSolutionError
 from spatialplan.problem import PlanProblem, Prescriptions
 from spatialplan.schedule.anneal import anneal
 from spatialplan.schedule.bound import LpResult, cover_lp_bound, lp_bound, solve_lp
-from spatialplan.schedule.construct import greedy_plan, sweep_flow
+from spatialplan.schedule.construct import greedy_plan
 from spatialplan.schedule.cpsat import CoverPool, SubModel, make_scaling
 from spatialplan.schedule.model import Prep, check_plan, plan_harvests, plan_npv, prepare
+from spatialplan.schedule.repair import sweep_flow
 from spatialplan.schedule.windows import (
     SearchCtx,
     WindowCache,
@@ -98,7 +99,7 @@ FALLBACK_SLACKS = (-0.08, -0.15)
 CONSTRUCT_SHARE = 0.3
 # Non-declining flow: a share of the time left after the construction goes to a search on
 # the problem without the non-declining rows (every other rule kept); its plans are swept
-# back into the chain of rows (construct.sweep_flow), at most every SWEEP_EVERY_S seconds.
+# back into the chain of rows (repair.sweep_flow), at most every SWEEP_EVERY_S seconds.
 RELAXED_SHARE = 0.4
 SWEEP_EVERY_S = 2.0
 SWEEP_SHARE = 0.1  # of the time limit, at most, for one sweep
@@ -300,7 +301,6 @@ def solve(
         th = time.perf_counter()
         budget = CONSTRUCT_SHARE * float(settings.time_limit_s)
         relaxed = None
-        rinfo: dict = {}
         chain = problem.flow.non_declining and prep.P > 1
         sweeps: dict = {"n": 0, "s": 0.0, "npv": -np.inf}
         ladder = _construction_runs(problem)
@@ -313,39 +313,13 @@ def solve(
                 prep, lp, ladder[:1], deadline, budget, lambda p: ctx.offer(p, "heuristic")
             )
             ladder = ladder[1:]
-            # Non-declining flow: the construction without those rows, its best plan
-            # swept back into the chain of rows (see _relaxed_chain).
+            # Non-declining flow: the construction without those rows, its plans swept
+            # back into the chain of rows (see _looser_construction).
             relaxed = _without_chain(prep)
-
-            def swept(plan: np.ndarray) -> None:
-                ts = time.perf_counter()
-                ctx.offer(sweep_flow(prep, plan, _sweep_deadline(ctx, settings)), "relaxed")
-                sweeps["n"] += 1
-                sweeps["s"] += time.perf_counter() - ts
-                sweeps["npv"] = max(sweeps["npv"], plan_npv(problem, plan, prep.rx))
-
             budget = CHAIN_CONSTRUCT_SHARE * float(settings.time_limit_s)
-            rbest, rinfo = _construct(
-                relaxed, lp, _construction_runs(relaxed.problem), deadline, budget, lambda p: None
+            rbest, rinfo = _looser_construction(
+                ctx, relaxed, lp, float(settings.time_limit_s), th + budget, sweeps
             )
-            if rbest is not None:
-                swept(rbest[0])
-            if rbest is not None and lp.status == "optimal" and lp.x_rx is not None:
-                # The best order again below the LP's volumes: a plan that leaves the
-                # later periods room under a volume cap loses less in the sweep (on the
-                # demo 0.9815 of the bound from -2 % against 0.979 from 0 %).
-                order = rbest[2]
-                for slack in RELAXED_SLACKS:
-                    now = time.perf_counter()
-                    if now - th > budget or now >= deadline:
-                        break
-                    plan, info = greedy_plan(
-                        relaxed, lp.x_rx, lp.price, deadline, order=order, slack=slack
-                    )
-                    info["seconds"] = round(time.perf_counter() - now, 3)
-                    rinfo[f"{order} {slack:+.0%}"] = info
-                    if info.get("legal"):
-                        swept(plan)
             stats["relaxed_heuristic"] = rinfo
             stats["relaxed_heuristic_sweeps"] = {
                 "runs": sweeps["n"],
@@ -741,9 +715,57 @@ def _construct(
     return best_h, hinfo
 
 
-def _sweep_deadline(ctx: SearchCtx, settings: SolverSettings) -> float:
+def _sweep_deadline(ctx: SearchCtx, time_limit_s: float) -> float:
     """When a sweep started now must end (a sweep cut short returns a plan that is checked)."""
-    return min(ctx.deadline, time.perf_counter() + SWEEP_SHARE * float(settings.time_limit_s))
+    return min(ctx.deadline, time.perf_counter() + SWEEP_SHARE * time_limit_s)
+
+
+def _looser_construction(
+    ctx: SearchCtx,
+    relaxed: Prep,
+    lp: LpResult,
+    time_limit_s: float,
+    until: float,
+    sweeps: dict,
+) -> tuple[tuple[np.ndarray, float, str] | None, dict]:
+    """The construction on the problem without the non-declining rows, swept back.
+
+    The four assignment orders on ``relaxed``, their best plan swept into the chain of
+    rows (:func:`sweep_flow`), then the best order again at each of ``RELAXED_SLACKS``
+    below the LP's volumes, each plan swept, until ``until``: a plan that leaves the later
+    periods room under a volume cap loses less in the sweep (on the demo 0.9815 of the
+    bound from -2 % against 0.979 from 0 %). Every swept plan is offered to ``ctx``
+    (checked there). ``sweeps`` counts the sweeps, their seconds and the best looser NPV
+    swept. Returns the best looser plan ``(plan, npv, key)`` and each run's info.
+    """
+    prep = ctx.prep
+
+    def swept(plan: np.ndarray) -> None:
+        ts = time.perf_counter()
+        ctx.offer(sweep_flow(prep, plan, _sweep_deadline(ctx, time_limit_s)), "relaxed")
+        sweeps["n"] += 1
+        sweeps["s"] += time.perf_counter() - ts
+        sweeps["npv"] = max(sweeps["npv"], plan_npv(prep.problem, plan, prep.rx))
+
+    t = time.perf_counter()
+    runs = _construction_runs(relaxed.problem)
+    rbest, rinfo = _construct(relaxed, lp, runs, ctx.deadline, until - t, lambda p: None)
+    if rbest is None:
+        return None, rinfo
+    swept(rbest[0])
+    if lp.status != "optimal" or lp.x_rx is None:
+        return rbest, rinfo
+    order = rbest[2]
+    for slack in RELAXED_SLACKS:
+        now = time.perf_counter()
+        if now >= min(until, ctx.deadline):
+            break
+        plan, info = greedy_plan(relaxed, lp.x_rx, lp.price, ctx.deadline, order=order, slack=slack)
+        info["seconds"] = round(time.perf_counter() - now, 3)
+        rinfo[f"{order} {slack:+.0%}"] = info
+        if info.get("legal"):
+            swept(plan)
+    return rbest, rinfo
 
 
 def _without_chain(prep: Prep) -> Prep:
@@ -804,7 +826,7 @@ def _relaxed_chain(
             SWEEP_EVERY_S, 5.0 * info["sweep_s"] / max(info["sweeps"], 1)
         ):
             return
-        plan = sweep_flow(prep, c.best, min(ctx.deadline, now + SWEEP_SHARE * time_limit_s))
+        plan = sweep_flow(prep, c.best, _sweep_deadline(ctx, time_limit_s))
         last["at"], last["npv"] = time.perf_counter(), c.best_npv
         info["sweeps"] += 1
         info["sweep_s"] = round(info["sweep_s"] + last["at"] - now, 3)

@@ -27,7 +27,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from spatialplan.schedule.construct import period_volumes
 from spatialplan.schedule.cpsat import CoverPool, Scaling, SubModel
 from spatialplan.schedule.model import (
     Prep,
@@ -38,6 +37,7 @@ from spatialplan.schedule.model import (
     spatial_breaches,
     window_covers,
 )
+from spatialplan.schedule.repair import period_volumes
 
 __all__ = ["SearchCtx", "WindowCache", "WindowSearch", "lazy_rounds", "lns", "seed_pair_covers"]
 
