@@ -178,8 +178,7 @@ def test_window_with_kept_cover_list_is_legal_at_once_and_matches_brute_force(
     ws = WindowSearch(ctx)
     sub = SubModel(ctx.prep, np.array(free), base, ctx.scaling)
     ws._eager_covers(sub)
-    done = ws.cache.cover_done
-    assert done is not None and done[free].all()
+    assert ws.cache.cover_done[free].all()
     res = lazy_rounds(ctx, sub, 30.0, "test", first_slice_s=10.0)
     assert res == "optimal"
     assert ctx.stats.get("rounds", 0) == 0

@@ -266,8 +266,6 @@ def _flow_sweep(
     other_cap: np.ndarray,
     other_w: np.ndarray,
     deadline: float,
-    pairs: int = PAIR_FIRSTS,
-    lift_gap: float = LIFT_GAP,
 ) -> int:
     """Make the period volumes keep the flow rules, last period first; returns the moves.
 
@@ -277,9 +275,9 @@ def _flow_sweep(
     a shortfall late in the horizon lowers the earlier periods by just that much instead
     of dragging a chain of rows towards zero. A move may not raise the excess of the
     other rows (``other``: ``(K, R')`` against the no-harvest prescription, ``other_cap``
-    and ``other_w`` their limits and weights). ``pairs`` first moves are tried in pairs
-    with a finer second one; a period more than ``lift_gap`` (relative) below its bound is
-    raised when that pays; volume the earlier periods must give up is priced at the
+    and ``other_w`` their limits and weights). ``PAIR_FIRSTS`` first moves are tried in
+    pairs with a finer second one; a period more than ``LIFT_GAP`` (relative) below its
+    bound is raised when that pays; volume the earlier periods must give up is priced at the
     mean value per m3 of the prescriptions.
     """
     P = prep.P
@@ -298,7 +296,8 @@ def _flow_sweep(
         for _ in range(4 * prep.n):
             if time.perf_counter() >= deadline:
                 return moves
-            if _flow_ok(prep, V[q:])[0]:
+            ok_now = _flow_ok(prep, V[q:])
+            if ok_now[0]:
                 if lifts >= LIFT_MOVES * P or not _lift(
                     st,
                     prep,
@@ -312,7 +311,6 @@ def _flow_sweep(
                     q,
                     ks_all,
                     sk_all,
-                    lift_gap,
                 ):
                     break
                 lifts += 1
@@ -325,14 +323,11 @@ def _flow_sweep(
             dV = vol[ks] - vol[cur]
             dO = other[ks] - other[cur]
             rloss = np.maximum(rel[cur] - rel[ks], 0.0)
-            ok_now = _flow_ok(prep, V[q:])
             lo, hi = _bounds_of(prep, float(V[q + 1]))
             gap0 = max(V[q] - hi, lo - V[q])
 
             pair = _PairState(prep, V, q, lo, hi, gap0, ok_now, oq, other_cap, other_w, unit_value)
-            judge = pair.judge
-
-            mend, keep, loss, gain = judge(dV, dO, rloss)
+            mend, keep, loss, gain = pair.judge(dV, dO, rloss)
             idx = np.nonzero(keep)[0]
             if idx.size == 0 and not np.any(gain > 0):
                 break
@@ -352,15 +347,15 @@ def _flow_sweep(
             # cheapest that keep every other row, and those that change the later periods
             # least (the partner has to mend what they break).
             toward = idx[np.sign(gain[idx]) > 0]
-            toward = toward[np.argsort(rloss[toward], kind="stable")][: pairs // 2]
+            toward = toward[np.argsort(rloss[toward], kind="stable")][: PAIR_FIRSTS // 2]
             bold = np.nonzero((gain > 0) & ~keep)[0]
             if bold.size:
                 spill = np.abs(dV[bold, q + 1 :]).sum(axis=1)
                 bold = bold[np.argsort(spill + rloss[bold] / max(unit_value, 1e-12), kind="stable")]
-                toward = np.concatenate([toward, bold[: pairs - toward.size]])
+                toward = np.concatenate([toward, bold[: PAIR_FIRSTS - toward.size]])
             for ta in toward.tolist():
                 other_stand = sk != sk[ta]
-                pm, _, pl, _ = judge(dV[ta] + dV, dO[ta] + dO, rloss[ta] + rloss)
+                pm, _, pl, _ = pair.judge(dV[ta] + dV, dO[ta] + dO, rloss[ta] + rloss)
                 good = np.nonzero(pm & other_stand)[0]
                 for tb in good[np.argsort(pl[good], kind="stable")][:4].tolist():
                     tries.append((float(pl[tb]), (int(ta), int(tb))))
@@ -369,32 +364,9 @@ def _flow_sweep(
             tries.sort(key=lambda x: x[0])
             seq = [ts for _, ts in tries[:64]]
             seq += [(int(t),) for t in order[:64].tolist() if not mend[t]]
-            done = False
-            for ts in seq:
-                old = [(int(sk[t]), int(st.plan[int(sk[t])])) for t in ts]
-                applied: list[int] = []
-                for t in ts:
-                    i, k = int(sk[t]), int(ks[t])
-                    st.unset(i)
-                    if prep.harvest_mask[k] != 0 and not st.can_add(i, k):
-                        st.set(i, int(cur[t]))
-                        break
-                    st.set(i, k)
-                    applied.append(t)
-                if len(applied) < len(ts):
-                    for t in applied:
-                        i = int(sk[t])
-                        st.unset(i)
-                        st.set(i, int(cur[t]))
-                    continue
-                for (_, k0), t in zip(old, ts, strict=True):
-                    k = int(ks[t])
-                    V += vol[k] - vol[k0]
-                    oq += other[k] - other[k0]
-                    moves += 1
-                done = True
-                break
-            if not done:
+            made = _apply_first(st, seq, sk, ks, cur, vol, other, V, oq)
+            moves += made
+            if not made:
                 # Stuck: every move that mends the pair breaks a later one (the later
                 # periods sit on their bounds). Mend it with the move that changes the
                 # later periods least and sweep again from the latest broken pair.
@@ -445,12 +417,12 @@ def _force(
     spill = np.abs(dV[idx, q + 1 :]).sum(axis=1)
     cost = spill + rloss[idx] / max(unit_value, 1e-12)
     order = idx[np.argsort(cost, kind="stable")][:32]
-    return _apply_first(st, order, sk, ks, cur, vol, other, V, oq)
+    return _apply_first(st, [(t,) for t in order.tolist()], sk, ks, cur, vol, other, V, oq) > 0
 
 
 def _apply_first(
     st: SpatialState,
-    order: np.ndarray,
+    seq: list[tuple[int, ...]],
     sk: np.ndarray,
     ks: np.ndarray,
     cur: np.ndarray,
@@ -458,24 +430,36 @@ def _apply_first(
     other: np.ndarray,
     V: np.ndarray,
     oq: np.ndarray,
-) -> bool:
-    """Make the first move of ``order`` that keeps the openings; True if one was made.
+) -> int:
+    """Make the first move (or pair of moves) of ``seq`` that keeps the openings.
 
-    Move ``t`` gives stand ``sk[t]`` (now on ``cur[t]``) prescription ``ks[t]``; the period
-    volumes ``V`` and the other rows' quantities ``oq`` are updated in place.
+    Move ``t`` gives stand ``sk[t]`` (now on ``cur[t]``) prescription ``ks[t]``; a pair is
+    made whole or not at all. The period volumes ``V`` and the other rows' quantities
+    ``oq`` are updated in place. Returns the stand moves made (0 when none fits).
     """
     hm = st.prep.harvest_mask
-    for t in order.tolist():
-        i, k, k0 = int(sk[t]), int(ks[t]), int(cur[t])
-        st.unset(i)
-        if hm[k] != 0 and not st.can_add(i, k):
-            st.set(i, k0)
+    for ts in seq:
+        applied: list[int] = []
+        for t in ts:
+            i, k = int(sk[t]), int(ks[t])
+            st.unset(i)
+            if hm[k] != 0 and not st.can_add(i, k):
+                st.set(i, int(cur[t]))
+                break
+            st.set(i, k)
+            applied.append(t)
+        if len(applied) < len(ts):
+            for t in applied:
+                i = int(sk[t])
+                st.unset(i)
+                st.set(i, int(cur[t]))
             continue
-        st.set(i, k)
-        V += vol[k] - vol[k0]
-        oq += other[k] - other[k0]
-        return True
-    return False
+        for t in ts:
+            k, k0 = int(ks[t]), int(cur[t])
+            V += vol[k] - vol[k0]
+            oq += other[k] - other[k0]
+        return len(ts)
+    return 0
 
 
 def _unit_value(prep: Prep, vol: np.ndarray, ks: np.ndarray) -> float:
@@ -497,7 +481,6 @@ def _lift(
     q: int,
     ks_all: np.ndarray,
     sk_all: np.ndarray,
-    lift_gap: float,
 ) -> bool:
     """Raise period ``q``'s volume towards its bound when that pays; True if a move was made.
 
@@ -507,7 +490,7 @@ def _lift(
     ``V`` and ``oq`` are updated in place.
     """
     lo, hi = _bounds_of(prep, float(V[q + 1]))
-    if V[q] >= hi - lift_gap * max(hi, 1.0):
+    if V[q] >= hi - LIFT_GAP * max(hi, 1.0):
         return False
     cur_all = st.plan[sk_all]
     sel = np.nonzero(vol[ks_all, q] > vol[cur_all, q])[0]
@@ -523,7 +506,7 @@ def _lift(
     mend, _, loss, _ = pair.judge(dV, dO, prep.rel_value[cur] - prep.rel_value[ks])
     idx = np.nonzero(mend & (loss < 0.0))[0]
     order = idx[np.argsort(loss[idx], kind="stable")][:32]
-    return _apply_first(st, order, sk, ks, cur, vol, other, V, oq)
+    return _apply_first(st, [(t,) for t in order.tolist()], sk, ks, cur, vol, other, V, oq) > 0
 
 
 def sweep_flow(prep: Prep, plan: np.ndarray, deadline: float) -> np.ndarray:

@@ -373,7 +373,7 @@ class WindowCache:
     cover_by_stand
         Indices into ``cover_sets`` by stand.
     cover_done
-        (n,) bool: stands whose sets are all listed (``None`` until a search starts).
+        (n,) bool: stands whose sets are all listed (empty until a search starts).
     cache_misses
         Listings that ran past the set limit (the searches then list per window).
     build_s
@@ -383,7 +383,7 @@ class WindowCache:
 
     cover_sets: list[frozenset[int]] = field(default_factory=list)
     cover_by_stand: dict[int, list[int]] = field(default_factory=dict)
-    cover_done: np.ndarray | None = None
+    cover_done: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
     cache_misses: int = 0
     build_s: float = 0.0
 
@@ -440,7 +440,7 @@ class WindowSearch:
         self.lp_volume = lp_volume
         self._rx_volume: np.ndarray | None = None  # (K, P) volumes, made on first use
         self.cache = WindowCache() if cache is None else cache
-        if self.cache.cover_done is None:
+        if self.cache.cover_done.size != prep.n:
             self.cache.cover_done = np.zeros(prep.n, dtype=bool)
 
     def _eager_covers(self, sub: SubModel) -> None:
@@ -464,7 +464,6 @@ class WindowSearch:
         take = open_any.copy()
         take[sub.free] = True
         done = self.cache.cover_done
-        assert done is not None
         need = sub.free[~done[sub.free]]
         if need.size and self.cache.cache_misses < 1:
             sets, fin = covers_from_roots(
