@@ -11,19 +11,23 @@ The modules inside are the parts of one job:
 * ``model`` - rule rows, openness, the float64 plan check, over-size covers;
 * ``bound`` - the LP relaxation (HiGHS);
 * ``construct`` - greedy construction of a first legal plan;
+* ``repair`` - priced descent and the flow sweep (plans brought back under the rows);
+* ``starts`` - the construction runs of a solve (and the looser construction, swept);
+* ``phases`` - the search phases of a solve (annealing, CP-SAT, windows, looser search);
 * ``anneal`` - simulated-annealing local search;
 * ``cpsat`` and ``windows`` - CP-SAT models of the whole problem or of a window;
 * ``diagnosis`` - infeasibility diagnosis;
 * ``driver`` - :func:`solve`, which runs them in turn;
-* ``quality`` - the proven bounds of a result and the best of them.
+* ``quality`` - the gap, the proven bounds of a result and the best of them.
 """
 
 from spatialplan.schedule.bound import LpResult, lp_bound
-from spatialplan.schedule.driver import PlanResult, SolveProgress, diagnose, gap, solve
+from spatialplan.schedule.driver import PlanResult, SolveProgress, diagnose, solve
 from spatialplan.schedule.quality import (
     BOUND_METHODS,
     best_bound,
     best_bound_method,
+    gap,
     proven_bounds,
 )
 

@@ -15,7 +15,14 @@ from __future__ import annotations
 import math
 from typing import Protocol
 
-__all__ = ["BOUND_METHODS", "HasBounds", "best_bound", "best_bound_method", "proven_bounds"]
+__all__ = [
+    "BOUND_METHODS",
+    "HasBounds",
+    "best_bound",
+    "best_bound_method",
+    "gap",
+    "proven_bounds",
+]
 
 #: The proven bounds a result may carry (attribute -> the method, in words).
 BOUND_METHODS: dict[str, str] = {
@@ -23,6 +30,24 @@ BOUND_METHODS: dict[str, str] = {
     "cover_bound": "LP with opening covers (HiGHS)",
     "cpsat_bound": "CP-SAT",
 }
+
+
+def gap(npv: float, bound: float) -> float:
+    """Relative gap of a plan's NPV to an upper bound: ``(bound - npv) / |bound|``.
+
+    Never negative; infinite when there is no finite bound. The denominator is kept away
+    from zero so a bound of 0 gives a large gap rather than a division error.
+
+    Examples
+    --------
+    >>> gap(95.0, 100.0)
+    0.05
+    >>> gap(100.0, float("nan"))
+    inf
+    """
+    if not math.isfinite(bound):
+        return float("inf")
+    return max(0.0, (bound - npv) / max(abs(bound), 1e-9))
 
 
 class HasBounds(Protocol):
