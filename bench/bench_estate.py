@@ -111,10 +111,10 @@ def run_one(
     rx = prob.prescriptions
     assert rx is not None
     rss_model = peak_rss_mb()
-    history: list[tuple[float, float]] = []
+    history: list[tuple[float, float, float]] = []
 
     def on_progress(pr) -> None:
-        history.append((pr.elapsed_s, pr.best_npv))
+        history.append((pr.elapsed_s, pr.best_npv, pr.bound))
 
     settings = SolverSettings(time_limit_s=time_limit, workers=workers, seed=seed)
     res = solve(prob, settings, on_progress)
@@ -123,7 +123,7 @@ def run_one(
     cuts = np.bincount(stand, minlength=prob.n_stands)
 
     def ratio_at(ts: float) -> float:
-        best = max((v for el, v in history if el <= ts), default=0.0)
+        best = max((v for el, v, _ in history if el <= ts), default=0.0)
         return best / res.lp_bound if res.lp_bound else float("nan")
 
     return {
@@ -148,6 +148,8 @@ def run_one(
         "peak_rss_mb": round(peak_rss_mb()),
         "ratio_at": {t: ratio_at(t) for t in (5, 30, 60, 120, 300, 600) if t <= time_limit},
         "local_search": res.stats.get("local_search"),
+        # every improvement: seconds, plan NPV, best proven bound (bench/chart_gap.py)
+        "trace": [[round(t, 3), v, b] for t, v, b in history],
         **{k: v for k, v in res.stats.items() if not isinstance(v, list | dict)},
     }
 
