@@ -606,3 +606,28 @@ def test_search_under_non_declining_flow_keeps_the_best_construction(seed: int) 
     assert res.npv >= heur.npv - 1e-6 * abs(heur.npv)
     assert res.npv >= 0.9 * res.lp_bound
     assert "relaxed_chain" in res.stats
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_construction_runs_stop_at_their_budget(seed: int) -> None:
+    # Once a plan that harvests is built, no further assignment order starts after the
+    # construction budget is spent (budget 0: only the first order runs); with time to
+    # spare all four run. Each plan kept passes the independent check. Common practice,
+    # no source: a start heuristic gets a bounded share of the solve time.
+    from spatialplan.schedule.model import prepare
+    from spatialplan.schedule.starts import HEURISTIC_ORDERS, construct_runs
+
+    pr = _non_declining_landscape(seed)
+    flow = dataclasses.replace(pr.flow, non_declining=False, flow_tolerance=0.1)
+    pr = dataclasses.replace(pr, flow=flow)
+    prep = prepare(pr)
+    lp = lp_bound(pr)
+    runs = [(o, 0.0) for o in HEURISTIC_ORDERS]
+    far = time.perf_counter() + 120.0
+    best, info = construct_runs(prep, lp, runs, far, 0.0, lambda plan: None)
+    assert best is not None and list(info) == [HEURISTIC_ORDERS[0]]
+    assert rule_breaks(pr, best[0]) == []
+    best_all, info_all = construct_runs(prep, lp, runs, far, 120.0, lambda plan: None)
+    assert best_all is not None and list(info_all) == list(HEURISTIC_ORDERS)
+    assert rule_breaks(pr, best_all[0]) == []
+    assert best_all[1] >= best[1] - 1e-6 * abs(best[1])

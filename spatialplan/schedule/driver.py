@@ -21,11 +21,13 @@ How :func:`solve` works (details in ``docs/methods.md``, section "Scheduling mod
 4. Small and medium models: CP-SAT (:mod:`spatialplan.schedule.cpsat`) on the full model
    hinted with the best plan, minimal cover clauses added lazily in rounds (each returned
    plan is checked, its over-size openings become clauses, near-legal plans are repaired in
-   a small window); it gives the bound and proves optimality on small instances. Large
-   models: the annealing until it stalls, then blocks of annealing or of CP-SAT windows
-   (:class:`spatialplan.schedule.windows.WindowSearch`) to the deadline, each block to the
-   one that gained more per second; a window frees some stands, keeps the rest at the best
-   plan and re-optimises the freed ones exactly.
+   a small window); it gives the bound and proves optimality on small instances; when it
+   runs ``FULL_STALL_SHARE`` of the time limit without a better plan, the time left goes
+   to blocks of annealing or of CP-SAT windows
+   (:class:`spatialplan.schedule.windows.WindowSearch`), each block to the one that gained
+   more per second; a window frees some stands, keeps the rest at the best plan and
+   re-optimises the freed ones exactly. Large models: the annealing until it stalls,
+   then those blocks to the deadline.
    The phases live in :mod:`spatialplan.schedule.phases`.
 5. The final plan is re-checked in float64 against every rule.
 
@@ -52,6 +54,7 @@ from spatialplan.schedule.bound import LpResult, cover_lp_bound, lp_bound, solve
 from spatialplan.schedule.cpsat import CoverPool, make_scaling
 from spatialplan.schedule.model import check_plan, plan_harvests, plan_npv, prepare
 from spatialplan.schedule.phases import (
+    BLOCK_MIN_S,
     alternate,
     full_model,
     local_search,
@@ -80,6 +83,11 @@ __all__ = [
 FULL_MODEL_MAX_VARS = 6_000
 # Share of the remaining time the local search may use before CP-SAT on small models.
 LOCAL_SHARE_FULL = 0.4
+# CP-SAT on the full model hands over to the annealing and windows once it ran this share
+# of the time limit (at least FULL_STALL_MIN_S) without a better plan: on the 500-stand
+# bench landscape it found nothing in its last 100 of 120 s (docs/benchmarks.md).
+FULL_STALL_SHARE = 0.25
+FULL_STALL_MIN_S = 15.0
 
 
 @dataclass(frozen=True)
@@ -300,7 +308,26 @@ def solve(
                     repeat=strategy != "full",
                 )
             if strategy == "full" and not infeasible and not ctx.stopped():
-                infeasible = full_model(ctx, settings, stats, until_first=False)
+                infeasible = full_model(
+                    ctx, settings, stats, until_first=False, stall_s=_full_stall_s(settings)
+                )
+                if (
+                    not infeasible
+                    and not ctx.stopped()
+                    and not ctx.proven
+                    and ctx.best is not None
+                    and ctx.left() > BLOCK_MIN_S
+                ):
+                    # CP-SAT on the whole model stalled: blocks of annealing and windows
+                    # for the time left (other neighbourhoods, CP-SAT's bound kept).
+                    alternate(
+                        ctx,
+                        stats,
+                        lp_stand_values(prep, lp),
+                        float(settings.time_limit_s),
+                        lp_volumes(lp),
+                        cache,
+                    )
             if strategy == "windows" and not infeasible and ctx.best is not None:
                 alternate(
                     ctx,
@@ -366,6 +393,11 @@ def solve(
         prescription=final.copy(),
         cover_bound=cover,
     )
+
+
+def _full_stall_s(settings: SolverSettings) -> float:
+    """Seconds CP-SAT on the full model may run without a better plan before handing over."""
+    return max(FULL_STALL_MIN_S, FULL_STALL_SHARE * float(settings.time_limit_s))
 
 
 def _cover_bound(ctx: SearchCtx, settings: SolverSettings, stats: dict) -> float | None:
