@@ -99,7 +99,13 @@ def make_estate_problem(n_stands: int, seed: int, periods: int, max_harvests: in
 
 
 def run_one(
-    n: int, seed: int, periods: int, max_harvests: int, time_limit: float, workers: int
+    n: int,
+    seed: int,
+    periods: int,
+    max_harvests: int,
+    time_limit: float,
+    workers: int,
+    strategy: str = "auto",
 ) -> dict:
     """Build and solve one instance; return the measurements."""
     from spatialplan.schedule import solve
@@ -117,7 +123,7 @@ def run_one(
         history.append((pr.elapsed_s, pr.best_npv, pr.bound))
 
     settings = SolverSettings(time_limit_s=time_limit, workers=workers, seed=seed)
-    res = solve(prob, settings, on_progress)
+    res = solve(prob, settings, on_progress, _strategy=strategy)
     viol = check_plan(prepare(prob), res.prescription)
     stand, _, _ = res.harvests(prob)
     cuts = np.bincount(stand, minlength=prob.n_stands)
@@ -135,6 +141,7 @@ def run_one(
         "harvests": len(rx.harvest_period),
         "time_limit_s": time_limit,
         "workers": workers,
+        "strategy": res.stats.get("strategy"),
         "build_s": round(t_build, 1),
         "status": res.status,
         "npv": res.npv,
@@ -163,12 +170,13 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--max-harvests", type=int, default=20)
     ap.add_argument("--time-limit", type=float, default=300.0)
     ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--strategy", default="auto")
     ap.add_argument("--json", type=Path, default=None)
     a = ap.parse_args(argv)
     out = []
     for n in a.stands:
         for seed in a.seeds:
-            r = run_one(n, seed, a.periods, a.max_harvests, a.time_limit, a.workers)
+            r = run_one(n, seed, a.periods, a.max_harvests, a.time_limit, a.workers, a.strategy)
             out.append(r)
             print(json.dumps(r, default=float), flush=True)
     if a.json:
