@@ -307,28 +307,15 @@ def solve(
                     patience=3 if strategy == "full" else 2,
                     repeat=strategy != "full",
                 )
+            blocks = strategy == "windows"
             if strategy == "full" and not infeasible and not ctx.stopped():
                 infeasible = full_model(
                     ctx, settings, stats, until_first=False, stall_s=_full_stall_s(settings)
                 )
-                if (
-                    not infeasible
-                    and not ctx.stopped()
-                    and not ctx.proven
-                    and ctx.best is not None
-                    and ctx.left() > BLOCK_MIN_S
-                ):
-                    # CP-SAT on the whole model stalled: blocks of annealing and windows
-                    # for the time left (other neighbourhoods, CP-SAT's bound kept).
-                    alternate(
-                        ctx,
-                        stats,
-                        lp_stand_values(prep, lp),
-                        float(settings.time_limit_s),
-                        lp_volumes(lp),
-                        cache,
-                    )
-            if strategy == "windows" and not infeasible and ctx.best is not None:
+                # CP-SAT on the whole model stalled: blocks of annealing and windows for
+                # the time left (other neighbourhoods, CP-SAT's bound kept).
+                blocks = not (ctx.stopped() or ctx.proven) and ctx.left() > BLOCK_MIN_S
+            if blocks and not infeasible and ctx.best is not None:
                 alternate(
                     ctx,
                     stats,
