@@ -134,13 +134,14 @@ def construct_runs(
     deadline: float,
     budget: float,
     on_plan: Callable[[np.ndarray], object],
-    best: tuple[np.ndarray, float, str] | None = None,
-) -> tuple[tuple[np.ndarray, float, str] | None, dict]:
+    best: Start | None = None,
+) -> tuple[Start | None, dict]:
     """The construction runs ``(order, slack)`` in turn: the best legal plan and each run's info.
 
     Every better legal plan goes to ``on_plan`` at once (several runs can take a third of
     the time limit). Once a plan that harvests was found, the runs stop when ``budget``
-    seconds are used, and no run goes past it (a run cut short is dropped): on 30,000
+    seconds are used, and no run goes past it (a run cut short stops its repair and is kept
+    only if its trimmed plan is better): on 30,000
     stands the four orders took 190 of a 300 s limit and left the annealing 22 s
     (docs/benchmarks.md). The fallback slacks of the non-declining ladder run only while
     no plan that harvests was found. ``best`` is the best plan of earlier runs
